@@ -1,0 +1,24 @@
+//! Compiles `proto/` with the pure-Rust protox compiler (no system `protoc`),
+//! generates prost message types and their proto3-JSON serde impls, and
+//! writes the descriptor set that the binary embeds.
+
+use std::path::PathBuf;
+
+use prost::Message as _;
+
+fn main() -> Result<(), Box<dyn std::error::Error>> {
+    let protos = ["proto/keelson/v1/weights.proto"];
+    println!("cargo:rerun-if-changed=proto");
+    let fds = protox::compile(protos, ["proto"])?;
+    let out = PathBuf::from(std::env::var("OUT_DIR")?);
+    let descriptor_path = out.join("keelson_descriptor.bin");
+    let bytes = fds.encode_to_vec();
+    std::fs::write(&descriptor_path, &bytes)?;
+
+    prost_build::Config::new().compile_fds(fds)?;
+    pbjson_build::Builder::new()
+        .register_descriptors(&bytes)?
+        .emit_fields()
+        .build(&[".keelson.v1"])?;
+    Ok(())
+}

@@ -1,0 +1,173 @@
+//! The principal-component basis of a block of periods under each scaling
+//! (SPEC §4), through the N×N matrix or, when periods are fewer than
+//! factors, the T×T Gram matrix.
+
+use faer::Mat;
+
+use super::dense;
+use super::error::EstimateError;
+use super::moments::Moments;
+use super::settings::Scaling;
+
+/// Which eigenproblem yields the components.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum EigenPath {
+    /// The Gram path when the factors outnumber the rows of the scaled data.
+    Auto,
+    /// Always the N×N matrix C = Y'Y.
+    Factors,
+    /// Always the M×M Gram matrix YY' (M periods, plus one row for risk-premium PCA).
+    Gram,
+}
+
+/// Leading components of one block of periods.
+#[derive(Clone, Debug)]
+pub struct ComponentBasis {
+    /// Column scale s of each factor.
+    pub scale: Vec<f64>,
+    /// Eigenvalues of C, descending (as many as were computed).
+    pub eigenvalues: Vec<f64>,
+    /// tr(C).
+    pub trace: f64,
+    /// Number of eigenvalues above the numerical-rank threshold.
+    pub rank: usize,
+    /// Component portfolios q_k = diag(s) v_k, n × k, signed so that μ'q_k ≥ 0.
+    pub q: Mat<f64>,
+    /// Unit eigenvectors v_k, n × k, with the same signs as `q`.
+    pub v: Mat<f64>,
+    /// μ_F = Q'μ.
+    pub mu_f: Vec<f64>,
+    /// Σ_F = Q'ΣQ, k × k; diagonal (= eigenvalues) for every scaling but risk-premium.
+    pub sigma_f: Mat<f64>,
+    /// Whether the Gram path was used.
+    pub used_gram: bool,
+}
+
+impl ComponentBasis {
+    /// Computes the first `k` components of the block (fewer when the rank is lower).
+    pub fn compute(
+        mom: &Moments,
+        scaling: Scaling,
+        rp_gamma: f64,
+        k: usize,
+        path: EigenPath,
+    ) -> Result<ComponentBasis, EstimateError> {
+        let (t, n) = mom.centered.shape();
+        let scale: Vec<f64> = (0..n)
+            .map(|j| {
+                let (mu, sd) = (mom.mean[j], mom.sd[j]);
+                let s = match scaling {
+                    // Scaled PCA with the Sharpe ratio as the scale: SR_i/σ_i = μ_i/σ_i².
+                    Scaling::Sharpe => mu / (sd * sd),
+                    Scaling::SharpeRaw => mu / sd,
+                    Scaling::Standardized => 1.0 / sd,
+                    Scaling::Covariance | Scaling::RiskPremium => 1.0,
+                };
+                // A factor without variance in this block (possible inside a fold) carries no weight.
+                if sd > 0.0 && s.is_finite() { s } else { 0.0 }
+            })
+            .collect();
+
+        // C = Y'Y with Y the scaled data, so both eigen paths share one matrix.
+        let y = match scaling {
+            Scaling::RiskPremium => {
+                // Lettau & Pelger (2020): C = R̃'R̃/T + γ r̄r̄' = X_c'X_c/T + (1+γ) r̄r̄'.
+                let a = 1.0 / (t as f64).sqrt();
+                let b = (1.0 + rp_gamma).max(0.0).sqrt();
+                Mat::from_fn(t + 1, n, |i, j| if i < t { mom.centered[(i, j)] * a } else { mom.mean[j] * b })
+            }
+            _ => {
+                let a = 1.0 / (t as f64 - 1.0).sqrt();
+                Mat::from_fn(t, n, |i, j| mom.centered[(i, j)] * scale[j] * a)
+            }
+        };
+        let m = y.nrows();
+        let trace: f64 = (0..n).map(|j| (0..m).map(|i| y[(i, j)] * y[(i, j)]).sum::<f64>()).sum();
+        let used_gram = match path {
+            EigenPath::Auto => n > m,
+            EigenPath::Factors => false,
+            EigenPath::Gram => true,
+        };
+
+        let (eigenvalues, mut v) = if used_gram {
+            let g = dense::gram_nt(y.as_ref());
+            let (vals, u) = dense::sym_eigen_desc(g.as_ref(), "Gram eigendecomposition")?;
+            let keep = k.min(m).min(n);
+            let tol = rank_tolerance(&vals, m.max(n));
+            // v = Y'u/√λ maps a Gram eigenvector to the matching factor-space one.
+            let yu = dense::mul_tn(y.as_ref(), u.as_ref().subcols(0, keep));
+            let v = Mat::from_fn(n, keep, |i, c| if vals[c] > tol { yu[(i, c)] / vals[c].sqrt() } else { 0.0 });
+            (vals, v)
+        } else {
+            let c = dense::gram_tn(y.as_ref());
+            let (vals, u) = dense::sym_eigen_desc(c.as_ref(), "factor eigendecomposition")?;
+            let keep = k.min(n);
+            (vals, u.as_ref().subcols(0, keep).to_owned())
+        };
+        let tol = rank_tolerance(&eigenvalues, m.max(n));
+        let rank = eigenvalues.iter().take_while(|&&l| l > tol).count();
+        let kk = v.ncols();
+
+        let mut q = Mat::from_fn(n, kk, |i, c| scale[i] * v[(i, c)]);
+        let mut mu_f = vec![0.0; kk];
+        for c in 0..kk {
+            let d: f64 = (0..n).map(|i| mom.mean[i] * q[(i, c)]).sum();
+            // Sign so that μ'q ≥ 0; an exact zero falls back to the largest entry of v being positive.
+            let flip = if d != 0.0 {
+                d < 0.0
+            } else {
+                let mut best = 0;
+                for i in 1..n {
+                    if v[(i, c)].abs() > v[(best, c)].abs() {
+                        best = i;
+                    }
+                }
+                v[(best, c)] < 0.0
+            };
+            if flip {
+                for i in 0..n {
+                    q[(i, c)] = -q[(i, c)];
+                    v[(i, c)] = -v[(i, c)];
+                }
+            }
+            mu_f[c] = d.abs();
+        }
+
+        let sigma_f = if scaling.has_diagonal_components() {
+            Mat::from_fn(kk, kk, |a, b| if a == b { eigenvalues[a].max(0.0) } else { 0.0 })
+        } else {
+            let fc = dense::mul(mom.centered.as_ref(), q.as_ref());
+            let mut s = dense::gram_tn(fc.as_ref());
+            let d = t as f64 - 1.0;
+            for a in 0..kk {
+                for b in 0..kk {
+                    s[(a, b)] /= d;
+                }
+            }
+            s
+        };
+
+        Ok(ComponentBasis { scale, eigenvalues, trace, rank, q, v, mu_f, sigma_f, used_gram })
+    }
+
+    /// Number of components held.
+    pub fn len(&self) -> usize {
+        self.q.ncols()
+    }
+
+    /// Whether no component is held.
+    pub fn is_empty(&self) -> bool {
+        self.q.ncols() == 0
+    }
+
+    /// tr(Σ_F) over the first `k` components: the τ of the KNS penalty.
+    pub fn trace_f(&self, k: usize) -> f64 {
+        (0..k).map(|i| self.sigma_f[(i, i)]).sum()
+    }
+}
+
+/// Eigenvalues at or below this are numerically zero: the largest times the
+/// dimension times machine epsilon (the numpy.linalg.matrix_rank convention).
+pub(crate) fn rank_tolerance(desc: &[f64], dim: usize) -> f64 {
+    desc.first().copied().unwrap_or(0.0).max(0.0) * dim as f64 * f64::EPSILON
+}

@@ -1,0 +1,321 @@
+//! Time-series cross-validation over the number of components and κ
+//! (SPEC §6): contiguous blocks as `numpy.array_split`, no shuffling, every
+//! fold refitting demarketing, moments, scaling and components on the other
+//! blocks.
+
+use faer::{Mat, MatRef};
+
+use super::basis::{ComponentBasis, EigenPath};
+use super::dense;
+use super::error::EstimateError;
+use super::moments::{Moments, demarket};
+use super::settings::{CvCriterion, ValidSettings};
+use super::shrinkage::{ShrinkagePath, kns_gamma};
+use super::stop::Stop;
+
+/// A held-out covariance whose condition number exceeds this is too
+/// ill-conditioned for the GLS pricing criterion.
+pub const GLS_MAX_CONDITION: f64 = 1e10;
+
+/// Mean held-out score for every (K, κ) tried.
+#[derive(Clone, Debug, PartialEq)]
+pub struct CvSurface {
+    /// Component counts (rows).
+    pub components: Vec<usize>,
+    /// Annualised κ values (columns).
+    pub kappas: Vec<f64>,
+    /// Scores, row-major `components.len() × kappas.len()`; NaN where undefined.
+    pub scores: Vec<f64>,
+    /// The criterion scored.
+    pub criterion: CvCriterion,
+    /// Number of folds averaged.
+    pub folds: usize,
+}
+
+impl CvSurface {
+    /// Score at row `ki`, column `ci`.
+    pub fn score(&self, ki: usize, ci: usize) -> f64 {
+        self.scores[ki * self.kappas.len() + ci]
+    }
+}
+
+/// Outcome of cross-validation.
+#[derive(Clone, Debug)]
+pub struct CrossValidation {
+    /// The surface.
+    pub surface: CvSurface,
+    /// Chosen number of components.
+    pub k: usize,
+    /// Chosen annualised κ.
+    pub kappa: f64,
+    /// Best mean held-out score.
+    pub best_score: f64,
+    /// Mean held-out annualised Sharpe ratio at the chosen point.
+    pub held_out_sharpe: f64,
+    /// Whether any coordinate-descent solve hit its sweep limit.
+    pub solver_limit_hit: bool,
+}
+
+/// Block boundaries of `numpy.array_split(range(t), folds)`: the first
+/// `t % folds` blocks hold one period more.
+pub fn fold_bounds(t: usize, folds: usize) -> Vec<(usize, usize)> {
+    let base = t / folds;
+    let extra = t % folds;
+    let mut out = Vec::with_capacity(folds);
+    let mut start = 0;
+    for f in 0..folds {
+        let len = base + usize::from(f < extra);
+        out.push((start, start + len));
+        start += len;
+    }
+    out
+}
+
+/// Fewest training periods over the folds: T minus the largest block.
+pub fn min_training_periods(t: usize, folds: usize) -> usize {
+    t - t.div_ceil(folds)
+}
+
+/// What one fold needs to score any (K, κ): the training basis and the
+/// held-out moments of the component returns, reduced to K×K forms so that
+/// each grid point costs O(K²).
+pub(crate) struct Fold {
+    train_periods: usize,
+    pub(crate) basis: ComponentBasis,
+    /// Held-out means of the component returns.
+    f_mean: Vec<f64>,
+    /// Held-out covariance of the component returns (divisor T₂−1).
+    f_cov: Mat<f64>,
+    /// Pricing criteria: C₂'μ₂, C₂'C₂ and μ₂'μ₂ (whitened for GLS).
+    pricing: Option<(Vec<f64>, Mat<f64>, f64)>,
+}
+
+impl Fold {
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn prepare(
+        r: MatRef<'_, f64>,
+        market: Option<&[f64]>,
+        (start, end): (usize, usize),
+        index: usize,
+        settings: &ValidSettings,
+        k: usize,
+        path: EigenPath,
+    ) -> Result<Fold, EstimateError> {
+        let (t, n) = r.shape();
+        let train_rows: Vec<usize> = (0..start).chain(end..t).collect();
+        let r_train = Mat::from_fn(train_rows.len(), n, |i, j| r[(train_rows[i], j)]);
+        let m_train: Option<Vec<f64>> = market.map(|m| train_rows.iter().map(|&i| m[i]).collect());
+        let mom = Moments::compute(r_train.as_ref(), m_train.as_deref());
+        let basis = ComponentBasis::compute(&mom, settings.scaling, settings.rp_gamma, k, path)?;
+
+        // Held-out block, demarketed with the training betas (no look-ahead).
+        let r_test = r.subrows(start, end - start);
+        let m_test: Option<Vec<f64>> = market.map(|m| m[start..end].to_vec());
+        let mut x2 = demarket(r_test, m_test.as_deref(), &mom.beta);
+        let t2 = x2.nrows();
+        let mu2: Vec<f64> = (0..n).map(|j| (0..t2).map(|i| x2[(i, j)]).sum::<f64>() / t2 as f64).collect();
+        for j in 0..n {
+            for i in 0..t2 {
+                x2[(i, j)] -= mu2[j];
+            }
+        }
+        let d2 = t2 as f64 - 1.0;
+        let fc = dense::mul(x2.as_ref(), basis.q.as_ref());
+        let kk = basis.len();
+        let f_mean: Vec<f64> = (0..kk).map(|c| (0..n).map(|i| mu2[i] * basis.q[(i, c)]).sum()).collect();
+        let mut f_cov = dense::gram_tn(fc.as_ref());
+        scale_in_place(&mut f_cov, 1.0 / d2);
+
+        let pricing = match settings.cv_criterion {
+            CvCriterion::Sharpe => None,
+            CvCriterion::PricingR2 => {
+                // C₂ = cov(R̃₂, F₂) = X₂'F₂c/(T₂−1), n × K.
+                let mut c2 = dense::mul_tn(x2.as_ref(), fc.as_ref());
+                scale_in_place(&mut c2, 1.0 / d2);
+                Some(pricing_forms(&c2, &mu2))
+            }
+            CvCriterion::PricingR2Gls => {
+                let mut sigma2 = dense::gram_tn(x2.as_ref());
+                scale_in_place(&mut sigma2, 1.0 / d2);
+                let (vals, vecs) = dense::sym_eigen_desc(sigma2.as_ref(), "held-out covariance")?;
+                let lmax = vals.first().copied().unwrap_or(0.0);
+                let lmin = vals.last().copied().unwrap_or(0.0);
+                let condition = if lmin > 0.0 { lmax / lmin } else { f64::INFINITY };
+                if t2 <= n || !(condition <= GLS_MAX_CONDITION) {
+                    return Err(EstimateError::CriterionUnavailable { fold: index, periods: t2, factors: n, condition });
+                }
+                // Whitening W = Λ^{-1/2}U' turns the Σ₂⁻¹-weighted norm into a plain one.
+                let w = Mat::from_fn(n, n, |a, b| vecs[(b, a)] / vals[a].sqrt());
+                let mut c2 = dense::mul_tn(x2.as_ref(), fc.as_ref());
+                scale_in_place(&mut c2, 1.0 / d2);
+                let wc = dense::mul(w.as_ref(), c2.as_ref());
+                let wmu: Vec<f64> = (0..n).map(|a| (0..n).map(|b| w[(a, b)] * mu2[b]).sum()).collect();
+                Some(pricing_forms(&wc, &wmu))
+            }
+        };
+        Ok(Fold { train_periods: train_rows.len(), basis, f_mean, f_cov, pricing })
+    }
+
+    /// Held-out annualised Sharpe ratio of F₂[:, :k] b (NaN when its variance is 0).
+    fn sharpe(&self, b: &[f64], annualise: f64) -> f64 {
+        let k = b.len();
+        let mean: f64 = (0..k).map(|j| self.f_mean[j] * b[j]).sum();
+        let var = quad_form(&self.f_cov, b);
+        if var > 0.0 { annualise * mean / var.sqrt() } else { f64::NAN }
+    }
+
+    /// 1 − ‖μ₂ − C₂b‖²/‖μ₂‖², expanded in the precomputed forms (KNS pricing R²).
+    fn pricing_r2(&self, b: &[f64]) -> f64 {
+        let Some((cmu, cc, mumu)) = &self.pricing else { return f64::NAN };
+        if !(*mumu > 0.0) {
+            return f64::NAN;
+        }
+        let cross: f64 = b.iter().zip(cmu).map(|(x, y)| x * y).sum();
+        let resid = mumu - 2.0 * cross + quad_form(cc, b);
+        1.0 - resid.max(0.0) / mumu
+    }
+
+    fn score(&self, criterion: CvCriterion, b: &[f64], annualise: f64) -> f64 {
+        match criterion {
+            CvCriterion::Sharpe => self.sharpe(b, annualise),
+            CvCriterion::PricingR2 | CvCriterion::PricingR2Gls => self.pricing_r2(b),
+        }
+    }
+}
+
+fn pricing_forms(c: &Mat<f64>, mu: &[f64]) -> (Vec<f64>, Mat<f64>, f64) {
+    let (n, k) = c.shape();
+    let cmu = (0..k).map(|a| (0..n).map(|i| c[(i, a)] * mu[i]).sum()).collect();
+    let cc = dense::gram_tn(c.as_ref());
+    let mumu = mu.iter().map(|x| x * x).sum();
+    (cmu, cc, mumu)
+}
+
+fn scale_in_place(m: &mut Mat<f64>, a: f64) {
+    let (r, c) = m.shape();
+    for j in 0..c {
+        for i in 0..r {
+            m[(i, j)] *= a;
+        }
+    }
+}
+
+fn quad_form(m: &Mat<f64>, b: &[f64]) -> f64 {
+    let k = b.len();
+    let mut s = 0.0;
+    for a in 0..k {
+        let mut row = 0.0;
+        for c in 0..k {
+            row += m[(a, c)] * b[c];
+        }
+        s += b[a] * row;
+    }
+    s
+}
+
+/// Scores every (K, κ) on every fold, averages over folds and picks the best
+/// (ties: smaller K, then smaller κ).
+pub(crate) fn cross_validate(
+    settings: &ValidSettings,
+    ks: &[usize],
+    kappas: &[f64],
+    folds: &[Fold],
+    stop: &Stop,
+    threads: usize,
+) -> Result<CrossValidation, EstimateError> {
+    let annualise = f64::from(settings.periods_per_year).sqrt();
+    let kappa_p: Vec<f64> = kappas.iter().map(|&k| settings.kappa_per_period(k)).collect();
+    let criterion = settings.cv_criterion;
+    let diagonal = settings.scaling.has_diagonal_components();
+    let l1 = settings.l1_penalty;
+    let cells = ks.len() * kappas.len();
+
+    let score_fold = |fold: &Fold| -> Result<(Vec<f64>, bool), EstimateError> {
+        let mut path = ShrinkagePath::new(&fold.basis, diagonal, l1);
+        let mut b = vec![0.0; fold.basis.len()];
+        let mut out = vec![f64::NAN; cells];
+        let mut limit_hit = false;
+        for (ki, &k) in ks.iter().enumerate() {
+            stop.check()?;
+            let trace = fold.basis.trace_f(k);
+            for (ci, &kp) in kappa_p.iter().enumerate() {
+                let gamma = kns_gamma(trace, kp, fold.train_periods);
+                let info = path.solve(k, gamma, &mut b);
+                limit_hit |= !info.converged;
+                out[ki * kappas.len() + ci] = fold.score(criterion, &b[..k], annualise);
+            }
+        }
+        Ok((out, limit_hit))
+    };
+
+    let per_fold: Vec<Result<(Vec<f64>, bool), EstimateError>> = if threads <= 1 || folds.len() == 1 {
+        folds.iter().map(score_fold).collect()
+    } else {
+        std::thread::scope(|scope| {
+            let handles: Vec<_> = folds.iter().map(|f| scope.spawn(|| score_fold(f))).collect();
+            handles
+                .into_iter()
+                .map(|h| h.join().unwrap_or_else(|_| Err(EstimateError::Numerical { stage: "cross-validation", detail: "worker panicked".into() })))
+                .collect()
+        })
+    };
+    let mut sums = vec![0.0; cells];
+    let mut solver_limit_hit = false;
+    for res in per_fold {
+        let (scores, hit) = res?;
+        solver_limit_hit |= hit;
+        for (s, v) in sums.iter_mut().zip(scores) {
+            *s += v;
+        }
+    }
+    let nf = folds.len() as f64;
+    let scores: Vec<f64> = sums.into_iter().map(|s| s / nf).collect();
+
+    let mut best: Option<(usize, usize, f64)> = None;
+    for ki in 0..ks.len() {
+        for ci in 0..kappas.len() {
+            let s = scores[ki * kappas.len() + ci];
+            if s.is_finite() && best.is_none_or(|(_, _, b)| s > b) {
+                best = Some((ki, ci, s));
+            }
+        }
+    }
+    let Some((bk, bc, best_score)) = best else {
+        return Err(EstimateError::NoFiniteScore {
+            reason: "every held-out portfolio had zero variance or every held-out mean was zero".into(),
+        });
+    };
+    let (k, kappa) = (ks[bk], kappas[bc]);
+
+    // Held-out Sharpe at the chosen point, whatever the criterion.
+    let mut sharpe_sum = 0.0;
+    for fold in folds {
+        let mut path = ShrinkagePath::new(&fold.basis, diagonal, l1);
+        let mut b = vec![0.0; fold.basis.len()];
+        let gamma = kns_gamma(fold.basis.trace_f(k), kappa_p[bc], fold.train_periods);
+        path.solve(k, gamma, &mut b);
+        sharpe_sum += fold.sharpe(&b[..k], annualise);
+    }
+
+    Ok(CrossValidation {
+        surface: CvSurface { components: ks.to_vec(), kappas: kappas.to_vec(), scores, criterion, folds: folds.len() },
+        k,
+        kappa,
+        best_score,
+        held_out_sharpe: sharpe_sum / nf,
+        solver_limit_hit,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn folds_follow_numpy_array_split() {
+        // numpy.array_split(np.arange(10), 3) -> sizes [4, 3, 3] (numpy documentation).
+        assert_eq!(fold_bounds(10, 3), vec![(0, 4), (4, 7), (7, 10)]);
+        assert_eq!(fold_bounds(9, 3), vec![(0, 3), (3, 6), (6, 9)]);
+        assert_eq!(min_training_periods(10, 3), 6);
+    }
+}

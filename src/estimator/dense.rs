@@ -1,0 +1,183 @@
+//! Thin wrappers over faer's low-level kernels with the parallelism fixed to
+//! `Par::Seq`, so that every result is bitwise reproducible whatever the
+//! machine's thread count. Parallelism in the estimator is across independent
+//! tasks (cross-validation folds), never inside a reduction.
+
+use faer::dyn_stack::{MemBuffer, MemStack};
+use faer::linalg::evd::{self, ComputeEigenvectors};
+use faer::linalg::matmul::matmul;
+use faer::linalg::svd::{self, ComputeSvdVectors};
+use faer::diag::Diag;
+use faer::{Accum, Mat, MatRef, Par};
+
+use super::error::EstimateError;
+
+const PAR: Par = Par::Seq;
+
+/// A'A.
+pub(crate) fn gram_tn(a: MatRef<'_, f64>) -> Mat<f64> {
+    let mut out = Mat::zeros(a.ncols(), a.ncols());
+    matmul(out.as_mut(), Accum::Replace, a.transpose(), a, 1.0, PAR);
+    out
+}
+
+/// AA'.
+pub(crate) fn gram_nt(a: MatRef<'_, f64>) -> Mat<f64> {
+    let mut out = Mat::zeros(a.nrows(), a.nrows());
+    matmul(out.as_mut(), Accum::Replace, a, a.transpose(), 1.0, PAR);
+    out
+}
+
+/// A B.
+pub(crate) fn mul(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
+    let mut out = Mat::zeros(a.nrows(), b.ncols());
+    matmul(out.as_mut(), Accum::Replace, a, b, 1.0, PAR);
+    out
+}
+
+/// A' B.
+pub(crate) fn mul_tn(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
+    let mut out = Mat::zeros(a.ncols(), b.ncols());
+    matmul(out.as_mut(), Accum::Replace, a.transpose(), b, 1.0, PAR);
+    out
+}
+
+/// Symmetric eigendecomposition (lower triangle read), eigenvalues in
+/// descending order with ties kept in solver order (a stable sort), and the
+/// matching unit eigenvectors as columns.
+pub(crate) fn sym_eigen_desc(
+    a: MatRef<'_, f64>,
+    stage: &'static str,
+) -> Result<(Vec<f64>, Mat<f64>), EstimateError> {
+    let n = a.nrows();
+    let mut s = Diag::<f64>::zeros(n);
+    let mut u = Mat::<f64>::zeros(n, n);
+    let req = evd::self_adjoint_evd_scratch::<f64>(n, ComputeEigenvectors::Yes, PAR, Default::default());
+    let mut buf = MemBuffer::new(req);
+    evd::self_adjoint_evd(a, s.as_mut(), Some(u.as_mut()), PAR, MemStack::new(&mut buf), Default::default())
+        .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
+    let vals: Vec<f64> = (0..n).map(|i| s[i]).collect();
+    check_finite(&vals, stage)?;
+    let order = descending_order(&vals);
+    let sorted_vals = order.iter().map(|&i| vals[i]).collect();
+    let sorted_vecs = Mat::from_fn(n, n, |r, c| u[(r, order[c])]);
+    Ok((sorted_vals, sorted_vecs))
+}
+
+/// Thin SVD A = U diag(s) V', singular values descending.
+pub(crate) fn thin_svd(
+    a: MatRef<'_, f64>,
+    stage: &'static str,
+) -> Result<(Vec<f64>, Mat<f64>, Mat<f64>), EstimateError> {
+    let (m, n) = a.shape();
+    let k = m.min(n);
+    let mut s = Diag::<f64>::zeros(k);
+    let mut u = Mat::<f64>::zeros(m, k);
+    let mut v = Mat::<f64>::zeros(n, k);
+    let req = svd::svd_scratch::<f64>(m, n, ComputeSvdVectors::Thin, ComputeSvdVectors::Thin, PAR, Default::default());
+    let mut buf = MemBuffer::new(req);
+    svd::svd(a, s.as_mut(), Some(u.as_mut()), Some(v.as_mut()), PAR, MemStack::new(&mut buf), Default::default())
+        .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
+    let vals: Vec<f64> = (0..k).map(|i| s[i]).collect();
+    check_finite(&vals, stage)?;
+    Ok((vals, u, v))
+}
+
+/// Singular values only, descending.
+pub(crate) fn singular_values(a: MatRef<'_, f64>, stage: &'static str) -> Result<Vec<f64>, EstimateError> {
+    let (m, n) = a.shape();
+    let k = m.min(n);
+    let mut s = Diag::<f64>::zeros(k);
+    let req = svd::svd_scratch::<f64>(m, n, ComputeSvdVectors::No, ComputeSvdVectors::No, PAR, Default::default());
+    let mut buf = MemBuffer::new(req);
+    svd::svd(a, s.as_mut(), None, None, PAR, MemStack::new(&mut buf), Default::default())
+        .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
+    let vals: Vec<f64> = (0..k).map(|i| s[i]).collect();
+    check_finite(&vals, stage)?;
+    Ok(vals)
+}
+
+fn check_finite(vals: &[f64], stage: &'static str) -> Result<(), EstimateError> {
+    if vals.iter().all(|v| v.is_finite()) {
+        Ok(())
+    } else {
+        Err(EstimateError::Numerical { stage, detail: "non-finite eigenvalue or singular value".into() })
+    }
+}
+
+fn descending_order(vals: &[f64]) -> Vec<usize> {
+    // faer returns ascending values; walk from the top so that equal values
+    // keep the solver's order, then stable-sort (ties broken by index).
+    let mut order: Vec<usize> = (0..vals.len()).rev().collect();
+    order.sort_by(|&a, &b| vals[b].total_cmp(&vals[a]));
+    order
+}
+
+/// Cholesky solve of a small symmetric positive definite system, in place.
+/// Returns `false` when the matrix is not numerically positive definite.
+pub(crate) fn spd_solve_in_place(a: &mut [f64], n: usize, b: &mut [f64]) -> bool {
+    // Plain column-oriented Cholesky (Golub & Van Loan, Alg. 4.2.1) on a
+    // row-major n×n buffer; used for the K×K systems of the ridge path.
+    for j in 0..n {
+        let mut d = a[j * n + j];
+        for k in 0..j {
+            d -= a[j * n + k] * a[j * n + k];
+        }
+        if d.is_nan() || d <= 0.0 {
+            return false;
+        }
+        let d = d.sqrt();
+        a[j * n + j] = d;
+        for i in j + 1..n {
+            let mut s = a[i * n + j];
+            for k in 0..j {
+                s -= a[i * n + k] * a[j * n + k];
+            }
+            a[i * n + j] = s / d;
+        }
+    }
+    for i in 0..n {
+        let mut s = b[i];
+        for k in 0..i {
+            s -= a[i * n + k] * b[k];
+        }
+        b[i] = s / a[i * n + i];
+    }
+    for i in (0..n).rev() {
+        let mut s = b[i];
+        for k in i + 1..n {
+            s -= a[k * n + i] * b[k];
+        }
+        b[i] = s / a[i * n + i];
+    }
+    true
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn eigen_descending_reconstructs_matrix() {
+        let a = Mat::from_fn(4, 4, |i, j| 1.0 / (1.0 + i as f64 + j as f64) + if i == j { 1.0 } else { 0.0 });
+        let (vals, vecs) = sym_eigen_desc(a.as_ref(), "test").unwrap();
+        assert!(vals.windows(2).all(|w| w[0] >= w[1]));
+        for i in 0..4 {
+            for j in 0..4 {
+                let r: f64 = (0..4).map(|k| vecs[(i, k)] * vals[k] * vecs[(j, k)]).sum();
+                assert!((r - a[(i, j)]).abs() < 1e-13);
+            }
+        }
+    }
+
+    #[test]
+    fn spd_solve_matches_hand_example() {
+        // [[4, 2], [2, 3]] x = [2, 1] has x = [0.5, 0] (by hand).
+        let mut a = vec![4.0, 2.0, 2.0, 3.0];
+        let mut b = vec![2.0, 1.0];
+        assert!(spd_solve_in_place(&mut a, 2, &mut b));
+        assert!((b[0] - 0.5).abs() < 1e-15 && b[1].abs() < 1e-15);
+        let mut bad = vec![1.0, 2.0, 2.0, 1.0];
+        assert!(!spd_solve_in_place(&mut bad, 2, &mut [0.0, 0.0]));
+    }
+}

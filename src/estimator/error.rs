@@ -1,0 +1,203 @@
+//! Typed errors of the estimator. Every input error carries a [`Location`]
+//! naming the field and, where it applies, the row (period) and column (factor).
+
+use std::fmt;
+
+use thiserror::Error;
+
+/// Where in the input a problem sits. Rows and columns are zero-based indices
+/// into the request (`returns` row = period, column = factor); the period
+/// label and factor name are added when they are known.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct Location {
+    /// Request field: `returns`, `market_returns`, `factor_names`, `period_labels`, ...
+    pub field: &'static str,
+    /// Zero-based period index.
+    pub row: Option<usize>,
+    /// Zero-based factor index.
+    pub column: Option<usize>,
+    /// Label of the period, when labels were given.
+    pub period: Option<String>,
+    /// Name of the factor, when known.
+    pub factor: Option<String>,
+}
+
+impl Location {
+    /// A location that names only a field.
+    pub fn field(field: &'static str) -> Self {
+        Location { field, ..Location::default() }
+    }
+
+    /// Adds a row.
+    pub fn row(mut self, row: usize, period: Option<&str>) -> Self {
+        self.row = Some(row);
+        self.period = period.map(str::to_owned);
+        self
+    }
+
+    /// Adds a column.
+    pub fn column(mut self, column: usize, factor: Option<&str>) -> Self {
+        self.column = Some(column);
+        self.factor = factor.map(|f| truncate_for_display(f).into_owned());
+        self
+    }
+}
+
+/// Shortens absurdly long names so that error messages stay readable.
+pub(crate) fn truncate_for_display(s: &str) -> std::borrow::Cow<'_, str> {
+    const MAX: usize = 64;
+    if s.len() <= MAX {
+        return s.into();
+    }
+    let mut end = MAX;
+    while !s.is_char_boundary(end) {
+        end -= 1;
+    }
+    format!("{}… ({} bytes)", &s[..end], s.len()).into()
+}
+
+impl fmt::Display for Location {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "field `{}`", self.field)?;
+        if let Some(r) = self.row {
+            write!(f, ", row {r}")?;
+            if let Some(p) = &self.period {
+                write!(f, " (period {p})")?;
+            }
+        }
+        if let Some(c) = self.column {
+            write!(f, ", column {c}")?;
+            if let Some(n) = &self.factor {
+                write!(f, " (factor \"{n}\")")?;
+            }
+        }
+        Ok(())
+    }
+}
+
+/// A problem with the window itself: shapes, values, names or labels.
+#[derive(Clone, Debug, Error, PartialEq)]
+#[non_exhaustive]
+#[allow(missing_docs)] // variant fields are named in the variant docs and messages
+pub enum InputError {
+    /// A field has the wrong number of values.
+    #[error("{at}: expected {expected} values, found {found}")]
+    Shape { at: Location, expected: usize, found: usize },
+    /// ±inf, or NaN where NaN is not a missing-value marker.
+    #[error("{at}: value {value} is not a finite number")]
+    NonFinite { at: Location, value: f64 },
+    /// A missing value where the policy (or the field) does not allow one.
+    #[error("{at}: value is missing ({rule})")]
+    Missing { at: Location, rule: &'static str },
+    /// Two factors share a name.
+    #[error("{at}: duplicate factor name \"{name}\" (first used by column {first_column})")]
+    DuplicateName { at: Location, name: String, first_column: usize },
+    /// A factor has an empty name.
+    #[error("{at}: factor name is empty")]
+    EmptyName { at: Location },
+    /// A factor name is longer than the limit.
+    #[error("{at}: factor name is {length} bytes long, more than the limit of {max}")]
+    NameTooLong { at: Location, length: usize, max: usize },
+    /// A period label is not `YYYY-MM` or `YYYY-MM-DD`.
+    #[error("{at}: period label \"{label}\" is not a date of the form YYYY-MM or YYYY-MM-DD")]
+    BadPeriodLabel { at: Location, label: String },
+    /// Period labels are not strictly increasing.
+    #[error("{at}: period \"{label}\" does not come after the previous period \"{previous}\" (periods must be strictly increasing, oldest first)")]
+    UnsortedPeriods { at: Location, label: String, previous: String },
+    /// The window is shorter than the estimator needs.
+    #[error("field `returns`: {periods} periods is too few; at least {required} are needed ({reason})")]
+    TooFewPeriods { periods: usize, required: usize, reason: &'static str },
+    /// The window has no factor columns.
+    #[error("field `factor_names`: the window has no factors")]
+    NoFactors,
+    /// Every factor was excluded.
+    #[error("field `returns`: no usable factors remain ({excluded} excluded: {summary})")]
+    NoUsableFactors { excluded: usize, summary: String },
+    /// The market return does not vary, so betas are undefined.
+    #[error("field `market_returns`: the market return has zero variance in the window")]
+    MarketZeroVariance,
+}
+
+impl InputError {
+    /// The location the error names, if it names one.
+    pub fn location(&self) -> Option<&Location> {
+        match self {
+            InputError::Shape { at, .. }
+            | InputError::NonFinite { at, .. }
+            | InputError::Missing { at, .. }
+            | InputError::DuplicateName { at, .. }
+            | InputError::EmptyName { at }
+            | InputError::NameTooLong { at, .. }
+            | InputError::BadPeriodLabel { at, .. }
+            | InputError::UnsortedPeriods { at, .. } => Some(at),
+            InputError::TooFewPeriods { .. }
+            | InputError::NoFactors
+            | InputError::NoUsableFactors { .. }
+            | InputError::MarketZeroVariance => None,
+        }
+    }
+}
+
+/// A setting that is unknown, of the wrong type or out of range.
+#[derive(Clone, Debug, Error, PartialEq)]
+#[non_exhaustive]
+#[allow(missing_docs)] // variant fields are named in the variant docs and messages
+pub enum SettingsError {
+    /// The key is not a setting.
+    #[error("unknown setting `{field}`")]
+    UnknownField { field: String },
+    /// The value has the wrong type or is not an accepted word.
+    #[error("setting `{field}`: invalid value \"{value}\": {reason}")]
+    InvalidValue { field: &'static str, value: String, reason: String },
+    /// The value is outside the documented range.
+    #[error("setting `{field}`: value {value} is out of range (allowed: {range})")]
+    OutOfRange { field: &'static str, value: String, range: &'static str },
+    /// A settings file could not be read.
+    #[error("settings file: {message}")]
+    File { message: String },
+}
+
+impl SettingsError {
+    /// The setting the error names, when it names one.
+    pub fn field(&self) -> Option<&str> {
+        match self {
+            SettingsError::UnknownField { field } => Some(field),
+            SettingsError::InvalidValue { field, .. } | SettingsError::OutOfRange { field, .. } => Some(field),
+            SettingsError::File { .. } => None,
+        }
+    }
+}
+
+/// Any failure of an estimation.
+#[derive(Clone, Debug, Error, PartialEq)]
+#[non_exhaustive]
+#[allow(missing_docs)] // variant fields are named in the variant docs and messages
+pub enum EstimateError {
+    /// The window is malformed.
+    #[error(transparent)]
+    Input(#[from] InputError),
+    /// The settings are invalid.
+    #[error(transparent)]
+    Settings(#[from] SettingsError),
+    /// A fixed number of components exceeds what the window supports.
+    #[error("setting `components`: {requested} components requested but at most {allowed} fit this window ({reason})")]
+    TooManyComponents { requested: usize, allowed: usize, reason: String },
+    /// `pricing-r2-gls` needs an invertible held-out covariance.
+    #[error("setting `cv_criterion`: pricing-r2-gls needs a well-conditioned held-out covariance, but fold {fold} has {periods} periods for {factors} factors (condition number {condition:.3e}); use pricing-r2 or sharpe, or fewer factors")]
+    CriterionUnavailable { fold: usize, periods: usize, factors: usize, condition: f64 },
+    /// Every cross-validation score was undefined.
+    #[error("cross-validation produced no finite score ({reason})")]
+    NoFiniteScore { reason: String },
+    /// The resulting portfolio cannot be scaled (for example all weights are zero).
+    #[error("the portfolio is degenerate: {reason}")]
+    DegeneratePortfolio { reason: String },
+    /// A decomposition failed to converge.
+    #[error("numerical failure in {stage}: {detail}")]
+    Numerical { stage: &'static str, detail: String },
+    /// The caller cancelled the computation.
+    #[error("the computation was cancelled")]
+    Cancelled,
+    /// The computation ran past its deadline.
+    #[error("the computation ran past its deadline")]
+    DeadlineExceeded,
+}

@@ -1,0 +1,412 @@
+//! Normalisation of a portfolio direction into weights and the market hedge
+//! (SPEC §7), and every diagnostic of SPEC §8: the [`WeightSet`].
+
+use sha2::{Digest, Sha256};
+
+use super::basis::ComponentBasis;
+use super::cv::CvSurface;
+use super::dense;
+use super::error::{EstimateError, InputError, Location};
+use super::moments::Moments;
+use super::settings::{Method, Normalization, Settings, ValidSettings};
+use super::window::{ReturnPanel, ReturnWindow};
+
+/// Weight and diagnostics of one factor of the panel.
+#[derive(Clone, Debug, PartialEq)]
+pub struct FactorReport {
+    /// Factor name.
+    pub name: String,
+    /// Portfolio weight (0 when excluded).
+    pub weight: f64,
+    /// Annualised mean of the demarketed return, P·μ.
+    pub mean_annualized: f64,
+    /// Annualised volatility of the demarketed return, √P·σ.
+    pub volatility_annualized: f64,
+    /// Annualised Sharpe ratio, √P·μ/σ.
+    pub sharpe_annualized: f64,
+    /// Market beta in the window (0 without demarketing).
+    pub market_beta: f64,
+    /// Column scale s_i of the PCA step (0 for the baselines).
+    pub scale: f64,
+    /// w_i(Σw)_i / w'Σw.
+    pub risk_contribution: f64,
+    /// Exclusion code and reason, when excluded.
+    pub excluded: Option<(&'static str, String)>,
+}
+
+/// Diagnostics of one component.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ComponentReport {
+    /// One-based index.
+    pub index: usize,
+    /// Eigenvalue of C.
+    pub eigenvalue: f64,
+    /// Eigenvalue over tr(C).
+    pub trace_share: f64,
+    /// Annualised Sharpe ratio of the component portfolio.
+    pub sharpe_annualized: f64,
+    /// Coefficient b_k.
+    pub coefficient: f64,
+    /// Σ_F,kk/(Σ_F,kk + γ).
+    pub shrinkage_factor: f64,
+}
+
+/// A condition worth knowing; the weights are still valid.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Warning {
+    /// Stable code.
+    pub code: &'static str,
+    /// Explanation.
+    pub message: String,
+}
+
+/// A factor left out.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct ExcludedReport {
+    /// Factor name.
+    pub factor: String,
+    /// Stable code.
+    pub code: &'static str,
+    /// Explanation.
+    pub reason: String,
+}
+
+/// Overall diagnostics (SPEC §8).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Diagnostics {
+    /// Components used (0 for the baselines).
+    pub num_components: usize,
+    /// Annualised κ used (0 for the baselines).
+    pub kappa: f64,
+    /// Ridge penalty γ.
+    pub gamma: f64,
+    /// K chosen by CV.
+    pub components_cross_validated: bool,
+    /// κ chosen by CV.
+    pub kappa_cross_validated: bool,
+    /// The CV surface (components method only).
+    pub cv_surface: Option<CvSurface>,
+    /// Best CV score.
+    pub cv_best_score: f64,
+    /// Mean held-out annualised Sharpe ratio at the chosen point.
+    pub cv_sharpe: f64,
+    /// In-window annualised Sharpe ratio.
+    pub in_sample_sharpe: f64,
+    /// Ex-ante annualised volatility.
+    pub ex_ante_volatility: f64,
+    /// 1/Σ(|w_i|/Σ|w_j|)².
+    pub effective_factors: f64,
+    /// Gross-weight share of the ⌈0.3N⌉ highest-Sharpe factors.
+    pub top_sharpe_gross_share: f64,
+    /// Σ|w − w_prev| when previous weights were given.
+    pub turnover: Option<f64>,
+    /// Condition number of Σ (infinite when singular).
+    pub covariance_condition_number: f64,
+    /// Factors left out.
+    pub excluded: Vec<ExcludedReport>,
+    /// Warnings.
+    pub warnings: Vec<Warning>,
+    /// Periods in the window.
+    pub periods: usize,
+    /// Factors used.
+    pub factors_used: usize,
+}
+
+/// Weights and diagnostics for one window: the estimator's answer.
+#[derive(Clone, Debug, PartialEq)]
+pub struct WeightSet {
+    /// One entry per panel factor, in panel order.
+    pub factors: Vec<FactorReport>,
+    /// Market hedge weight.
+    pub market_weight: f64,
+    /// Components used, in order.
+    pub components: Vec<ComponentReport>,
+    /// Overall diagnostics.
+    pub diagnostics: Diagnostics,
+    /// `sha256:` hash of the window and the settings.
+    pub fingerprint: String,
+    /// Estimator version.
+    pub estimator_version: &'static str,
+    /// Settings in force.
+    pub settings: Settings,
+}
+
+/// What the components method decided, for the diagnostics.
+pub(crate) struct ComponentModel {
+    pub basis: ComponentBasis,
+    pub k: usize,
+    pub kappa: f64,
+    pub gamma: f64,
+    pub b: Vec<f64>,
+    pub surface: CvSurface,
+    pub best_score: f64,
+    pub held_out_sharpe: f64,
+}
+
+/// Builds the weight set from a direction w̃ over the usable demarketed factors.
+pub(crate) fn assemble(
+    panel: &ReturnPanel,
+    window: &ReturnWindow,
+    mom: &Moments,
+    settings: &ValidSettings,
+    direction: &[f64],
+    model: Option<ComponentModel>,
+    singular_values: Option<Vec<f64>>,
+    mut warnings: Vec<Warning>,
+) -> Result<WeightSet, EstimateError> {
+    let n = window.factors_used();
+    let t = window.periods();
+    let p = f64::from(settings.periods_per_year);
+    let var_dir = mom.portfolio_variance(direction);
+    if !(var_dir > 0.0 && var_dir.is_finite()) {
+        return Err(EstimateError::DegeneratePortfolio {
+            reason: if direction.iter().all(|&w| w == 0.0) {
+                "every weight is zero (for example the L1 penalty removed every component; lower l1_penalty)".into()
+            } else {
+                "the portfolio has zero in-window variance".into()
+            },
+        });
+    }
+    let mean_dir: f64 = direction.iter().zip(&mom.mean).map(|(w, m)| w * m).sum();
+    let hedge_dir: f64 = -direction.iter().zip(&mom.beta).map(|(w, b)| w * b).sum::<f64>();
+    let c = match settings.normalization {
+        Normalization::TargetVolatility => settings.target_volatility / (p * var_dir).sqrt(),
+        Normalization::RiskAversion => match settings.method {
+            // b-implied mean–variance weights divided by γ (SPEC §7).
+            Method::Components | Method::PlugIn => 1.0 / settings.risk_aversion,
+            // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
+            Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
+        },
+        Normalization::GrossExposure => {
+            1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs())
+        }
+    };
+    if !(c.is_finite() && c != 0.0) {
+        return Err(EstimateError::DegeneratePortfolio { reason: format!("normalisation scale {c} is not usable") });
+    }
+    let w: Vec<f64> = direction.iter().map(|x| c * x).collect();
+    let market_weight = if settings.demarket && window.market.is_some() { c * hedge_dir } else { 0.0 };
+    let sigma_w = mom.sigma_times(&w);
+    let var_w: f64 = w.iter().zip(&sigma_w).map(|(a, b)| a * b).sum();
+    let gross: f64 = w.iter().map(|x| x.abs()).sum();
+
+    // Per-factor reports in panel order.
+    let mut factors: Vec<FactorReport> = window
+        .names
+        .iter()
+        .map(|name| FactorReport {
+            name: name.clone(),
+            weight: 0.0,
+            mean_annualized: 0.0,
+            volatility_annualized: 0.0,
+            sharpe_annualized: 0.0,
+            market_beta: 0.0,
+            scale: 0.0,
+            risk_contribution: 0.0,
+            excluded: None,
+        })
+        .collect();
+    let sharpe_ann: Vec<f64> = (0..n).map(|j| p.sqrt() * mom.sharpe(j)).collect();
+    for (j, &col) in window.used.iter().enumerate() {
+        let f = &mut factors[col];
+        f.weight = w[j];
+        f.mean_annualized = p * mom.mean[j];
+        f.volatility_annualized = p.sqrt() * mom.sd[j];
+        f.sharpe_annualized = sharpe_ann[j];
+        f.market_beta = mom.beta[j];
+        f.scale = model.as_ref().map_or(0.0, |m| m.basis.scale[j]);
+        f.risk_contribution = w[j] * sigma_w[j] / var_w;
+    }
+    let excluded: Vec<ExcludedReport> = window
+        .excluded
+        .iter()
+        .map(|e| ExcludedReport {
+            factor: window.names[e.column].clone(),
+            code: e.reason.code(),
+            reason: e.reason.describe(&window.labels),
+        })
+        .collect();
+    for (e, r) in window.excluded.iter().zip(&excluded) {
+        factors[e.column].excluded = Some((r.code, r.reason.clone()));
+    }
+    if !excluded.is_empty() {
+        warnings.push(Warning {
+            code: "factors-excluded",
+            message: format!("{} of {} factors were excluded; see `excluded`", excluded.len(), window.names.len()),
+        });
+    }
+    if t < 2 * n {
+        warnings.push(Warning {
+            code: "short-window",
+            message: format!("{t} periods for {n} factors (fewer than 2N): sample covariances are noisy; expect heavy shrinkage"),
+        });
+    }
+
+    // Concentration diagnostics.
+    let effective_factors = 1.0 / w.iter().map(|x| (x.abs() / gross).powi(2)).sum::<f64>();
+    let top = (0.3 * n as f64).ceil() as usize;
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&a, &b| sharpe_ann[b].total_cmp(&sharpe_ann[a]));
+    let top_sharpe_gross_share = order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross;
+
+    let turnover = turnover(panel, &factors, &mut warnings)?;
+
+    let covariance_condition_number = match singular_values {
+        Some(s) => condition_from_singular(&s, t, n),
+        None => {
+            let a = 1.0 / (t as f64 - 1.0).sqrt();
+            let x = faer::Mat::from_fn(t, n, |i, j| mom.centered[(i, j)] * a);
+            condition_from_singular(&dense::singular_values(x.as_ref(), "covariance condition number")?, t, n)
+        }
+    };
+
+    let mut components = Vec::new();
+    let mut diag = Diagnostics {
+        num_components: 0,
+        kappa: 0.0,
+        gamma: 0.0,
+        components_cross_validated: false,
+        kappa_cross_validated: false,
+        cv_surface: None,
+        cv_best_score: f64::NAN,
+        cv_sharpe: f64::NAN,
+        in_sample_sharpe: p.sqrt() * mean_dir * c.signum() / var_dir.sqrt(),
+        ex_ante_volatility: (p * var_w).sqrt(),
+        effective_factors,
+        top_sharpe_gross_share,
+        turnover,
+        covariance_condition_number,
+        excluded,
+        warnings: Vec::new(),
+        periods: t,
+        factors_used: n,
+    };
+    if let Some(m) = model {
+        for k in 0..m.k {
+            let sf = m.basis.sigma_f[(k, k)];
+            components.push(ComponentReport {
+                index: k + 1,
+                eigenvalue: m.basis.eigenvalues[k],
+                trace_share: m.basis.eigenvalues[k] / m.basis.trace,
+                sharpe_annualized: if sf > 0.0 { p.sqrt() * m.basis.mu_f[k] / sf.sqrt() } else { 0.0 },
+                coefficient: m.b[k],
+                shrinkage_factor: sf / (sf + m.gamma),
+            });
+        }
+        diag.num_components = m.k;
+        diag.kappa = m.kappa;
+        diag.gamma = m.gamma;
+        diag.components_cross_validated = settings.components.fixed().is_none();
+        diag.kappa_cross_validated = settings.kappa.fixed().is_none();
+        diag.cv_best_score = m.best_score;
+        diag.cv_sharpe = m.held_out_sharpe;
+        diag.cv_surface = Some(m.surface);
+    }
+    diag.warnings = warnings;
+
+    Ok(WeightSet {
+        factors,
+        market_weight,
+        components,
+        diagnostics: diag,
+        fingerprint: fingerprint(panel, settings.settings()),
+        estimator_version: super::ESTIMATOR_VERSION,
+        settings: settings.settings().clone(),
+    })
+}
+
+fn condition_from_singular(s: &[f64], t: usize, n: usize) -> f64 {
+    let (Some(&hi), Some(&lo)) = (s.first(), s.last()) else { return f64::INFINITY };
+    if t <= n || !(lo > 0.0) { f64::INFINITY } else { (hi / lo).powi(2) }
+}
+
+fn turnover(
+    panel: &ReturnPanel,
+    factors: &[FactorReport],
+    warnings: &mut Vec<Warning>,
+) -> Result<Option<f64>, EstimateError> {
+    if panel.previous_weights.is_empty() {
+        return Ok(None);
+    }
+    let mut prev = std::collections::HashMap::with_capacity(panel.previous_weights.len());
+    for (i, (name, w)) in panel.previous_weights.iter().enumerate() {
+        if let Some(first) = prev.insert(name.as_str(), (*w, i)) {
+            return Err(InputError::DuplicateName {
+                at: Location::field("previous_weights").column(i, Some(name)),
+                name: name.clone(),
+                first_column: first.1,
+            }
+            .into());
+        }
+    }
+    let mut total = 0.0;
+    for f in factors {
+        let old = prev.remove(f.name.as_str()).map_or(0.0, |(w, _)| w);
+        total += (f.weight - old).abs();
+    }
+    if !prev.is_empty() {
+        let mut unknown: Vec<(&str, (f64, usize))> = prev.into_iter().collect();
+        unknown.sort_by_key(|(_, (_, i))| *i);
+        total += unknown.iter().map(|(_, (w, _))| w.abs()).sum::<f64>();
+        warnings.push(Warning {
+            code: "previous-weights-unknown-factor",
+            message: format!(
+                "{} previous weight(s) name factors not in the window (first: \"{}\"); they count as sold",
+                unknown.len(),
+                super::error::truncate_for_display(unknown[0].0)
+            ),
+        });
+    }
+    Ok(Some(total))
+}
+
+/// SHA-256 over a canonical encoding of the window and the settings: equal
+/// inputs give equal fingerprints on every platform.
+pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
+    let mut h = Sha256::new();
+    h.update(b"keelson-window-v1\0");
+    let put_str = |h: &mut Sha256, s: &str| {
+        h.update((s.len() as u64).to_le_bytes());
+        h.update(s.as_bytes());
+    };
+    let put_f64 = |h: &mut Sha256, v: f64| {
+        // All NaNs hash alike; -0.0 and 0.0 stay distinct like their bits.
+        let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
+        h.update(bits.to_le_bytes());
+    };
+    h.update((panel.rows as u64).to_le_bytes());
+    h.update((panel.cols as u64).to_le_bytes());
+    for n in &panel.factor_names {
+        put_str(&mut h, n);
+    }
+    h.update((panel.period_labels.len() as u64).to_le_bytes());
+    for l in &panel.period_labels {
+        put_str(&mut h, l);
+    }
+    for &v in &panel.returns {
+        put_f64(&mut h, v);
+    }
+    match &panel.market {
+        Some(m) => {
+            h.update([1]);
+            for &v in m {
+                put_f64(&mut h, v);
+            }
+        }
+        None => h.update([0]),
+    }
+    h.update((panel.previous_weights.len() as u64).to_le_bytes());
+    for (n, w) in &panel.previous_weights {
+        put_str(&mut h, n);
+        put_f64(&mut h, *w);
+    }
+    let settings_json = serde_json::to_string(settings).unwrap_or_default();
+    put_str(&mut h, &settings_json);
+    let digest = h.finalize();
+    let mut out = String::with_capacity(7 + 64);
+    out.push_str("sha256:");
+    for b in digest {
+        out.push_str(&format!("{b:02x}"));
+    }
+    out
+}

@@ -1,0 +1,364 @@
+//! The return window: the raw panel a caller sends ([`ReturnPanel`]) and its
+//! validated form ([`ReturnWindow`]) with missing-value and zero-variance
+//! exclusions applied (SPEC §1).
+
+use faer::Mat;
+
+use super::error::{InputError, Location, truncate_for_display};
+use super::settings::{Method, MissingPolicy, ValidSettings};
+
+/// Longest factor name accepted, in bytes.
+pub const MAX_NAME_BYTES: usize = 256;
+/// Periods per CV fold below which a window is too short (SPEC §1).
+pub const MIN_PERIODS_PER_FOLD: usize = 8;
+
+/// A window of returns as a caller gives it, before any validation.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct ReturnPanel {
+    /// Factor names, one per column.
+    pub factor_names: Vec<String>,
+    /// Period labels, one per row, or empty.
+    pub period_labels: Vec<String>,
+    /// Returns, row-major, `rows × cols`; NaN marks a missing value.
+    pub returns: Vec<f64>,
+    /// Number of periods.
+    pub rows: usize,
+    /// Number of factors.
+    pub cols: usize,
+    /// Market excess return per period, if any.
+    pub market: Option<Vec<f64>>,
+    /// Weights currently held, by factor name.
+    pub previous_weights: Vec<(String, f64)>,
+}
+
+/// Why a factor was left out of the estimation.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ExclusionReason {
+    /// The factor has missing values in the window (policy `drop-factor`).
+    MissingValues {
+        /// Number of missing values.
+        count: usize,
+        /// First row with a missing value.
+        first_row: usize,
+    },
+    /// The factor's variance in the window is zero or negligible.
+    ZeroVariance,
+    /// After removing the market exposure nothing is left: the factor is the market.
+    SpannedByMarket,
+}
+
+impl ExclusionReason {
+    /// Stable code for programs.
+    pub fn code(&self) -> &'static str {
+        match self {
+            ExclusionReason::MissingValues { .. } => "missing-values",
+            ExclusionReason::ZeroVariance => "zero-variance",
+            ExclusionReason::SpannedByMarket => "spanned-by-market",
+        }
+    }
+
+    /// Text for people.
+    pub fn describe(&self, labels: &[String]) -> String {
+        match self {
+            ExclusionReason::MissingValues { count, first_row } => {
+                let at = labels.get(*first_row).map_or_else(|| format!("row {first_row}"), |l| format!("row {first_row} ({l})"));
+                format!("{count} missing value(s) in the window, first at {at}")
+            }
+            ExclusionReason::ZeroVariance => "zero or negligible variance in the window".to_owned(),
+            ExclusionReason::SpannedByMarket => {
+                "no variance left after removing the market exposure (the factor is the market)".to_owned()
+            }
+        }
+    }
+}
+
+/// A factor left out, by its column in the panel.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Exclusion {
+    /// Zero-based column in the panel.
+    pub column: usize,
+    /// Why.
+    pub reason: ExclusionReason,
+}
+
+/// A validated window: finite returns of the usable factors only.
+#[derive(Clone, Debug)]
+pub struct ReturnWindow {
+    pub(crate) names: Vec<String>,
+    pub(crate) labels: Vec<String>,
+    /// Panel columns of the usable factors, ascending.
+    pub(crate) used: Vec<usize>,
+    pub(crate) excluded: Vec<Exclusion>,
+    /// T × used.len(), column-major.
+    pub(crate) returns: Mat<f64>,
+    pub(crate) market: Option<Vec<f64>>,
+}
+
+/// A factor whose demarketed volatility is below this fraction of its raw
+/// root-mean-square return is treated as having no variance. Relative, so
+/// that returns in percent and in decimals behave the same.
+const ZERO_VARIANCE_RELATIVE: f64 = 1e-10;
+
+impl ReturnWindow {
+    /// Validates a panel against the settings.
+    ///
+    /// # Errors
+    /// An [`InputError`] naming the field, row and column of the first problem.
+    pub fn new(panel: &ReturnPanel, settings: &ValidSettings) -> Result<ReturnWindow, InputError> {
+        let (rows, cols) = (panel.rows, panel.cols);
+        let name = |c: usize| panel.factor_names.get(c).map(String::as_str);
+        let label = |r: usize| panel.period_labels.get(r).map(String::as_str);
+
+        check_names(&panel.factor_names)?;
+        if cols == 0 {
+            return Err(InputError::NoFactors);
+        }
+        if panel.factor_names.len() != cols {
+            return Err(InputError::Shape {
+                at: Location::field("factor_names"),
+                expected: cols,
+                found: panel.factor_names.len(),
+            });
+        }
+        let expected = rows.checked_mul(cols).unwrap_or(usize::MAX);
+        if panel.returns.len() != expected {
+            return Err(InputError::Shape { at: Location::field("returns"), expected, found: panel.returns.len() });
+        }
+        if !panel.period_labels.is_empty() {
+            check_labels(&panel.period_labels, rows)?;
+        }
+        if let Some(m) = &panel.market {
+            if m.len() != rows {
+                return Err(InputError::Shape { at: Location::field("market_returns"), expected: rows, found: m.len() });
+            }
+            for (r, &v) in m.iter().enumerate() {
+                if v.is_nan() {
+                    return Err(InputError::Missing {
+                        at: Location::field("market_returns").row(r, label(r)),
+                        rule: "the market return may not be missing",
+                    });
+                }
+                if !v.is_finite() {
+                    return Err(InputError::NonFinite { at: Location::field("market_returns").row(r, label(r)), value: v });
+                }
+            }
+        }
+        for (i, &(ref n, w)) in panel.previous_weights.iter().enumerate() {
+            if !w.is_finite() {
+                return Err(InputError::NonFinite {
+                    at: Location::field("previous_weights").column(i, Some(n)),
+                    value: w,
+                });
+            }
+        }
+
+        let min_required = (settings.min_periods as usize).max(if settings.method == Method::Components {
+            settings.folds as usize * MIN_PERIODS_PER_FOLD
+        } else {
+            0
+        });
+        if rows < min_required {
+            let reason = if rows < settings.min_periods as usize {
+                "setting min_periods"
+            } else {
+                "8 periods per cross-validation fold"
+            };
+            return Err(InputError::TooFewPeriods { periods: rows, required: min_required, reason });
+        }
+
+        // Values: ±inf is always an error; NaN follows the missing-value policy.
+        let mut missing = vec![(0usize, usize::MAX); cols];
+        for r in 0..rows {
+            for c in 0..cols {
+                let v = panel.returns[r * cols + c];
+                if v.is_nan() {
+                    if settings.missing_policy == MissingPolicy::Reject {
+                        return Err(InputError::Missing {
+                            at: Location::field("returns").row(r, label(r)).column(c, name(c)),
+                            rule: "missing_policy is reject",
+                        });
+                    }
+                    let e = &mut missing[c];
+                    e.0 += 1;
+                    e.1 = e.1.min(r);
+                } else if !v.is_finite() {
+                    return Err(InputError::NonFinite {
+                        at: Location::field("returns").row(r, label(r)).column(c, name(c)),
+                        value: v,
+                    });
+                }
+            }
+        }
+        let mut excluded = Vec::new();
+        let mut candidates = Vec::new();
+        for (c, &(count, first_row)) in missing.iter().enumerate() {
+            if count > 0 {
+                excluded.push(Exclusion { column: c, reason: ExclusionReason::MissingValues { count, first_row } });
+            } else {
+                candidates.push(c);
+            }
+        }
+
+        let market = panel.market.clone();
+        let demarket_with = if settings.demarket { market.as_deref() } else { None };
+        if let Some(m) = demarket_with {
+            let mean = m.iter().sum::<f64>() / rows as f64;
+            let var = m.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>();
+            let rms = (m.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
+            if !(var > 0.0) || var.sqrt() <= ZERO_VARIANCE_RELATIVE * rms * (rows as f64).sqrt() {
+                return Err(InputError::MarketZeroVariance);
+            }
+        }
+
+        // Zero variance, judged on the demarketed series over the whole window.
+        let mut used = Vec::with_capacity(candidates.len());
+        for &c in &candidates {
+            let col: Vec<f64> = (0..rows).map(|r| panel.returns[r * cols + c]).collect();
+            let rms = (col.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
+            let raw_sd = sample_sd(&col);
+            if !(raw_sd > ZERO_VARIANCE_RELATIVE * rms) {
+                excluded.push(Exclusion { column: c, reason: ExclusionReason::ZeroVariance });
+                continue;
+            }
+            if let Some(m) = demarket_with {
+                let beta = ols_beta(&col, m);
+                let resid: Vec<f64> = col.iter().zip(m).map(|(r, m)| r - beta * m).collect();
+                if !(sample_sd(&resid) > ZERO_VARIANCE_RELATIVE * rms) {
+                    excluded.push(Exclusion { column: c, reason: ExclusionReason::SpannedByMarket });
+                    continue;
+                }
+            }
+            used.push(c);
+        }
+        excluded.sort_by_key(|e| e.column);
+        if used.is_empty() {
+            let summary = excluded
+                .iter()
+                .take(5)
+                .map(|e| format!("\"{}\": {}", truncate_for_display(&panel.factor_names[e.column]), e.reason.code()))
+                .collect::<Vec<_>>()
+                .join(", ");
+            return Err(InputError::NoUsableFactors { excluded: excluded.len(), summary });
+        }
+
+        let returns = Mat::from_fn(rows, used.len(), |r, j| panel.returns[r * cols + used[j]]);
+        Ok(ReturnWindow {
+            names: panel.factor_names.clone(),
+            labels: panel.period_labels.clone(),
+            used,
+            excluded,
+            returns,
+            market,
+        })
+    }
+
+    /// Number of periods.
+    pub fn periods(&self) -> usize {
+        self.returns.nrows()
+    }
+
+    /// Number of usable factors.
+    pub fn factors_used(&self) -> usize {
+        self.used.len()
+    }
+
+    /// All factor names, in panel order.
+    pub fn names(&self) -> &[String] {
+        &self.names
+    }
+
+    /// Factors left out, in panel order.
+    pub fn excluded(&self) -> &[Exclusion] {
+        &self.excluded
+    }
+}
+
+fn check_names(names: &[String]) -> Result<(), InputError> {
+    let mut seen = std::collections::HashMap::with_capacity(names.len());
+    for (c, n) in names.iter().enumerate() {
+        let at = || Location::field("factor_names").column(c, Some(n));
+        if n.len() > MAX_NAME_BYTES {
+            return Err(InputError::NameTooLong { at: at(), length: n.len(), max: MAX_NAME_BYTES });
+        }
+        if n.trim().is_empty() {
+            return Err(InputError::EmptyName { at: Location::field("factor_names").column(c, None) });
+        }
+        if let Some(&first) = seen.get(n.as_str()) {
+            return Err(InputError::DuplicateName { at: at(), name: n.clone(), first_column: first });
+        }
+        seen.insert(n.as_str(), c);
+    }
+    Ok(())
+}
+
+/// Parses `YYYY-MM` or `YYYY-MM-DD` into a sortable key (day 0 for months).
+pub fn parse_period(label: &str) -> Option<(u32, u32, u32)> {
+    let b = label.as_bytes();
+    let digits = |s: &[u8]| s.iter().all(u8::is_ascii_digit);
+    let num = |s: &str| s.parse::<u32>().ok();
+    let (y, m, d) = match b.len() {
+        7 if b[4] == b'-' && digits(&b[..4]) && digits(&b[5..7]) => (num(&label[..4])?, num(&label[5..7])?, 0),
+        10 if b[4] == b'-' && b[7] == b'-' && digits(&b[..4]) && digits(&b[5..7]) && digits(&b[8..10]) => {
+            (num(&label[..4])?, num(&label[5..7])?, num(&label[8..10])?)
+        }
+        _ => return None,
+    };
+    let day_ok = d == 0 && b.len() == 7 || (1..=31).contains(&d);
+    ((1..=12).contains(&m) && day_ok).then_some((y, m, d))
+}
+
+fn check_labels(labels: &[String], rows: usize) -> Result<(), InputError> {
+    if labels.len() != rows {
+        return Err(InputError::Shape { at: Location::field("period_labels"), expected: rows, found: labels.len() });
+    }
+    let mut prev: Option<((u32, u32, u32), &str)> = None;
+    for (r, l) in labels.iter().enumerate() {
+        let at = || Location::field("period_labels").row(r, Some(&truncate_for_display(l)));
+        let key = parse_period(l).ok_or_else(|| InputError::BadPeriodLabel {
+            at: at(),
+            label: truncate_for_display(l).into_owned(),
+        })?;
+        if let Some((pk, pl)) = prev {
+            if key <= pk {
+                return Err(InputError::UnsortedPeriods { at: at(), label: l.clone(), previous: pl.to_owned() });
+            }
+        }
+        prev = Some((key, l));
+    }
+    Ok(())
+}
+
+fn sample_sd(x: &[f64]) -> f64 {
+    let n = x.len() as f64;
+    let mean = x.iter().sum::<f64>() / n;
+    (x.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1.0)).sqrt()
+}
+
+/// OLS slope of `y` on `m` with an intercept: cov(y, m)/var(m).
+pub(crate) fn ols_beta(y: &[f64], m: &[f64]) -> f64 {
+    let n = y.len() as f64;
+    let ym = y.iter().sum::<f64>() / n;
+    let mm = m.iter().sum::<f64>() / n;
+    let mut sxy = 0.0;
+    let mut sxx = 0.0;
+    for (a, b) in y.iter().zip(m) {
+        sxy += (a - ym) * (b - mm);
+        sxx += (b - mm) * (b - mm);
+    }
+    sxy / sxx
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn period_labels_parse() {
+        assert_eq!(parse_period("2001-02"), Some((2001, 2, 0)));
+        assert_eq!(parse_period("2001-02-28"), Some((2001, 2, 28)));
+        assert_eq!(parse_period("2001-13"), None);
+        assert_eq!(parse_period("2001-02-00"), None);
+        assert_eq!(parse_period("01-02"), None);
+        assert_eq!(parse_period("2001/02"), None);
+    }
+}

@@ -1,0 +1,18 @@
+//! Keelson: shrunk, Sharpe-scaled principal-component weights for factor
+//! portfolios, with the diagnostics a portfolio team needs to trust them.
+//!
+//! [`estimator`] is the pure numerical core (SPEC §1–8); [`panel_csv`] reads
+//! windows from CSV files; [`proto`] holds the generated `keelson.v1`
+//! messages and [`convert`] translates between them and the core's types;
+//! [`demo`] builds the invented demonstration market.
+#![warn(missing_docs, unreachable_pub)]
+#![deny(rustdoc::broken_intra_doc_links)]
+
+pub mod estimator;
+
+/// Generated `keelson.v1` protobuf messages with their proto3-JSON mapping.
+#[allow(missing_docs, unreachable_pub, clippy::all)]
+pub mod proto {
+    include!(concat!(env!("OUT_DIR"), "/keelson.v1.rs"));
+    include!(concat!(env!("OUT_DIR"), "/keelson.v1.serde.rs"));
+}
