@@ -16,3 +16,7 @@ pub mod proto {
     include!(concat!(env!("OUT_DIR"), "/keelson.v1.rs"));
     include!(concat!(env!("OUT_DIR"), "/keelson.v1.serde.rs"));
 }
+
+pub mod convert;
+pub mod demo;
+pub mod panel_csv;

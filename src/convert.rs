@@ -1,0 +1,276 @@
+//! Translation between the estimator's types and the `keelson.v1` protobuf
+//! messages. Conversions destructure every field, so a new field on either
+//! side fails to compile until it is handled here.
+
+use crate::estimator::{
+    Choice, CvCriterion, CvSurface, Method, MissingPolicy, Normalization, Scaling, Settings, SettingsError, WeightSet,
+};
+use crate::proto;
+
+/// Proto enum for a scaling.
+pub fn scaling_to_proto(s: Scaling) -> proto::Scaling {
+    match s {
+        Scaling::Sharpe => proto::Scaling::Sharpe,
+        Scaling::SharpeRaw => proto::Scaling::SharpeRaw,
+        Scaling::Standardized => proto::Scaling::Standardized,
+        Scaling::Covariance => proto::Scaling::Covariance,
+        Scaling::RiskPremium => proto::Scaling::RiskPremium,
+    }
+}
+
+fn criterion_to_proto(c: CvCriterion) -> proto::CvCriterion {
+    match c {
+        CvCriterion::Sharpe => proto::CvCriterion::Sharpe,
+        CvCriterion::PricingR2 => proto::CvCriterion::PricingR2,
+        CvCriterion::PricingR2Gls => proto::CvCriterion::PricingR2Gls,
+    }
+}
+
+fn normalization_to_proto(n: Normalization) -> proto::Normalization {
+    match n {
+        Normalization::TargetVolatility => proto::Normalization::TargetVolatility,
+        Normalization::RiskAversion => proto::Normalization::RiskAversion,
+        Normalization::GrossExposure => proto::Normalization::GrossExposure,
+    }
+}
+
+fn missing_to_proto(m: MissingPolicy) -> proto::MissingPolicy {
+    match m {
+        MissingPolicy::DropFactor => proto::MissingPolicy::DropFactor,
+        MissingPolicy::Reject => proto::MissingPolicy::Reject,
+    }
+}
+
+fn method_to_proto(m: Method) -> proto::Method {
+    match m {
+        Method::Components => proto::Method::Components,
+        Method::PlugIn => proto::Method::PlugIn,
+        Method::EqualWeight => proto::Method::EqualWeight,
+    }
+}
+
+/// Every setting, explicitly, as a proto message.
+pub fn settings_to_proto(s: &Settings) -> proto::Settings {
+    let Settings {
+        method,
+        scaling,
+        components,
+        max_components,
+        kappa,
+        kappa_grid_min,
+        kappa_grid_max,
+        kappa_grid_points,
+        l1_penalty,
+        folds,
+        cv_criterion,
+        normalization,
+        target_volatility,
+        risk_aversion,
+        periods_per_year,
+        demarket,
+        missing_policy,
+        rp_gamma,
+        min_periods,
+    } = s.clone();
+    proto::Settings {
+        scaling: scaling_to_proto(scaling).into(),
+        components: components.fixed(),
+        max_components: Some(max_components),
+        kappa: kappa.fixed(),
+        kappa_grid_min: Some(kappa_grid_min),
+        kappa_grid_max: Some(kappa_grid_max),
+        kappa_grid_points: Some(kappa_grid_points),
+        l1_penalty: Some(l1_penalty),
+        folds: Some(folds),
+        cv_criterion: criterion_to_proto(cv_criterion).into(),
+        normalization: normalization_to_proto(normalization).into(),
+        target_volatility: Some(target_volatility),
+        risk_aversion: Some(risk_aversion),
+        periods_per_year: Some(periods_per_year),
+        demarket: Some(demarket),
+        missing_policy: missing_to_proto(missing_policy).into(),
+        rp_gamma: Some(rp_gamma),
+        min_periods: Some(min_periods),
+        method: method_to_proto(method).into(),
+    }
+}
+
+fn unknown_enum(field: &'static str, value: i32) -> SettingsError {
+    SettingsError::InvalidValue { field, value: value.to_string(), reason: "unknown enum value".into() }
+}
+
+/// Applies a proto `Settings` on top of `base`: unset fields keep the base value.
+///
+/// # Errors
+/// [`SettingsError::InvalidValue`] for an enum number this version does not know.
+pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Settings, SettingsError> {
+    let proto::Settings {
+        scaling,
+        components,
+        max_components,
+        kappa,
+        kappa_grid_min,
+        kappa_grid_max,
+        kappa_grid_points,
+        l1_penalty,
+        folds,
+        cv_criterion,
+        normalization,
+        target_volatility,
+        risk_aversion,
+        periods_per_year,
+        demarket,
+        missing_policy,
+        rp_gamma,
+        min_periods,
+        method,
+    } = p.clone();
+    let mut s = base.clone();
+    s.scaling = match proto::Scaling::try_from(scaling).map_err(|_| unknown_enum("scaling", scaling))? {
+        proto::Scaling::Unspecified => base.scaling,
+        proto::Scaling::Sharpe => Scaling::Sharpe,
+        proto::Scaling::SharpeRaw => Scaling::SharpeRaw,
+        proto::Scaling::Standardized => Scaling::Standardized,
+        proto::Scaling::Covariance => Scaling::Covariance,
+        proto::Scaling::RiskPremium => Scaling::RiskPremium,
+    };
+    s.cv_criterion = match proto::CvCriterion::try_from(cv_criterion).map_err(|_| unknown_enum("cv_criterion", cv_criterion))? {
+        proto::CvCriterion::Unspecified => base.cv_criterion,
+        proto::CvCriterion::Sharpe => CvCriterion::Sharpe,
+        proto::CvCriterion::PricingR2 => CvCriterion::PricingR2,
+        proto::CvCriterion::PricingR2Gls => CvCriterion::PricingR2Gls,
+    };
+    s.normalization =
+        match proto::Normalization::try_from(normalization).map_err(|_| unknown_enum("normalization", normalization))? {
+            proto::Normalization::Unspecified => base.normalization,
+            proto::Normalization::TargetVolatility => Normalization::TargetVolatility,
+            proto::Normalization::RiskAversion => Normalization::RiskAversion,
+            proto::Normalization::GrossExposure => Normalization::GrossExposure,
+        };
+    s.missing_policy =
+        match proto::MissingPolicy::try_from(missing_policy).map_err(|_| unknown_enum("missing_policy", missing_policy))? {
+            proto::MissingPolicy::Unspecified => base.missing_policy,
+            proto::MissingPolicy::DropFactor => MissingPolicy::DropFactor,
+            proto::MissingPolicy::Reject => MissingPolicy::Reject,
+        };
+    s.method = match proto::Method::try_from(method).map_err(|_| unknown_enum("method", method))? {
+        proto::Method::Unspecified => base.method,
+        proto::Method::Components => Method::Components,
+        proto::Method::PlugIn => Method::PlugIn,
+        proto::Method::EqualWeight => Method::EqualWeight,
+    };
+    s.components = components.map_or(Choice::Auto, Choice::Fixed);
+    s.kappa = kappa.map_or(Choice::Auto, Choice::Fixed);
+    s.max_components = max_components.unwrap_or(base.max_components);
+    s.kappa_grid_min = kappa_grid_min.unwrap_or(base.kappa_grid_min);
+    s.kappa_grid_max = kappa_grid_max.unwrap_or(base.kappa_grid_max);
+    s.kappa_grid_points = kappa_grid_points.unwrap_or(base.kappa_grid_points);
+    s.l1_penalty = l1_penalty.unwrap_or(base.l1_penalty);
+    s.folds = folds.unwrap_or(base.folds);
+    s.target_volatility = target_volatility.unwrap_or(base.target_volatility);
+    s.risk_aversion = risk_aversion.unwrap_or(base.risk_aversion);
+    s.periods_per_year = periods_per_year.unwrap_or(base.periods_per_year);
+    s.demarket = demarket.unwrap_or(base.demarket);
+    s.rp_gamma = rp_gamma.unwrap_or(base.rp_gamma);
+    s.min_periods = min_periods.unwrap_or(base.min_periods);
+    Ok(s)
+}
+
+fn surface_to_proto(s: &CvSurface) -> proto::CvSurface {
+    let CvSurface { components, kappas, scores, criterion, folds } = s;
+    proto::CvSurface {
+        components: components.iter().map(|&k| k as u32).collect(),
+        kappas: kappas.clone(),
+        scores: Some(proto::Matrix { rows: components.len() as u32, cols: kappas.len() as u32, values: scores.clone() }),
+        criterion: criterion_to_proto(*criterion).into(),
+        folds: *folds as u32,
+    }
+}
+
+/// The proto response for a weight set.
+pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWeightsResponse {
+    let WeightSet { factors, market_weight, components, diagnostics, fingerprint, estimator_version, settings } = ws;
+    let d = diagnostics;
+    proto::ComputeWeightsResponse {
+        weights: factors
+            .iter()
+            .map(|f| proto::FactorWeight {
+                factor: f.name.clone(),
+                weight: f.weight,
+                mean_annualized: f.mean_annualized,
+                volatility_annualized: f.volatility_annualized,
+                sharpe_annualized: f.sharpe_annualized,
+                market_beta: f.market_beta,
+                scale: f.scale,
+                risk_contribution: f.risk_contribution,
+                excluded: f.excluded.is_some(),
+                exclusion_reason: f.excluded.as_ref().map(|(_, r)| r.clone()).unwrap_or_default(),
+            })
+            .collect(),
+        market_weight: *market_weight,
+        components: components
+            .iter()
+            .map(|c| proto::ComponentDiagnostics {
+                index: c.index as u32,
+                eigenvalue: c.eigenvalue,
+                trace_share: c.trace_share,
+                sharpe_annualized: c.sharpe_annualized,
+                coefficient: c.coefficient,
+                shrinkage_factor: c.shrinkage_factor,
+            })
+            .collect(),
+        diagnostics: Some(proto::Diagnostics {
+            num_components: d.num_components as u32,
+            kappa: d.kappa,
+            gamma: d.gamma,
+            components_cross_validated: d.components_cross_validated,
+            kappa_cross_validated: d.kappa_cross_validated,
+            cv_surface: d.cv_surface.as_ref().map(surface_to_proto),
+            cv_best_score: d.cv_best_score,
+            cv_sharpe: d.cv_sharpe,
+            in_sample_sharpe: d.in_sample_sharpe,
+            ex_ante_volatility: d.ex_ante_volatility,
+            effective_factors: d.effective_factors,
+            top_sharpe_gross_share: d.top_sharpe_gross_share,
+            turnover: d.turnover,
+            covariance_condition_number: d.covariance_condition_number,
+            excluded: d
+                .excluded
+                .iter()
+                .map(|e| proto::ExcludedFactor { factor: e.factor.clone(), reason: e.reason.clone(), code: e.code.to_owned() })
+                .collect(),
+            warnings: d.warnings.iter().map(|w| proto::Warning { code: w.code.to_owned(), message: w.message.clone() }).collect(),
+            periods: d.periods as u32,
+            factors_used: d.factors_used as u32,
+            effective_settings: Some(settings_to_proto(settings)),
+        }),
+        fingerprint: fingerprint.clone(),
+        estimator_version: (*estimator_version).to_owned(),
+        request_id: request_id.to_owned(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn settings_round_trip_through_proto() {
+        let mut s = Settings::default();
+        s.scaling = Scaling::RiskPremium;
+        s.components = Choice::Fixed(4);
+        s.kappa = Choice::Fixed(0.7);
+        s.normalization = Normalization::GrossExposure;
+        s.method = Method::PlugIn;
+        let back = settings_from_proto(&settings_to_proto(&s), &Settings::default()).unwrap();
+        assert_eq!(back, s);
+    }
+
+    #[test]
+    fn unset_proto_settings_keep_defaults_and_unknown_enums_fail() {
+        let base = Settings::default();
+        assert_eq!(settings_from_proto(&proto::Settings::default(), &base).unwrap(), base);
+        let bad = proto::Settings { scaling: 99, ..Default::default() };
+        assert!(matches!(settings_from_proto(&bad, &base), Err(SettingsError::InvalidValue { field: "scaling", .. })));
+    }
+}

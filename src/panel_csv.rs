@@ -1,0 +1,313 @@
+//! Reads a return window from CSV: a header row, period labels in the first
+//! column, one factor per other column (decimal returns), an optional market
+//! column, and `NA` or an empty cell for a missing value. Errors name the
+//! file's line and column (both one-based, as an editor shows them).
+
+use std::fmt;
+use std::path::Path;
+
+use thiserror::Error;
+
+use crate::estimator::{Location, ReturnPanel, window::parse_period};
+
+/// A problem in a CSV file, at a line and column.
+#[derive(Clone, Debug, Error, PartialEq)]
+#[error("{file}: line {line}, column {column}{}: {message}", header.as_ref().map(|h| format!(" (\"{h}\")")).unwrap_or_default())]
+pub struct CsvError {
+    /// File name as given.
+    pub file: String,
+    /// One-based line (the header is line 1).
+    pub line: usize,
+    /// One-based column (the period column is column 1).
+    pub column: usize,
+    /// Header of the column, when known.
+    pub header: Option<String>,
+    /// What is wrong.
+    pub message: String,
+}
+
+/// A window read from a CSV file, with the map back to file positions.
+#[derive(Clone, Debug)]
+pub struct CsvPanel {
+    /// The window.
+    pub panel: ReturnPanel,
+    /// File name as given.
+    pub file: String,
+    /// For each factor, its one-based column in the file.
+    pub factor_columns: Vec<usize>,
+    /// One-based column of the market, if any.
+    pub market_column: Option<usize>,
+}
+
+impl CsvPanel {
+    /// Describes an estimator [`Location`] as a file position, when it names a
+    /// row or column of the returns or the market.
+    pub fn position(&self, at: &Location) -> Option<String> {
+        let line = at.row.map(|r| r + 2);
+        let column = match at.field {
+            "returns" | "factor_names" => at.column.and_then(|c| self.factor_columns.get(c).copied()),
+            "market_returns" => self.market_column,
+            "period_labels" => Some(1),
+            _ => None,
+        };
+        match (line, column) {
+            (Some(l), Some(c)) => Some(format!("{}: line {l}, column {c}", self.file)),
+            (Some(l), None) => Some(format!("{}: line {l}", self.file)),
+            (None, Some(c)) => Some(format!("{}: line 1, column {c}", self.file)),
+            (None, None) => None,
+        }
+    }
+}
+
+impl fmt::Display for CsvPanel {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{} ({} periods × {} factors)", self.file, self.panel.rows, self.panel.cols)
+    }
+}
+
+/// Splits one CSV record: commas separate fields, double quotes protect
+/// commas, and `""` inside quotes is a quote (RFC 4180, one line per record).
+fn split_record(line: &str) -> Result<Vec<String>, (usize, &'static str)> {
+    let mut fields = Vec::new();
+    let mut cur = String::new();
+    let mut chars = line.chars().peekable();
+    let mut in_quotes = false;
+    let mut quoted_field = false;
+    while let Some(ch) = chars.next() {
+        if in_quotes {
+            if ch == '"' {
+                if chars.peek() == Some(&'"') {
+                    cur.push('"');
+                    chars.next();
+                } else {
+                    in_quotes = false;
+                }
+            } else {
+                cur.push(ch);
+            }
+        } else {
+            match ch {
+                ',' => {
+                    fields.push(std::mem::take(&mut cur));
+                    quoted_field = false;
+                }
+                '"' if cur.trim().is_empty() && !quoted_field => {
+                    cur.clear();
+                    in_quotes = true;
+                    quoted_field = true;
+                }
+                _ => cur.push(ch),
+            }
+        }
+    }
+    if in_quotes {
+        return Err((fields.len() + 1, "unterminated quoted field"));
+    }
+    fields.push(cur);
+    Ok(fields.into_iter().map(|f| f.trim().to_owned()).collect())
+}
+
+fn err(file: &str, line: usize, column: usize, header: Option<&str>, message: impl Into<String>) -> CsvError {
+    CsvError {
+        file: file.to_owned(),
+        line,
+        column,
+        header: header.map(|h| crate::estimator::error::truncate_for_display(h).into_owned()),
+        message: message.into(),
+    }
+}
+
+/// Parses a cell: a decimal number, or missing (`NA`, `NaN` or empty).
+fn parse_cell(cell: &str) -> Result<f64, &'static str> {
+    if cell.is_empty() || cell.eq_ignore_ascii_case("na") || cell.eq_ignore_ascii_case("nan") {
+        return Ok(f64::NAN);
+    }
+    match cell.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(_) => Err("is not a finite number (±inf is never accepted)"),
+        Err(_) => Err("is not a number"),
+    }
+}
+
+/// Reads a window from CSV text. `market` names the market column, if any.
+///
+/// # Errors
+/// A [`CsvError`] naming the line and column of the first problem.
+pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<CsvPanel, CsvError> {
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
+    let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty());
+    let Some((hline, header)) = lines.next() else {
+        return Err(err(file, 1, 1, None, "the file is empty; expected a header row"));
+    };
+    let header = split_record(header).map_err(|(c, m)| err(file, hline + 1, c, None, m))?;
+    if header.len() < 2 {
+        return Err(err(file, hline + 1, 1, None, "the header needs a period column and at least one factor column"));
+    }
+    let market_column = match market {
+        Some(m) => Some(
+            header
+                .iter()
+                .skip(1)
+                .position(|h| h == m)
+                .map(|i| i + 2)
+                .ok_or_else(|| err(file, hline + 1, 1, None, format!("no column named \"{m}\" for --market")))?,
+        ),
+        None => None,
+    };
+    let mut factor_columns = Vec::new();
+    let mut names: Vec<String> = Vec::new();
+    for (i, h) in header.iter().enumerate().skip(1) {
+        let col = i + 1;
+        if Some(col) == market_column {
+            continue;
+        }
+        if h.is_empty() {
+            return Err(err(file, hline + 1, col, None, "factor name is empty"));
+        }
+        if let Some(first) = names.iter().position(|n| n == h) {
+            return Err(err(file, hline + 1, col, Some(h), format!("duplicate factor name (first in column {})", factor_columns[first])));
+        }
+        names.push(h.clone());
+        factor_columns.push(col);
+    }
+    if names.is_empty() {
+        return Err(err(file, hline + 1, 1, None, "no factor columns besides the market"));
+    }
+
+    let mut labels = Vec::new();
+    let mut values = Vec::new();
+    let mut market_values = market_column.map(|_| Vec::new());
+    let mut previous: Option<((u32, u32, u32), String)> = None;
+    for (idx, line) in lines {
+        let lno = idx + 1;
+        let rec = split_record(line).map_err(|(c, m)| err(file, lno, c, None, m))?;
+        if rec.len() != header.len() {
+            return Err(err(
+                file,
+                lno,
+                rec.len().min(header.len()) + 1,
+                None,
+                format!("row has {} fields but the header has {}", rec.len(), header.len()),
+            ));
+        }
+        let label = &rec[0];
+        let key = parse_period(label).ok_or_else(|| {
+            err(file, lno, 1, Some(&header[0]), format!("period \"{label}\" is not a date of the form YYYY-MM or YYYY-MM-DD"))
+        })?;
+        if let Some((pk, pl)) = &previous {
+            if key <= *pk {
+                return Err(err(
+                    file,
+                    lno,
+                    1,
+                    Some(&header[0]),
+                    format!("period \"{label}\" does not come after \"{pl}\" (periods must be strictly increasing)"),
+                ));
+            }
+        }
+        previous = Some((key, label.clone()));
+        labels.push(label.clone());
+        for (i, cell) in rec.iter().enumerate().skip(1) {
+            let col = i + 1;
+            let v = parse_cell(cell).map_err(|m| err(file, lno, col, Some(&header[i]), format!("value \"{cell}\" {m}")))?;
+            if Some(col) == market_column {
+                if v.is_nan() {
+                    return Err(err(file, lno, col, Some(&header[i]), "the market return is missing (it may never be)"));
+                }
+                if let Some(m) = market_values.as_mut() {
+                    m.push(v);
+                }
+            } else {
+                values.push(v);
+            }
+        }
+    }
+    let rows = labels.len();
+    Ok(CsvPanel {
+        panel: ReturnPanel {
+            cols: names.len(),
+            factor_names: names,
+            period_labels: labels,
+            returns: values,
+            rows,
+            market: market_values,
+            previous_weights: Vec::new(),
+        },
+        file: file.to_owned(),
+        factor_columns,
+        market_column,
+    })
+}
+
+/// Reads previous weights from CSV with the header `factor,weight`.
+///
+/// # Errors
+/// A [`CsvError`] naming the line and column of the first problem.
+pub fn parse_weights(text: &str, file: &str) -> Result<Vec<(String, f64)>, CsvError> {
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
+    let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty());
+    let Some((hline, header)) = lines.next() else {
+        return Err(err(file, 1, 1, None, "the file is empty; expected the header factor,weight"));
+    };
+    let header = split_record(header).map_err(|(c, m)| err(file, hline + 1, c, None, m))?;
+    if header.len() != 2 || !header[0].eq_ignore_ascii_case("factor") || !header[1].eq_ignore_ascii_case("weight") {
+        return Err(err(file, hline + 1, 1, None, "expected the header factor,weight"));
+    }
+    let mut out: Vec<(String, f64)> = Vec::new();
+    for (idx, line) in lines {
+        let lno = idx + 1;
+        let rec = split_record(line).map_err(|(c, m)| err(file, lno, c, None, m))?;
+        if rec.len() != 2 {
+            return Err(err(file, lno, rec.len().min(2) + 1, None, format!("row has {} fields, expected 2", rec.len())));
+        }
+        if out.iter().any(|(n, _)| *n == rec[0]) {
+            return Err(err(file, lno, 1, Some("factor"), format!("factor \"{}\" appears twice", rec[0])));
+        }
+        let w = match parse_cell(&rec[1]) {
+            Ok(v) if !v.is_nan() => v,
+            Ok(_) => return Err(err(file, lno, 2, Some("weight"), "weight is missing")),
+            Err(m) => return Err(err(file, lno, 2, Some("weight"), format!("value \"{}\" {m}", rec[1]))),
+        };
+        out.push((rec[0].clone(), w));
+    }
+    Ok(out)
+}
+
+/// Reads a file to text with the path in the error.
+///
+/// # Errors
+/// The I/O error, with the path.
+pub fn read_text(path: &Path) -> anyhow::Result<String> {
+    use anyhow::Context as _;
+    std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display()))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn reads_a_small_file_with_market_and_missing() {
+        let text = "period,MKT,a,\"b, c\"\n2001-01,0.01,0.02,NA\n2001-02,0.00,-0.01,0.03\n";
+        let p = parse_returns(text, "t.csv", Some("MKT")).unwrap();
+        assert_eq!(p.panel.factor_names, vec!["a", "b, c"]);
+        assert_eq!(p.panel.rows, 2);
+        assert_eq!(p.panel.market, Some(vec![0.01, 0.0]));
+        assert!(p.panel.returns[1].is_nan());
+        assert_eq!(p.factor_columns, vec![3, 4]);
+    }
+
+    #[test]
+    fn errors_name_line_and_column() {
+        let e = parse_returns("period,a,b\n2001-01,0.1,x\n", "t.csv", None).unwrap_err();
+        assert_eq!((e.line, e.column), (2, 3));
+        let e = parse_returns("period,a,b\n2001-01,0.1\n", "t.csv", None).unwrap_err();
+        assert_eq!(e.line, 2);
+        let e = parse_returns("period,a,b\n2001-02,0.1,0.2\n2001-01,0.1,0.2\n", "t.csv", None).unwrap_err();
+        assert_eq!((e.line, e.column), (3, 1));
+        let e = parse_returns("period,a,b\n2001-01,inf,0.2\n", "t.csv", None).unwrap_err();
+        assert_eq!((e.line, e.column), (2, 2));
+        let e = parse_returns("period,a,a\n", "t.csv", None).unwrap_err();
+        assert_eq!((e.line, e.column), (1, 3));
+    }
+}
