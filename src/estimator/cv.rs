@@ -213,6 +213,24 @@ fn quad_form(m: &Mat<f64>, b: &[f64]) -> f64 {
     s
 }
 
+/// Scores within this relative distance of the best are ties. Some scores are
+/// flat in a parameter by construction (with one component the held-out
+/// Sharpe ratio does not depend on κ), and rounding must not pick the winner.
+pub const TIE_TOLERANCE: f64 = 1e-10;
+
+/// The best cell of a row-major score surface with `cols` columns: the
+/// highest finite score, ties (within [`TIE_TOLERANCE`]) going to the
+/// smaller K (row), then the smaller κ (column).
+fn select(scores: &[f64], cols: usize) -> Option<(usize, usize, f64)> {
+    let best = scores.iter().copied().filter(|s| s.is_finite()).fold(f64::NEG_INFINITY, f64::max);
+    if !best.is_finite() {
+        return None;
+    }
+    let floor = best - TIE_TOLERANCE * best.abs().max(f64::MIN_POSITIVE);
+    let i = scores.iter().position(|&s| s.is_finite() && s >= floor)?;
+    Some((i / cols, i % cols, scores[i]))
+}
+
 /// Scores every (K, κ) on every fold, averages over folds and picks the best
 /// (ties: smaller K, then smaller κ).
 pub(crate) fn cross_validate(
@@ -271,16 +289,7 @@ pub(crate) fn cross_validate(
     let nf = folds.len() as f64;
     let scores: Vec<f64> = sums.into_iter().map(|s| s / nf).collect();
 
-    let mut best: Option<(usize, usize, f64)> = None;
-    for ki in 0..ks.len() {
-        for ci in 0..kappas.len() {
-            let s = scores[ki * kappas.len() + ci];
-            if s.is_finite() && best.is_none_or(|(_, _, b)| s > b) {
-                best = Some((ki, ci, s));
-            }
-        }
-    }
-    let Some((bk, bc, best_score)) = best else {
+    let Some((bk, bc, best_score)) = select(&scores, kappas.len()) else {
         return Err(EstimateError::NoFiniteScore {
             reason: "every held-out portfolio had zero variance or every held-out mean was zero".into(),
         });
@@ -317,5 +326,14 @@ mod tests {
         assert_eq!(fold_bounds(10, 3), vec![(0, 4), (4, 7), (7, 10)]);
         assert_eq!(fold_bounds(9, 3), vec![(0, 3), (3, 6), (6, 9)]);
         assert_eq!(min_training_periods(10, 3), 6);
+    }
+
+    #[test]
+    fn selection_breaks_near_ties_towards_small_k_then_small_kappa() {
+        // Row-major 2 × 3 surface: the best value 1.0 appears (up to rounding) at (0, 2) and (1, 0).
+        let scores = [0.5, f64::NAN, 1.0 - 1e-14, 1.0, 0.2, 0.9];
+        assert_eq!(select(&scores, 3).map(|(r, c, _)| (r, c)), Some((0, 2)));
+        assert_eq!(select(&[f64::NAN, f64::NAN], 2), None);
+        assert_eq!(select(&[0.1, 0.3], 2).map(|(r, c, _)| (r, c)), Some((0, 1)));
     }
 }

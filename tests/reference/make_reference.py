@@ -1,0 +1,564 @@
+#!/usr/bin/env python3
+"""Reference values for Keelson's estimator tests.
+
+An independent numpy implementation of SPEC sections 1-8, written from the
+formulas (not from the Rust code), plus checks of single steps against
+general-purpose libraries:
+
+* eigenvectors and PCA: numpy.linalg.eigh
+* ridge: scikit-learn Ridge on X = Sigma_F^{1/2}, y = Sigma_F^{-1/2} mu_F
+* elastic net: scikit-learn ElasticNet (tol 1e-12) on the same X, y
+* plug-in: numpy.linalg.solve, and numpy.linalg.lstsq when Sigma is singular
+
+Inputs are deterministic panels drawn from numpy's PCG64 generator with fixed
+seeds; they are written as CSV next to this script so the Rust tests read
+exactly the same numbers. Outputs go to expected.json.
+
+Usage:
+    python make_reference.py            # (re)write data/*.csv and expected.json
+    python make_reference.py --check    # recompute and fail if anything drifted
+"""
+
+import argparse
+import json
+import math
+import os
+import sys
+
+import numpy as np
+import scipy
+import sklearn
+from sklearn.linear_model import ElasticNet, Ridge
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+DATA = os.path.join(HERE, "data")
+EPS = np.finfo(float).eps
+
+DEFAULTS = dict(
+    method="components",
+    scaling="sharpe",
+    components="auto",
+    max_components=30,
+    kappa="auto",
+    kappa_grid_min=0.01,
+    kappa_grid_max=10.0,
+    kappa_grid_points=40,
+    l1_penalty=0.0,
+    folds=3,
+    cv_criterion="sharpe",
+    normalization="target-volatility",
+    target_volatility=0.10,
+    risk_aversion=3.0,
+    periods_per_year=12,
+    demarket=True,
+    missing_policy="drop-factor",
+    rp_gamma=10.0,
+)
+
+ZERO_VAR_REL = 1e-10
+GLS_MAX_CONDITION = 1e10
+TIE_TOLERANCE = 1e-10
+
+
+# ----------------------------------------------------------------------------
+# Panels
+# ----------------------------------------------------------------------------
+
+def factor_panel(seed, T, N, n_premium, market=True):
+    """Returns with a few loud zero-premium factors and a quiet priced one."""
+    rng = np.random.default_rng(seed)
+    m = 0.006 + 0.045 * rng.standard_normal(T)
+    loud = 0.03 * rng.standard_normal((T, 3))
+    quiet = 0.006 + 0.008 * rng.standard_normal((T, 1))
+    A = 0.8 * rng.standard_normal((N, 3))
+    C = np.zeros((N, 1))
+    C[:n_premium, 0] = 0.5 + 0.5 * rng.random(n_premium)
+    beta = 0.3 * rng.standard_normal(N)
+    R = loud @ A.T + quiet @ C.T + 0.015 * rng.standard_normal((T, N))
+    if market:
+        R = R + np.outer(m, beta)
+    return R, (m if market else None)
+
+
+def labels(T, start_year=2001):
+    return ["%04d-%02d" % (start_year + t // 12, t % 12 + 1) for t in range(T)]
+
+
+def write_csv(path, R, m, names):
+    T = R.shape[0]
+    with open(path, "w") as f:
+        cols = ["period"] + (["MKT"] if m is not None else []) + names
+        f.write(",".join(cols) + "\n")
+        for t, lab in enumerate(labels(T)):
+            row = [lab]
+            if m is not None:
+                row.append(repr(float(m[t])))
+            for v in R[t]:
+                row.append("NA" if np.isnan(v) else repr(float(v)))
+            f.write(",".join(row) + "\n")
+
+
+def make_panels():
+    panels = {}
+    # A: the main case, T > N, with a market.
+    R, m = factor_panel(11, 120, 20, 6)
+    panels["a_main"] = (R, m)
+    # B: fewer periods than factors (the Gram path).
+    R, m = factor_panel(12, 60, 80, 15)
+    panels["b_wide"] = (R, m)
+    # C: missing values in two factors.
+    R, m = factor_panel(13, 96, 15, 5)
+    R[10, 3] = np.nan
+    R[50:53, 9] = np.nan
+    panels["c_missing"] = (R, m)
+    # D: a constant factor, no market.
+    R, _ = factor_panel(14, 72, 12, 4, market=False)
+    R[:, 5] = 0.002
+    panels["d_constant"] = (R, None)
+    # E: one factor is an exact multiple of the market.
+    R, m = factor_panel(15, 120, 10, 3)
+    R[:, 7] = 0.8 * m
+    panels["e_spanned"] = (R, m)
+    return panels
+
+
+# ----------------------------------------------------------------------------
+# The estimator, independently in numpy (SPEC sections 1-8)
+# ----------------------------------------------------------------------------
+
+def kappa_grid(s):
+    if s["kappa"] != "auto":
+        return np.array([float(s["kappa"])])
+    return np.logspace(math.log10(s["kappa_grid_min"]), math.log10(s["kappa_grid_max"]), s["kappa_grid_points"])
+
+
+def usable_columns(R, m, s):
+    """Columns kept after missing values and zero variance (SPEC section 1)."""
+    T, N = R.shape
+    keep, excluded = [], []
+    mm = m if (m is not None and s["demarket"]) else None
+    for j in range(N):
+        x = R[:, j]
+        if np.isnan(x).any():
+            excluded.append((j, "missing-values"))
+            continue
+        rms = math.sqrt(np.mean(x * x))
+        if not np.std(x, ddof=1) > ZERO_VAR_REL * rms:
+            excluded.append((j, "zero-variance"))
+            continue
+        if mm is not None:
+            b = np.cov(x, mm, ddof=1)[0, 1] / np.var(mm, ddof=1)
+            if not np.std(x - b * mm, ddof=1) > ZERO_VAR_REL * rms:
+                excluded.append((j, "spanned-by-market"))
+                continue
+        keep.append(j)
+    return keep, excluded
+
+
+def moments(R, m):
+    """Betas on the block, demarketed returns, mean, covariance (divisor T-1)."""
+    if m is not None:
+        mc = m - m.mean()
+        beta = (R - R.mean(0)).T @ mc / (mc @ mc)
+        Rt = R - np.outer(m, beta)
+    else:
+        beta = np.zeros(R.shape[1])
+        Rt = R.copy()
+    mu = Rt.mean(0)
+    Sigma = np.cov(Rt, rowvar=False, ddof=1)
+    return beta, Rt, mu, Sigma
+
+
+def basis(Rt, mu, Sigma, scaling, rp_gamma, k):
+    """Scale vector, eigenvalues of C (descending), signed Q, mu_F, Sigma_F."""
+    T, N = Rt.shape
+    sd = np.sqrt(np.diag(Sigma))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if scaling == "sharpe":
+            s = mu / sd ** 2
+        elif scaling == "sharpe-raw":
+            s = mu / sd
+        elif scaling == "standardized":
+            s = 1.0 / sd
+        else:
+            s = np.ones(N)
+    s = np.where((sd > 0) & np.isfinite(s), s, 0.0)
+    if scaling == "risk-premium":
+        # Lettau & Pelger (2020): (1/T) R'R + gamma * rbar rbar'.
+        C = Rt.T @ Rt / T + rp_gamma * np.outer(mu, mu)
+        rows = T + 1
+    else:
+        C = np.diag(s) @ Sigma @ np.diag(s)
+        rows = T
+    lam, V = np.linalg.eigh(C)
+    order = np.argsort(-lam, kind="stable")
+    lam, V = lam[order], V[:, order]
+    tol = max(lam[0], 0.0) * max(rows, N) * EPS
+    rank = int(np.sum(lam > tol))
+    k = min(k, N)
+    V = V[:, :k].copy()
+    Q = s[:, None] * V
+    for c in range(k):
+        d = mu @ Q[:, c]
+        flip = d < 0 if d != 0 else V[np.argmax(np.abs(V[:, c])), c] < 0
+        if flip:
+            Q[:, c] *= -1
+            V[:, c] *= -1
+    muF = Q.T @ mu
+    if scaling == "risk-premium":
+        SigmaF = Q.T @ Sigma @ Q
+    else:
+        SigmaF = np.diag(np.maximum(lam[:k], 0.0))
+    return dict(s=s, lam=lam, trace=float(np.trace(C)), Q=Q, V=V, muF=muF, SigmaF=SigmaF, rank=rank, C=C)
+
+
+def soft(x, h):
+    return np.sign(x) * np.maximum(np.abs(x) - h, 0.0)
+
+
+def coefficients(b, k, gamma, l1, diagonal):
+    muF = b["muF"][:k]
+    S = b["SigmaF"][:k, :k]
+    if diagonal:
+        return soft(muF, l1 / 2) / (np.diag(S) + gamma)
+    if l1 == 0:
+        return np.linalg.solve(S + gamma * np.eye(k), muF)
+    # General elastic net through scikit-learn (SPEC section 5 mapping).
+    return sklearn_elastic_net(S, muF, gamma, l1)
+
+
+def sym_sqrt(S):
+    w, U = np.linalg.eigh(S)
+    w = np.maximum(w, 0)
+    return U @ np.diag(np.sqrt(w)) @ U.T, U @ np.diag(1 / np.sqrt(w)) @ U.T
+
+
+def sklearn_elastic_net(S, muF, gamma2, gamma1):
+    K = len(muF)
+    half, inv_half = sym_sqrt(S)
+    X, y = half, inv_half @ muF
+    alpha = gamma1 / (2 * K) + gamma2 / K
+    l1_ratio = gamma1 / (gamma1 + 2 * gamma2)
+    model = ElasticNet(alpha=alpha, l1_ratio=l1_ratio, fit_intercept=False, tol=1e-12, max_iter=10_000_000)
+    model.fit(X, y)
+    return model.coef_.copy()
+
+
+def kns_gamma(trace_k, kappa_annual, P, T):
+    kp = kappa_annual / math.sqrt(P)
+    return trace_k / (kp * kp * T)
+
+
+def fold_bounds(T, folds):
+    idx = np.array_split(np.arange(T), folds)
+    return [(int(b[0]), int(b[-1]) + 1) for b in idx]
+
+
+def fit(R_full, m_full, s):
+    P = s["periods_per_year"]
+    keep, excluded = usable_columns(R_full, m_full, s)
+    R = R_full[:, keep]
+    T, N = R.shape
+    mk = m_full if (m_full is not None and s["demarket"]) else None
+    beta, Rt, mu, Sigma = moments(R, mk)
+    out = dict(keep=keep, excluded=excluded)
+    diagonal = s["scaling"] != "risk-premium"
+
+    if s["method"] == "components":
+        folds = s["folds"]
+        bounds = fold_bounds(T, folds)
+        train_min = T - max(e - b for b, e in bounds)
+        data_cap = min(N, train_min - 2)
+        fixed_k = None if s["components"] == "auto" else int(s["components"])
+        k_need = fixed_k if fixed_k is not None else min(s["max_components"], data_cap)
+        k_need = max(1, min(k_need, N))
+        full = basis(Rt, mu, Sigma, s["scaling"], s["rp_gamma"], k_need)
+        fold_data = []
+        for (b0, b1) in bounds:
+            tr = np.r_[0:b0, b1:T]
+            mtr = mk[tr] if mk is not None else None
+            beta_f, Rt_f, mu_f, Sig_f = moments(R[tr], mtr)
+            bf = basis(Rt_f, mu_f, Sig_f, s["scaling"], s["rp_gamma"], k_need)
+            R2 = R[b0:b1] - (np.outer(mk[b0:b1], beta_f) if mk is not None else 0.0)
+            fold_data.append((len(tr), bf, R2))
+        fold_rank = min(fd[1]["rank"] for fd in fold_data)
+        allowed = min(data_cap, full["rank"], fold_rank)
+        if fixed_k is not None:
+            assert fixed_k <= allowed
+            ks = [fixed_k]
+        else:
+            ks = list(range(1, min(s["max_components"], allowed) + 1))
+        kappas = kappa_grid(s)
+        scores = np.zeros((len(ks), len(kappas)))
+        for (t_train, bf, R2) in fold_data:
+            F2 = R2 @ bf["Q"]
+            mu2 = R2.mean(0)
+            X2 = R2 - mu2
+            S2 = X2.T @ X2 / (R2.shape[0] - 1)
+            if s["cv_criterion"] == "pricing-r2-gls":
+                ev = np.linalg.eigvalsh(S2)
+                assert R2.shape[0] > N and ev[-1] / ev[0] <= GLS_MAX_CONDITION
+            for a, k in enumerate(ks):
+                for c, kap in enumerate(kappas):
+                    g = kns_gamma(np.trace(bf["SigmaF"][:k, :k]), kap, P, t_train)
+                    bb = coefficients(bf, k, g, s["l1_penalty"], diagonal)
+                    if s["cv_criterion"] == "sharpe":
+                        p = F2[:, :k] @ bb
+                        sd = p.std(ddof=1)
+                        sc = math.sqrt(P) * p.mean() / sd if sd > 0 else np.nan
+                    else:
+                        # KNS held-out pricing R^2 with C2 = cov(R2, F2).
+                        C2 = S2 @ bf["Q"][:, :k]
+                        e = mu2 - C2 @ bb
+                        if s["cv_criterion"] == "pricing-r2":
+                            sc = 1 - (e @ e) / (mu2 @ mu2)
+                        else:
+                            sc = 1 - (e @ np.linalg.solve(S2, e)) / (mu2 @ np.linalg.solve(S2, mu2))
+                    scores[a, c] += sc
+        scores /= folds
+        # Highest finite score; scores within 1e-10 (relative) of it are ties,
+        # which go to the smaller K, then the smaller kappa (SPEC section 6).
+        top = np.nanmax(scores)
+        floor = top - TIE_TOLERANCE * max(abs(top), np.finfo(float).tiny)
+        flat = scores.ravel()
+        i = int(np.flatnonzero(np.isfinite(flat) & (flat >= floor))[0])
+        best = (i // len(kappas), i % len(kappas), float(flat[i]))
+        K, kappa = ks[best[0]], float(kappas[best[1]])
+        # Held-out Sharpe at the chosen point.
+        shs = []
+        for (t_train, bf, R2) in fold_data:
+            g = kns_gamma(np.trace(bf["SigmaF"][:K, :K]), kappa, P, t_train)
+            bb = coefficients(bf, K, g, s["l1_penalty"], diagonal)
+            p = R2 @ bf["Q"][:, :K] @ bb
+            shs.append(math.sqrt(P) * p.mean() / p.std(ddof=1))
+        gamma = kns_gamma(np.trace(full["SigmaF"][:K, :K]), kappa, P, T)
+        bvec = coefficients(full, K, gamma, s["l1_penalty"], diagonal)
+        wdir = full["Q"][:, :K] @ bvec
+        out.update(K=K, kappa=kappa, gamma=gamma, b=bvec, scores=scores, ks=ks, kappas=list(kappas),
+                   best_score=best[2], cv_sharpe=float(np.mean(shs)),
+                   eigenvalues=full["lam"][:K], trace=full["trace"], SigmaF_diag=np.diag(full["SigmaF"])[:K],
+                   muF=full["muF"][:K], scale=full["s"])
+    elif s["method"] == "plug-in":
+        wdir = plug_in(Sigma, mu)
+    else:
+        wdir = np.full(N, 1.0 / N)
+
+    var = wdir @ Sigma @ wdir
+    hedge = -(beta @ wdir)
+    norm = s["normalization"]
+    if norm == "target-volatility":
+        c = s["target_volatility"] / math.sqrt(P * var)
+    elif norm == "risk-aversion":
+        c = 1 / s["risk_aversion"] if s["method"] != "equal-weight" else (wdir @ mu) / (s["risk_aversion"] * var)
+    else:
+        c = 1 / (np.abs(wdir).sum() + abs(hedge))
+    w = c * wdir
+    Sw = Sigma @ w
+    wSw = w @ Sw
+    gross = np.abs(w).sum()
+    sr = math.sqrt(P) * mu / np.sqrt(np.diag(Sigma))
+    top = math.ceil(0.3 * N)
+    order = np.argsort(-sr, kind="stable")
+    full_w = np.zeros(R_full.shape[1])
+    full_w[keep] = w
+    rc = np.zeros(R_full.shape[1])
+    rc[keep] = w * Sw / wSw
+    out.update(
+        weights=full_w,
+        market_weight=(c * hedge) if mk is not None else 0.0,
+        risk_contribution=rc,
+        in_sample_sharpe=math.sqrt(P) * (w @ mu) / math.sqrt(wSw),
+        ex_ante_volatility=math.sqrt(P * wSw),
+        effective_factors=1 / np.sum((np.abs(w) / gross) ** 2),
+        top_sharpe_gross_share=np.abs(w[order[:top]]).sum() / gross,
+        condition_number=(np.linalg.cond(Sigma) if T > N else math.inf),
+    )
+    return out
+
+
+def plug_in(Sigma, mu):
+    """Sigma^{-1} mu by numpy.linalg.solve, or lstsq (minimum norm) when singular."""
+    N = len(mu)
+    if np.linalg.matrix_rank(Sigma) < N:
+        return np.linalg.lstsq(Sigma, mu, rcond=None)[0]
+    return np.linalg.solve(Sigma, mu)
+
+
+# ----------------------------------------------------------------------------
+# Cases and single-step checks
+# ----------------------------------------------------------------------------
+
+CASES = [
+    ("a_main", "defaults", {}),
+    ("a_main", "fixed_k3_kappa05", {"components": 3, "kappa": 0.5}),
+    ("a_main", "sharpe_raw", {"scaling": "sharpe-raw"}),
+    ("a_main", "standardized", {"scaling": "standardized"}),
+    ("a_main", "covariance", {"scaling": "covariance"}),
+    ("a_main", "risk_premium", {"scaling": "risk-premium"}),
+    ("a_main", "risk_premium_fixed", {"scaling": "risk-premium", "components": 4, "kappa": 1.0}),
+    ("a_main", "kns_all_factors", {"scaling": "covariance", "components": 20, "kappa": 0.8}),
+    ("a_main", "pricing_r2", {"cv_criterion": "pricing-r2"}),
+    ("a_main", "pricing_r2_gls", {"cv_criterion": "pricing-r2-gls", "max_components": 8}),
+    ("a_main", "elastic_net_diag", {"components": 6, "kappa": 1.0, "l1_penalty": 0.002}),
+    ("a_main", "elastic_net_general", {"scaling": "risk-premium", "components": 5, "kappa": 0.7, "l1_penalty": 0.0005}),
+    ("a_main", "gross_exposure", {"normalization": "gross-exposure"}),
+    ("a_main", "risk_aversion", {"normalization": "risk-aversion", "risk_aversion": 5.0}),
+    ("a_main", "no_demarket", {"demarket": False}),
+    ("a_main", "plug_in", {"method": "plug-in"}),
+    ("a_main", "equal_weight", {"method": "equal-weight"}),
+    ("a_main", "weekly_small_grid", {"periods_per_year": 52, "kappa_grid_points": 7, "folds": 4}),
+    ("b_wide", "defaults", {}),
+    ("b_wide", "covariance_fixed", {"scaling": "covariance", "components": 5, "kappa": 1.0}),
+    ("b_wide", "risk_premium", {"scaling": "risk-premium", "max_components": 10}),
+    ("b_wide", "plug_in", {"method": "plug-in"}),
+    ("c_missing", "defaults", {}),
+    ("d_constant", "standardized", {"scaling": "standardized"}),
+    ("e_spanned", "defaults", {}),
+]
+
+
+def jsonable(x):
+    if isinstance(x, (np.ndarray, list, tuple)):
+        return [jsonable(v) for v in x]
+    if isinstance(x, (np.integer,)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        x = float(x)
+        if math.isnan(x):
+            return "nan"
+        if math.isinf(x):
+            return "inf" if x > 0 else "-inf"
+        return x
+    if isinstance(x, dict):
+        return {k: jsonable(v) for k, v in x.items()}
+    return x
+
+
+def load_panel(name):
+    """Reads back the CSV exactly as the Rust tests will."""
+    path = os.path.join(DATA, name + ".csv")
+    with open(path) as f:
+        header = f.readline().strip().split(",")
+        rows = [line.strip().split(",") for line in f if line.strip()]
+    has_m = header[1] == "MKT"
+    m = np.array([float(r[1]) for r in rows]) if has_m else None
+    first = 2 if has_m else 1
+    R = np.array([[np.nan if v == "NA" else float(v) for v in r[first:]] for r in rows])
+    return R, m
+
+
+def step_checks():
+    """Single steps against numpy and scikit-learn on panel a_main."""
+    R, m = load_panel("a_main")
+    beta, Rt, mu, Sigma = moments(R, m)
+    checks = {}
+    # Eigenvectors of the scaled matrix: numpy.linalg.eigh.
+    for scaling in ["sharpe", "sharpe-raw", "standardized", "covariance", "risk-premium"]:
+        b = basis(Rt, mu, Sigma, scaling, 10.0, 8)
+        checks["eigh_" + scaling] = dict(eigenvalues=b["lam"], vectors=b["V"].T, q=b["Q"].T, mu_f=b["muF"],
+                                         sigma_f=b["SigmaF"], trace=b["trace"])
+    # Ridge on the general (risk-premium) components: scikit-learn Ridge.
+    b = basis(Rt, mu, Sigma, "risk-premium", 10.0, 6)
+    half, inv_half = sym_sqrt(b["SigmaF"])
+    gamma = kns_gamma(np.trace(b["SigmaF"]), 0.9, 12, R.shape[0])
+    ridge = Ridge(alpha=gamma, fit_intercept=False, solver="cholesky").fit(half, inv_half @ b["muF"])
+    checks["ridge_sklearn"] = dict(k=6, kappa=0.9, gamma=gamma, coef=ridge.coef_)
+    # Elastic net: scikit-learn ElasticNet at tol 1e-12.
+    l1 = 0.0004
+    checks["elastic_net_sklearn"] = dict(k=6, kappa=0.9, gamma=gamma, l1=l1,
+                                         coef=sklearn_elastic_net(b["SigmaF"], b["muF"], gamma, l1))
+    # Plug-in: numpy.linalg.solve.
+    checks["plug_in_solve"] = dict(weights=np.linalg.solve(Sigma, mu))
+    Rb, mb = load_panel("b_wide")
+    _, _, mub, Sigb = moments(Rb, mb)
+    checks["plug_in_lstsq_wide"] = dict(weights=np.linalg.lstsq(Sigb, mub, rcond=None)[0])
+    return checks
+
+
+def compute_all():
+    cases = []
+    for panel, name, overrides in CASES:
+        s = dict(DEFAULTS)
+        s.update(overrides)
+        R, m = load_panel(panel)
+        out = fit(R, m, s)
+        out.pop("keep")
+        out["excluded"] = [[int(j), code] for j, code in out["excluded"]]
+        cases.append(dict(panel=panel, name=name, settings=overrides, expected=jsonable(out)))
+    return dict(
+        generator="tests/reference/make_reference.py",
+        versions=dict(numpy=np.__version__, scipy=scipy.__version__, sklearn=sklearn.__version__),
+        cases=cases,
+        steps=jsonable(step_checks()),
+    )
+
+
+def compare(a, b, path="", rtol=1e-10):
+    """Tolerant comparison of two JSON trees; returns a list of differences."""
+    diffs = []
+    if isinstance(a, dict) and isinstance(b, dict):
+        for k in sorted(set(a) | set(b)):
+            if k == "versions":
+                continue
+            if k not in a or k not in b:
+                diffs.append(f"{path}/{k}: missing on one side")
+            else:
+                diffs += compare(a[k], b[k], f"{path}/{k}", rtol)
+    elif isinstance(a, list) and isinstance(b, list):
+        if len(a) != len(b):
+            diffs.append(f"{path}: length {len(a)} != {len(b)}")
+        else:
+            scale = max([abs(v) for v in a if isinstance(v, float)] + [0.0])
+            for i, (x, y) in enumerate(zip(a, b)):
+                if isinstance(x, float) and isinstance(y, float):
+                    if abs(x - y) > rtol * max(scale, abs(x), abs(y), 1e-300):
+                        diffs.append(f"{path}[{i}]: {x!r} != {y!r}")
+                else:
+                    diffs += compare(x, y, f"{path}[{i}]", rtol)
+    elif isinstance(a, float) and isinstance(b, float):
+        if abs(a - b) > rtol * max(abs(a), abs(b), 1e-300):
+            diffs.append(f"{path}: {a!r} != {b!r}")
+    elif a != b:
+        diffs.append(f"{path}: {a!r} != {b!r}")
+    return diffs
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--check", action="store_true", help="recompute and compare with the committed files")
+    args = ap.parse_args()
+    os.makedirs(DATA, exist_ok=True)
+    panels = make_panels()
+    names = {}
+    for key, (R, m) in panels.items():
+        names[key] = ["f%02d" % (j + 1) for j in range(R.shape[1])]
+    if args.check:
+        for key, (R, m) in panels.items():
+            tmp = os.path.join(DATA, key + ".csv.check")
+            write_csv(tmp, R, m, names[key])
+            same = open(tmp).read() == open(os.path.join(DATA, key + ".csv")).read()
+            os.remove(tmp)
+            if not same:
+                print(f"drift: data/{key}.csv differs from a fresh draw", file=sys.stderr)
+                return 1
+        fresh = compute_all()
+        with open(os.path.join(HERE, "expected.json")) as f:
+            committed = json.load(f)
+        diffs = compare(fresh, committed)
+        if diffs:
+            print("drift in expected.json:\n  " + "\n  ".join(diffs[:30]), file=sys.stderr)
+            return 1
+        print(f"reference values reproduce ({len(fresh['cases'])} cases, {len(fresh['steps'])} step checks)")
+        return 0
+    for key, (R, m) in panels.items():
+        write_csv(os.path.join(DATA, key + ".csv"), R, m, names[key])
+    result = compute_all()
+    with open(os.path.join(HERE, "expected.json"), "w") as f:
+        json.dump(result, f, indent=1, allow_nan=False)
+        f.write("\n")
+    print(f"wrote {len(result['cases'])} cases and {len(result['steps'])} step checks")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
