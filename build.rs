@@ -16,9 +16,6 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     std::fs::write(&descriptor_path, &bytes)?;
 
     prost_build::Config::new().compile_fds(fds)?;
-    pbjson_build::Builder::new()
-        .register_descriptors(&bytes)?
-        .emit_fields()
-        .build(&[".keelson.v1"])?;
+    pbjson_build::Builder::new().register_descriptors(&bytes)?.emit_fields().build(&[".keelson.v1"])?;
     Ok(())
 }

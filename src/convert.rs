@@ -124,7 +124,7 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
         rp_gamma,
         min_periods,
         method,
-    } = p.clone();
+    } = *p;
     let mut s = base.clone();
     s.scaling = match proto::Scaling::try_from(scaling).map_err(|_| unknown_enum("scaling", scaling))? {
         proto::Scaling::Unspecified => base.scaling,
@@ -134,25 +134,28 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
         proto::Scaling::Covariance => Scaling::Covariance,
         proto::Scaling::RiskPremium => Scaling::RiskPremium,
     };
-    s.cv_criterion = match proto::CvCriterion::try_from(cv_criterion).map_err(|_| unknown_enum("cv_criterion", cv_criterion))? {
-        proto::CvCriterion::Unspecified => base.cv_criterion,
-        proto::CvCriterion::Sharpe => CvCriterion::Sharpe,
-        proto::CvCriterion::PricingR2 => CvCriterion::PricingR2,
-        proto::CvCriterion::PricingR2Gls => CvCriterion::PricingR2Gls,
+    s.cv_criterion =
+        match proto::CvCriterion::try_from(cv_criterion).map_err(|_| unknown_enum("cv_criterion", cv_criterion))? {
+            proto::CvCriterion::Unspecified => base.cv_criterion,
+            proto::CvCriterion::Sharpe => CvCriterion::Sharpe,
+            proto::CvCriterion::PricingR2 => CvCriterion::PricingR2,
+            proto::CvCriterion::PricingR2Gls => CvCriterion::PricingR2Gls,
+        };
+    s.normalization = match proto::Normalization::try_from(normalization)
+        .map_err(|_| unknown_enum("normalization", normalization))?
+    {
+        proto::Normalization::Unspecified => base.normalization,
+        proto::Normalization::TargetVolatility => Normalization::TargetVolatility,
+        proto::Normalization::RiskAversion => Normalization::RiskAversion,
+        proto::Normalization::GrossExposure => Normalization::GrossExposure,
     };
-    s.normalization =
-        match proto::Normalization::try_from(normalization).map_err(|_| unknown_enum("normalization", normalization))? {
-            proto::Normalization::Unspecified => base.normalization,
-            proto::Normalization::TargetVolatility => Normalization::TargetVolatility,
-            proto::Normalization::RiskAversion => Normalization::RiskAversion,
-            proto::Normalization::GrossExposure => Normalization::GrossExposure,
-        };
-    s.missing_policy =
-        match proto::MissingPolicy::try_from(missing_policy).map_err(|_| unknown_enum("missing_policy", missing_policy))? {
-            proto::MissingPolicy::Unspecified => base.missing_policy,
-            proto::MissingPolicy::DropFactor => MissingPolicy::DropFactor,
-            proto::MissingPolicy::Reject => MissingPolicy::Reject,
-        };
+    s.missing_policy = match proto::MissingPolicy::try_from(missing_policy)
+        .map_err(|_| unknown_enum("missing_policy", missing_policy))?
+    {
+        proto::MissingPolicy::Unspecified => base.missing_policy,
+        proto::MissingPolicy::DropFactor => MissingPolicy::DropFactor,
+        proto::MissingPolicy::Reject => MissingPolicy::Reject,
+    };
     s.method = match proto::Method::try_from(method).map_err(|_| unknown_enum("method", method))? {
         proto::Method::Unspecified => base.method,
         proto::Method::Components => Method::Components,
@@ -181,7 +184,11 @@ fn surface_to_proto(s: &CvSurface) -> proto::CvSurface {
     proto::CvSurface {
         components: components.iter().map(|&k| k as u32).collect(),
         kappas: kappas.clone(),
-        scores: Some(proto::Matrix { rows: components.len() as u32, cols: kappas.len() as u32, values: scores.clone() }),
+        scores: Some(proto::Matrix {
+            rows: components.len() as u32,
+            cols: kappas.len() as u32,
+            values: scores.clone(),
+        }),
         criterion: criterion_to_proto(*criterion).into(),
         folds: *folds as u32,
     }
@@ -237,9 +244,17 @@ pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWe
             excluded: d
                 .excluded
                 .iter()
-                .map(|e| proto::ExcludedFactor { factor: e.factor.clone(), reason: e.reason.clone(), code: e.code.to_owned() })
+                .map(|e| proto::ExcludedFactor {
+                    factor: e.factor.clone(),
+                    reason: e.reason.clone(),
+                    code: e.code.to_owned(),
+                })
                 .collect(),
-            warnings: d.warnings.iter().map(|w| proto::Warning { code: w.code.to_owned(), message: w.message.clone() }).collect(),
+            warnings: d
+                .warnings
+                .iter()
+                .map(|w| proto::Warning { code: w.code.to_owned(), message: w.message.clone() })
+                .collect(),
             periods: d.periods as u32,
             factors_used: d.factors_used as u32,
             effective_settings: Some(settings_to_proto(settings)),
@@ -256,12 +271,14 @@ mod tests {
 
     #[test]
     fn settings_round_trip_through_proto() {
-        let mut s = Settings::default();
-        s.scaling = Scaling::RiskPremium;
-        s.components = Choice::Fixed(4);
-        s.kappa = Choice::Fixed(0.7);
-        s.normalization = Normalization::GrossExposure;
-        s.method = Method::PlugIn;
+        let s = Settings {
+            scaling: Scaling::RiskPremium,
+            components: Choice::Fixed(4),
+            kappa: Choice::Fixed(0.7),
+            normalization: Normalization::GrossExposure,
+            method: Method::PlugIn,
+            ..Settings::default()
+        };
         let back = settings_from_proto(&settings_to_proto(&s), &Settings::default()).unwrap();
         assert_eq!(back, s);
     }

@@ -11,12 +11,42 @@ use crate::estimator::ReturnPanel;
 pub const DEMO_PERIODS: usize = 120;
 
 const NAMES: [&str; 36] = [
-    "harrow_value", "lantern_momentum", "basalt_quality", "kestrel_carry", "tamarind_size", "gull_lowvol",
-    "ember_profit", "quarry_invest", "sable_accrual", "willow_reversal", "cobalt_issuance", "fennel_beta",
-    "marlin_growth", "thistle_yield", "osprey_leverage", "juniper_skew", "garnet_liquidity", "heron_sentiment",
-    "saffron_seasonal", "pewter_distress", "otter_turnover", "larch_breadth", "cinder_crowding", "mistral_drift",
-    "nettle_dispersion", "plover_earnings", "russet_margin", "slate_capex", "tern_duration", "umber_credit",
-    "vetch_volume", "wren_industry", "yarrow_insider", "zephyr_analyst", "alder_payout", "bramble_tangible",
+    "harrow_value",
+    "lantern_momentum",
+    "basalt_quality",
+    "kestrel_carry",
+    "tamarind_size",
+    "gull_lowvol",
+    "ember_profit",
+    "quarry_invest",
+    "sable_accrual",
+    "willow_reversal",
+    "cobalt_issuance",
+    "fennel_beta",
+    "marlin_growth",
+    "thistle_yield",
+    "osprey_leverage",
+    "juniper_skew",
+    "garnet_liquidity",
+    "heron_sentiment",
+    "saffron_seasonal",
+    "pewter_distress",
+    "otter_turnover",
+    "larch_breadth",
+    "cinder_crowding",
+    "mistral_drift",
+    "nettle_dispersion",
+    "plover_earnings",
+    "russet_margin",
+    "slate_capex",
+    "tern_duration",
+    "umber_credit",
+    "vetch_volume",
+    "wren_industry",
+    "yarrow_insider",
+    "zephyr_analyst",
+    "alder_payout",
+    "bramble_tangible",
 ];
 
 /// SplitMix64 (Steele, Lea & Flood 2014): small, fast, and fully reproducible.
@@ -53,13 +83,16 @@ pub fn synthetic_panel(seed: u64, periods: usize, factors: usize) -> ReturnPanel
     let mut c = vec![0.0; factors * quiet];
     for i in 0..factors {
         beta.push(0.3 * rng.normal());
+        // Premium-carrying factors swing less with the sectors: their premium
+        // sits in a quiet direction of the covariance matrix.
+        let loudness = if i % 3 == 0 { 0.25 } else { 0.8 };
         for j in 0..loud {
-            a[i * loud + j] = 0.9 * rng.normal();
+            a[i * loud + j] = loudness * rng.normal();
         }
-        // A third of the factors load on the quiet styles.
+        // Every third factor carries the premium through both quiet styles.
         if i % 3 == 0 {
             for j in 0..quiet {
-                c[i * quiet + j] = 0.8 * rng.normal();
+                c[i * quiet + j] = 0.5 + 0.5 * rng.uniform();
             }
         }
     }
@@ -67,10 +100,10 @@ pub fn synthetic_panel(seed: u64, periods: usize, factors: usize) -> ReturnPanel
     let mut market = Vec::with_capacity(periods);
     for _ in 0..periods {
         let m = 0.006 + 0.045 * rng.normal();
-        let g: Vec<f64> = (0..loud).map(|_| 0.035 * rng.normal()).collect();
-        let h: Vec<f64> = (0..quiet).map(|_| 0.004 + 0.009 * rng.normal()).collect();
+        let g: Vec<f64> = (0..loud).map(|_| 0.03 * rng.normal()).collect();
+        let h: Vec<f64> = (0..quiet).map(|_| 0.004 + 0.007 * rng.normal()).collect();
         for i in 0..factors {
-            let mut r = beta[i] * m + 0.012 * rng.normal();
+            let mut r = beta[i] * m + 0.01 * rng.normal();
             for j in 0..loud {
                 r += a[i * loud + j] * g[j];
             }

@@ -7,6 +7,13 @@
 //! [`demo`] builds the invented demonstration market.
 #![warn(missing_docs, unreachable_pub)]
 #![deny(rustdoc::broken_intra_doc_links)]
+// `!(x > 0.0)` is deliberate throughout: it is true for NaN as well.
+#![allow(clippy::neg_cmp_op_on_partial_ord)]
+// Numerical kernels index several arrays with one loop variable.
+#![allow(clippy::needless_range_loop)]
+// Input errors carry their location (field, row, column, period, factor) by
+// value; they are built once per rejected request, never in a loop.
+#![allow(clippy::result_large_err)]
 
 pub mod estimator;
 

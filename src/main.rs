@@ -11,7 +11,7 @@ use std::process::ExitCode;
 
 use anyhow::Context as _;
 use clap::{Parser, Subcommand, ValueEnum};
-use keelson::estimator::{self, EstimateError, FitOptions, Settings, SettingsError};
+use keelson::estimator::{self, EstimateError, FitOptions, Method, Scaling, Settings, SettingsError};
 use keelson::panel_csv;
 
 /// Shrunk, Sharpe-scaled principal-component weights for factor portfolios.
@@ -189,7 +189,14 @@ fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
             text.push('\n');
             text.push_str(&cli::output::table(&ws, "Tessaly Exchange (invented)", &panel.period_labels));
             text.push('\n');
-            text.push_str(&cli::demo_explanation(&ws));
+            let plain = (settings.scaling != Scaling::Covariance && settings.method == Method::Components)
+                .then(|| {
+                    let mut s = settings.settings().clone();
+                    s.scaling = Scaling::Covariance;
+                    s.check().ok().and_then(|s| estimator::fit_with(&panel, &s, &options(&a.settings)).ok())
+                })
+                .flatten();
+            text.push_str(&cli::demo_explanation(&ws, plain.as_ref()));
             text.push_str(cli::CAUTION);
             print(&text)?;
         }

@@ -165,7 +165,13 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
             return Err(err(file, hline + 1, col, None, "factor name is empty"));
         }
         if let Some(first) = names.iter().position(|n| n == h) {
-            return Err(err(file, hline + 1, col, Some(h), format!("duplicate factor name (first in column {})", factor_columns[first])));
+            return Err(err(
+                file,
+                hline + 1,
+                col,
+                Some(h),
+                format!("duplicate factor name (first in column {})", factor_columns[first]),
+            ));
         }
         names.push(h.clone());
         factor_columns.push(col);
@@ -192,27 +198,40 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
         }
         let label = &rec[0];
         let key = parse_period(label).ok_or_else(|| {
-            err(file, lno, 1, Some(&header[0]), format!("period \"{label}\" is not a date of the form YYYY-MM or YYYY-MM-DD"))
+            err(
+                file,
+                lno,
+                1,
+                Some(&header[0]),
+                format!("period \"{label}\" is not a date of the form YYYY-MM or YYYY-MM-DD"),
+            )
         })?;
-        if let Some((pk, pl)) = &previous {
-            if key <= *pk {
-                return Err(err(
-                    file,
-                    lno,
-                    1,
-                    Some(&header[0]),
-                    format!("period \"{label}\" does not come after \"{pl}\" (periods must be strictly increasing)"),
-                ));
-            }
+        if let Some((pk, pl)) = &previous
+            && key <= *pk
+        {
+            return Err(err(
+                file,
+                lno,
+                1,
+                Some(&header[0]),
+                format!("period \"{label}\" does not come after \"{pl}\" (periods must be strictly increasing)"),
+            ));
         }
         previous = Some((key, label.clone()));
         labels.push(label.clone());
         for (i, cell) in rec.iter().enumerate().skip(1) {
             let col = i + 1;
-            let v = parse_cell(cell).map_err(|m| err(file, lno, col, Some(&header[i]), format!("value \"{cell}\" {m}")))?;
+            let v =
+                parse_cell(cell).map_err(|m| err(file, lno, col, Some(&header[i]), format!("value \"{cell}\" {m}")))?;
             if Some(col) == market_column {
                 if v.is_nan() {
-                    return Err(err(file, lno, col, Some(&header[i]), "the market return is missing (it may never be)"));
+                    return Err(err(
+                        file,
+                        lno,
+                        col,
+                        Some(&header[i]),
+                        "the market return is missing (it may never be)",
+                    ));
                 }
                 if let Some(m) = market_values.as_mut() {
                     m.push(v);
@@ -258,7 +277,13 @@ pub fn parse_weights(text: &str, file: &str) -> Result<Vec<(String, f64)>, CsvEr
         let lno = idx + 1;
         let rec = split_record(line).map_err(|(c, m)| err(file, lno, c, None, m))?;
         if rec.len() != 2 {
-            return Err(err(file, lno, rec.len().min(2) + 1, None, format!("row has {} fields, expected 2", rec.len())));
+            return Err(err(
+                file,
+                lno,
+                rec.len().min(2) + 1,
+                None,
+                format!("row has {} fields, expected 2", rec.len()),
+            ));
         }
         if out.iter().any(|(n, _)| *n == rec[0]) {
             return Err(err(file, lno, 1, Some("factor"), format!("factor \"{}\" appears twice", rec[0])));

@@ -109,12 +109,7 @@ fn check_case(case: &Value) {
     close(&format!("{name} ex_ante_volatility"), d.ex_ante_volatility, num(&e["ex_ante_volatility"]), 0.0);
     close(&format!("{name} effective_factors"), d.effective_factors, num(&e["effective_factors"]), 0.0);
     close(&format!("{name} top_sharpe_gross_share"), d.top_sharpe_gross_share, num(&e["top_sharpe_gross_share"]), 0.0);
-    close(
-        &format!("{name} condition_number"),
-        d.covariance_condition_number,
-        num(&e["condition_number"]),
-        0.0,
-    );
+    close(&format!("{name} condition_number"), d.covariance_condition_number, num(&e["condition_number"]), 0.0);
 
     let excluded: Vec<(usize, String)> = e["excluded"]
         .as_array()
@@ -213,9 +208,9 @@ fn eigenvectors_match_numpy_eigh_on_both_paths() {
             }
             close_vec(&format!("{tag} mu_F"), &basis.mu_f, &nums(&e["mu_f"]));
             let sf = e["sigma_f"].as_array().unwrap();
-            for a in 0..8 {
+            for (a, sf_row) in sf.iter().enumerate().take(8) {
                 let row: Vec<f64> = (0..8).map(|b| basis.sigma_f[(a, b)]).collect();
-                let want = nums(&sf[a]);
+                let want = nums(sf_row);
                 let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(basis.sigma_f[(0, 0)].abs());
                 for (b, (x, y)) in row.iter().zip(&want).enumerate() {
                     close(&format!("{tag} sigma_f[{a},{b}]"), *x, *y, scale);
@@ -252,7 +247,7 @@ fn elastic_net_matches_scikit_learn_and_satisfies_kkt() {
     let info = ShrinkagePath::new(&basis, false, l1).solve(6, gamma, &mut b);
     assert!(info.converged);
     let want = nums(&e["coef"]);
-    assert!(want.iter().any(|&x| x == 0.0), "the reference case should zero at least one coefficient");
+    assert!(want.contains(&0.0), "the reference case should zero at least one coefficient");
     close_vec("elastic net coefficients", &b, &want);
     // KKT conditions of min (μ−Σb)'Σ⁻¹(μ−Σb) + γ₂‖b‖² + γ₁‖b‖₁ (derived by hand from the subgradient):
     // (μ − Σb)_j − γ₂ b_j = (γ₁/2)·sign(b_j) when b_j ≠ 0, and |(μ − Σb)_j| ≤ γ₁/2 when b_j = 0.

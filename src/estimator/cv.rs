@@ -142,7 +142,12 @@ impl Fold {
                 let lmin = vals.last().copied().unwrap_or(0.0);
                 let condition = if lmin > 0.0 { lmax / lmin } else { f64::INFINITY };
                 if t2 <= n || !(condition <= GLS_MAX_CONDITION) {
-                    return Err(EstimateError::CriterionUnavailable { fold: index, periods: t2, factors: n, condition });
+                    return Err(EstimateError::CriterionUnavailable {
+                        fold: index,
+                        periods: t2,
+                        factors: n,
+                        condition,
+                    });
                 }
                 // Whitening W = Λ^{-1/2}U' turns the Σ₂⁻¹-weighted norm into a plain one.
                 let w = Mat::from_fn(n, n, |a, b| vecs[(b, a)] / vals[a].sqrt());
@@ -273,7 +278,11 @@ pub(crate) fn cross_validate(
             let handles: Vec<_> = folds.iter().map(|f| scope.spawn(|| score_fold(f))).collect();
             handles
                 .into_iter()
-                .map(|h| h.join().unwrap_or_else(|_| Err(EstimateError::Numerical { stage: "cross-validation", detail: "worker panicked".into() })))
+                .map(|h| {
+                    h.join().unwrap_or_else(|_| {
+                        Err(EstimateError::Numerical { stage: "cross-validation", detail: "worker panicked".into() })
+                    })
+                })
                 .collect()
         })
     };

@@ -3,11 +3,11 @@
 //! machine's thread count. Parallelism in the estimator is across independent
 //! tasks (cross-validation folds), never inside a reduction.
 
+use faer::diag::Diag;
 use faer::dyn_stack::{MemBuffer, MemStack};
 use faer::linalg::evd::{self, ComputeEigenvectors};
 use faer::linalg::matmul::matmul;
 use faer::linalg::svd::{self, ComputeSvdVectors};
-use faer::diag::Diag;
 use faer::{Accum, Mat, MatRef, Par};
 
 use super::error::EstimateError;
@@ -45,10 +45,7 @@ pub(crate) fn mul_tn(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
 /// Symmetric eigendecomposition (lower triangle read), eigenvalues in
 /// descending order with ties kept in solver order (a stable sort), and the
 /// matching unit eigenvectors as columns.
-pub(crate) fn sym_eigen_desc(
-    a: MatRef<'_, f64>,
-    stage: &'static str,
-) -> Result<(Vec<f64>, Mat<f64>), EstimateError> {
+pub(crate) fn sym_eigen_desc(a: MatRef<'_, f64>, stage: &'static str) -> Result<(Vec<f64>, Mat<f64>), EstimateError> {
     let n = a.nrows();
     let mut s = Diag::<f64>::zeros(n);
     let mut u = Mat::<f64>::zeros(n, n);
@@ -64,11 +61,11 @@ pub(crate) fn sym_eigen_desc(
     Ok((sorted_vals, sorted_vecs))
 }
 
+/// Singular values (descending), U and V of a thin SVD.
+pub(crate) type Svd = (Vec<f64>, Mat<f64>, Mat<f64>);
+
 /// Thin SVD A = U diag(s) V', singular values descending.
-pub(crate) fn thin_svd(
-    a: MatRef<'_, f64>,
-    stage: &'static str,
-) -> Result<(Vec<f64>, Mat<f64>, Mat<f64>), EstimateError> {
+pub(crate) fn thin_svd(a: MatRef<'_, f64>, stage: &'static str) -> Result<Svd, EstimateError> {
     let (m, n) = a.shape();
     let k = m.min(n);
     let mut s = Diag::<f64>::zeros(k);

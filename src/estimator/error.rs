@@ -89,6 +89,9 @@ pub enum InputError {
     /// A missing value where the policy (or the field) does not allow one.
     #[error("{at}: value is missing ({rule})")]
     Missing { at: Location, rule: &'static str },
+    /// A factor has no value at all in the window.
+    #[error("{at}: the factor has no values in the window (every one of its {periods} periods is missing)")]
+    AllMissing { at: Location, periods: usize },
     /// Two factors share a name.
     #[error("{at}: duplicate factor name \"{name}\" (first used by column {first_column})")]
     DuplicateName { at: Location, name: String, first_column: usize },
@@ -102,7 +105,9 @@ pub enum InputError {
     #[error("{at}: period label \"{label}\" is not a date of the form YYYY-MM or YYYY-MM-DD")]
     BadPeriodLabel { at: Location, label: String },
     /// Period labels are not strictly increasing.
-    #[error("{at}: period \"{label}\" does not come after the previous period \"{previous}\" (periods must be strictly increasing, oldest first)")]
+    #[error(
+        "{at}: period \"{label}\" does not come after the previous period \"{previous}\" (periods must be strictly increasing, oldest first)"
+    )]
     UnsortedPeriods { at: Location, label: String, previous: String },
     /// The window is shorter than the estimator needs.
     #[error("field `returns`: {periods} periods is too few; at least {required} are needed ({reason})")]
@@ -125,6 +130,7 @@ impl InputError {
             InputError::Shape { at, .. }
             | InputError::NonFinite { at, .. }
             | InputError::Missing { at, .. }
+            | InputError::AllMissing { at, .. }
             | InputError::DuplicateName { at, .. }
             | InputError::EmptyName { at }
             | InputError::NameTooLong { at, .. }
@@ -173,9 +179,9 @@ impl SettingsError {
 #[non_exhaustive]
 #[allow(missing_docs)] // variant fields are named in the variant docs and messages
 pub enum EstimateError {
-    /// The window is malformed.
+    /// The window is malformed (boxed: locations carry names and labels).
     #[error(transparent)]
-    Input(#[from] InputError),
+    Input(Box<InputError>),
     /// The settings are invalid.
     #[error(transparent)]
     Settings(#[from] SettingsError),
@@ -183,7 +189,9 @@ pub enum EstimateError {
     #[error("setting `components`: {requested} components requested but at most {allowed} fit this window ({reason})")]
     TooManyComponents { requested: usize, allowed: usize, reason: String },
     /// `pricing-r2-gls` needs an invertible held-out covariance.
-    #[error("setting `cv_criterion`: pricing-r2-gls needs a well-conditioned held-out covariance, but fold {fold} has {periods} periods for {factors} factors (condition number {condition:.3e}); use pricing-r2 or sharpe, or fewer factors")]
+    #[error(
+        "setting `cv_criterion`: pricing-r2-gls needs a well-conditioned held-out covariance, but fold {fold} has {periods} periods for {factors} factors (condition number {condition:.3e}); use pricing-r2 or sharpe, or fewer factors"
+    )]
     CriterionUnavailable { fold: usize, periods: usize, factors: usize, condition: f64 },
     /// Every cross-validation score was undefined.
     #[error("cross-validation produced no finite score ({reason})")]
@@ -200,4 +208,10 @@ pub enum EstimateError {
     /// The computation ran past its deadline.
     #[error("the computation ran past its deadline")]
     DeadlineExceeded,
+}
+
+impl From<InputError> for EstimateError {
+    fn from(e: InputError) -> Self {
+        EstimateError::Input(Box::new(e))
+    }
 }

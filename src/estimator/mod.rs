@@ -22,11 +22,11 @@ pub mod window;
 pub use basis::{ComponentBasis, EigenPath};
 pub use cv::{CrossValidation, CvSurface};
 pub use error::{EstimateError, InputError, Location, SettingsError};
-pub use settings::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, ValidSettings};
 pub use moments::Moments;
+pub use settings::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, ValidSettings};
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, plug_in};
 pub use stop::Stop;
-pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, WeightSet, Warning};
+pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, Warning, WeightSet};
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
 
 use cv::{Fold, fold_bounds, min_training_periods};
@@ -68,7 +68,11 @@ pub fn fit(panel: &ReturnPanel, settings: &ValidSettings) -> Result<WeightSet, E
 /// the window, [`EstimateError::CriterionUnavailable`],
 /// [`EstimateError::DegeneratePortfolio`], and [`EstimateError::Cancelled`] /
 /// [`EstimateError::DeadlineExceeded`] when `options.stop` fires.
-pub fn fit_with(panel: &ReturnPanel, settings: &ValidSettings, options: &FitOptions) -> Result<WeightSet, EstimateError> {
+pub fn fit_with(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    options: &FitOptions,
+) -> Result<WeightSet, EstimateError> {
     options.stop.check()?;
     let window = ReturnWindow::new(panel, settings)?;
     let market = if settings.demarket { window.market.as_deref() } else { None };
@@ -127,7 +131,15 @@ fn fit_components(
     let mut fold_data = Vec::with_capacity(folds);
     for (i, &bounds) in fold_bounds(t, folds).iter().enumerate() {
         options.stop.check()?;
-        fold_data.push(Fold::prepare(window.returns.as_ref(), market, bounds, i, settings, k_need, options.eigen_path)?);
+        fold_data.push(Fold::prepare(
+            window.returns.as_ref(),
+            market,
+            bounds,
+            i,
+            settings,
+            k_need,
+            options.eigen_path,
+        )?);
     }
     let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(0);
     let allowed = data_cap.min(full.rank).min(fold_rank);
@@ -138,10 +150,10 @@ fn fit_components(
             full.rank
         )
     };
-    if let Some(k) = fixed_k {
-        if k > allowed {
-            return Err(EstimateError::TooManyComponents { requested: k, allowed, reason: reason() });
-        }
+    if let Some(k) = fixed_k
+        && k > allowed
+    {
+        return Err(EstimateError::TooManyComponents { requested: k, allowed, reason: reason() });
     }
     if allowed == 0 {
         return Err(EstimateError::DegeneratePortfolio {
@@ -172,19 +184,28 @@ fn fit_components(
     if fixed_k.is_none() && ks.len() > 1 && cv.k == *ks.last().unwrap_or(&0) && cv.k < n {
         warnings.push(Warning {
             code: "components-at-grid-edge",
-            message: format!("cross-validation chose K = {}, the largest in its grid; raise max_components if the window allows", cv.k),
+            message: format!(
+                "cross-validation chose K = {}, the largest in its grid; raise max_components if the window allows",
+                cv.k
+            ),
         });
     }
     if settings.kappa.fixed().is_none() && (cv.kappa == kappas[0] || cv.kappa == kappas[kappas.len() - 1]) {
         warnings.push(Warning {
             code: "kappa-at-grid-edge",
-            message: format!("cross-validation chose κ = {:.4}, an end of its grid [{}, {}]", cv.kappa, kappas[0], kappas[kappas.len() - 1]),
+            message: format!(
+                "cross-validation chose κ = {:.4}, an end of its grid [{}, {}]",
+                cv.kappa,
+                kappas[0],
+                kappas[kappas.len() - 1]
+            ),
         });
     }
 
     let gamma = kns_gamma(full.trace_f(cv.k), settings.kappa_per_period(cv.kappa), t);
     let mut b = vec![0.0; full.len()];
-    let info = ShrinkagePath::new(&full, settings.scaling.has_diagonal_components(), settings.l1_penalty).solve(cv.k, gamma, &mut b);
+    let info = ShrinkagePath::new(&full, settings.scaling.has_diagonal_components(), settings.l1_penalty)
+        .solve(cv.k, gamma, &mut b);
     if !info.converged {
         warnings.push(Warning {
             code: "solver-not-converged",

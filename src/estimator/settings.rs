@@ -61,13 +61,8 @@ pub enum Scaling {
 
 impl Scaling {
     /// Every scaling, in documentation order.
-    pub const ALL: [Scaling; 5] = [
-        Scaling::Sharpe,
-        Scaling::SharpeRaw,
-        Scaling::Standardized,
-        Scaling::Covariance,
-        Scaling::RiskPremium,
-    ];
+    pub const ALL: [Scaling; 5] =
+        [Scaling::Sharpe, Scaling::SharpeRaw, Scaling::Standardized, Scaling::Covariance, Scaling::RiskPremium];
 
     /// Whether the component covariance Q'ΣQ is diagonal in the fitting sample,
     /// so that ridge and elastic net have closed forms per component.
@@ -162,9 +157,7 @@ impl<'de, T: Deserialize<'de>> Deserialize<'de> for Choice<T> {
         match Repr::<T>::deserialize(deserializer)? {
             Repr::Value(v) => Ok(Choice::Fixed(v)),
             Repr::Word(w) if w == "auto" => Ok(Choice::Auto),
-            Repr::Word(w) => Err(serde::de::Error::custom(format!(
-                "expected \"auto\" or a number, found \"{w}\""
-            ))),
+            Repr::Word(w) => Err(serde::de::Error::custom(format!("expected \"auto\" or a number, found \"{w}\""))),
         }
     }
 }
@@ -251,11 +244,7 @@ fn check_range<T: PartialOrd + Copy + fmt::Display>(
     ok: bool,
     range: &'static str,
 ) -> Result<(), SettingsError> {
-    if ok {
-        Ok(())
-    } else {
-        Err(SettingsError::OutOfRange { field, value: value.to_string(), range })
-    }
+    if ok { Ok(()) } else { Err(SettingsError::OutOfRange { field, value: value.to_string(), range }) }
 }
 
 impl Settings {
@@ -342,12 +331,7 @@ impl Settings {
         let kmin = s.kappa_grid_min;
         let kmax = s.kappa_grid_max;
         check_range("kappa_grid_min", kmin, kmin.is_finite() && kmin > 0.0 && kmin <= 100.0, "(0, 100]")?;
-        check_range(
-            "kappa_grid_max",
-            kmax,
-            kmax.is_finite() && kmax > kmin && kmax <= 100.0,
-            "(kappa_grid_min, 100]",
-        )?;
+        check_range("kappa_grid_max", kmax, kmax.is_finite() && kmax > kmin && kmax <= 100.0, "(kappa_grid_min, 100]")?;
         check_range(
             "kappa_grid_points",
             s.kappa_grid_points,
@@ -361,12 +345,7 @@ impl Settings {
         check_range("target_volatility", tv, tv.is_finite() && tv > 0.0 && tv <= 10.0, "(0, 10]")?;
         let ra = s.risk_aversion;
         check_range("risk_aversion", ra, ra.is_finite() && ra > 0.0 && ra <= 1e6, "(0, 1e6]")?;
-        check_range(
-            "periods_per_year",
-            s.periods_per_year,
-            (1..=100_000).contains(&s.periods_per_year),
-            "1..=100000",
-        )?;
+        check_range("periods_per_year", s.periods_per_year, (1..=100_000).contains(&s.periods_per_year), "1..=100000")?;
         let g = s.rp_gamma;
         check_range("rp_gamma", g, g.is_finite() && (-1.0..=1e6).contains(&g), "[-1, 1e6]")?;
         check_range("min_periods", s.min_periods, (3..=1_000_000).contains(&s.min_periods), "3..=1000000")?;
@@ -375,15 +354,9 @@ impl Settings {
 }
 
 /// Settings that passed [`Settings::check`]: the only form the estimator takes.
-#[derive(Clone, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq, Default)]
 pub struct ValidSettings {
     inner: Settings,
-}
-
-impl Default for ValidSettings {
-    fn default() -> Self {
-        ValidSettings { inner: Settings::default() }
-    }
 }
 
 impl std::ops::Deref for ValidSettings {
@@ -416,10 +389,7 @@ impl ValidSettings {
         let hi = self.inner.kappa_grid_max.log10();
         let step = (hi - lo) / (n - 1) as f64;
         // numpy.linspace sets the last point to the end exactly.
-        (0..n)
-            .map(|i| if i + 1 == n { hi } else { lo + step * i as f64 })
-            .map(|e| 10f64.powf(e))
-            .collect()
+        (0..n).map(|i| if i + 1 == n { hi } else { lo + step * i as f64 }).map(|e| 10f64.powf(e)).collect()
     }
 }
 
@@ -455,14 +425,12 @@ mod tests {
 
     #[test]
     fn check_names_the_field_out_of_range() {
-        let mut s = Settings::default();
-        s.target_volatility = -0.1;
+        let s = Settings { target_volatility: -0.1, ..Settings::default() };
         match s.check() {
             Err(SettingsError::OutOfRange { field, .. }) => assert_eq!(field, "target_volatility"),
             other => panic!("unexpected {other:?}"),
         }
-        let mut s = Settings::default();
-        s.kappa = Choice::Fixed(f64::NAN);
+        let s = Settings { kappa: Choice::Fixed(f64::NAN), ..Settings::default() };
         assert!(matches!(s.check(), Err(SettingsError::OutOfRange { field: "kappa", .. })));
     }
 

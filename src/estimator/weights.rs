@@ -144,6 +144,7 @@ pub(crate) struct ComponentModel {
 }
 
 /// Builds the weight set from a direction w̃ over the usable demarketed factors.
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn assemble(
     panel: &ReturnPanel,
     window: &ReturnWindow,
@@ -177,9 +178,7 @@ pub(crate) fn assemble(
             // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
             Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
         },
-        Normalization::GrossExposure => {
-            1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs())
-        }
+        Normalization::GrossExposure => 1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs()),
     };
     if !(c.is_finite() && c != 0.0) {
         return Err(EstimateError::DegeneratePortfolio { reason: format!("normalisation scale {c} is not usable") });
@@ -238,7 +237,9 @@ pub(crate) fn assemble(
     if t < 2 * n {
         warnings.push(Warning {
             code: "short-window",
-            message: format!("{t} periods for {n} factors (fewer than 2N): sample covariances are noisy; expect heavy shrinkage"),
+            message: format!(
+                "{t} periods for {n} factors (fewer than 2N): sample covariances are noisy; expect heavy shrinkage"
+            ),
         });
     }
 

@@ -61,7 +61,9 @@ impl ExclusionReason {
     pub fn describe(&self, labels: &[String]) -> String {
         match self {
             ExclusionReason::MissingValues { count, first_row } => {
-                let at = labels.get(*first_row).map_or_else(|| format!("row {first_row}"), |l| format!("row {first_row} ({l})"));
+                let at = labels
+                    .get(*first_row)
+                    .map_or_else(|| format!("row {first_row}"), |l| format!("row {first_row} ({l})"));
                 format!("{count} missing value(s) in the window, first at {at}")
             }
             ExclusionReason::ZeroVariance => "zero or negligible variance in the window".to_owned(),
@@ -120,7 +122,7 @@ impl ReturnWindow {
                 found: panel.factor_names.len(),
             });
         }
-        let expected = rows.checked_mul(cols).unwrap_or(usize::MAX);
+        let expected = rows.saturating_mul(cols);
         if panel.returns.len() != expected {
             return Err(InputError::Shape { at: Location::field("returns"), expected, found: panel.returns.len() });
         }
@@ -129,7 +131,11 @@ impl ReturnWindow {
         }
         if let Some(m) = &panel.market {
             if m.len() != rows {
-                return Err(InputError::Shape { at: Location::field("market_returns"), expected: rows, found: m.len() });
+                return Err(InputError::Shape {
+                    at: Location::field("market_returns"),
+                    expected: rows,
+                    found: m.len(),
+                });
             }
             for (r, &v) in m.iter().enumerate() {
                 if v.is_nan() {
@@ -139,7 +145,10 @@ impl ReturnWindow {
                     });
                 }
                 if !v.is_finite() {
-                    return Err(InputError::NonFinite { at: Location::field("market_returns").row(r, label(r)), value: v });
+                    return Err(InputError::NonFinite {
+                        at: Location::field("market_returns").row(r, label(r)),
+                        value: v,
+                    });
                 }
             }
         }
@@ -192,6 +201,12 @@ impl ReturnWindow {
         let mut excluded = Vec::new();
         let mut candidates = Vec::new();
         for (c, &(count, first_row)) in missing.iter().enumerate() {
+            if count == rows {
+                return Err(InputError::AllMissing {
+                    at: Location::field("returns").column(c, name(c)),
+                    periods: rows,
+                });
+            }
             if count > 0 {
                 excluded.push(Exclusion { column: c, reason: ExclusionReason::MissingValues { count, first_row } });
             } else {
@@ -314,14 +329,12 @@ fn check_labels(labels: &[String], rows: usize) -> Result<(), InputError> {
     let mut prev: Option<((u32, u32, u32), &str)> = None;
     for (r, l) in labels.iter().enumerate() {
         let at = || Location::field("period_labels").row(r, Some(&truncate_for_display(l)));
-        let key = parse_period(l).ok_or_else(|| InputError::BadPeriodLabel {
-            at: at(),
-            label: truncate_for_display(l).into_owned(),
-        })?;
-        if let Some((pk, pl)) = prev {
-            if key <= pk {
-                return Err(InputError::UnsortedPeriods { at: at(), label: l.clone(), previous: pl.to_owned() });
-            }
+        let key = parse_period(l)
+            .ok_or_else(|| InputError::BadPeriodLabel { at: at(), label: truncate_for_display(l).into_owned() })?;
+        if let Some((pk, pl)) = prev
+            && key <= pk
+        {
+            return Err(InputError::UnsortedPeriods { at: at(), label: l.clone(), previous: pl.to_owned() });
         }
         prev = Some((key, l));
     }

@@ -1,0 +1,229 @@
+//! The `keelson` command end to end: outputs, exit codes, and every kind of
+//! bad input giving a clear error that names the line and column.
+
+use std::path::PathBuf;
+use std::process::{Command, Output};
+
+use serde_json::Value;
+
+fn keelson(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_keelson")).args(args).output().expect("keelson runs")
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+fn stdout(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+/// Writes `text` to a fresh file in the test's temporary folder.
+fn file(name: &str, text: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!("keelson-cli-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+/// A valid window: `t` months, `n` factors, with market column MKT.
+fn window(t: usize, n: usize) -> String {
+    let panel = keelson::demo::synthetic_panel(3, t, n);
+    keelson::demo::to_csv(&panel)
+}
+
+/// Applies `edit` to cell (line, column) of CSV text, both one-based.
+fn edit_cell(csv: &str, line: usize, column: usize, value: &str) -> String {
+    csv.lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i + 1 == line {
+                let mut cells: Vec<&str> = l.split(',').collect();
+                cells[column - 1] = value;
+                cells.join(",")
+            } else {
+                l.to_owned()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\n")
+        + "\n"
+}
+
+/// Runs `fit` on `csv` and asserts a data error (exit 1, no panic) whose message contains every needle.
+fn assert_data_error(name: &str, csv: &str, extra: &[&str], needles: &[&str]) {
+    let p = file(name, csv);
+    let mut args = vec!["fit", "--returns", p.to_str().unwrap(), "--market", "MKT"];
+    args.extend_from_slice(extra);
+    let o = keelson(&args);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(1), "{name}: exit code, stderr: {err}");
+    assert!(!err.contains("panicked"), "{name}: panic: {err}");
+    for n in needles {
+        assert!(err.contains(n), "{name}: stderr lacks {n:?}: {err}");
+    }
+}
+
+#[test]
+fn fit_prints_a_table_and_proto_json() {
+    let p = file("ok.csv", &window(120, 12));
+    let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let out = stdout(&o);
+    assert!(out.contains("harrow_value") && out.contains("market hedge") && out.contains("fingerprint sha256:"));
+
+    let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT", "--format", "json"]);
+    assert_eq!(o.status.code(), Some(0));
+    let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+    // Proto3 JSON mapping: lowerCamelCase names.
+    let weights = v["weights"].as_array().unwrap();
+    assert_eq!(weights.len(), 12);
+    assert!(weights.iter().all(|w| w["factor"].is_string() && w["weight"].is_number()));
+    assert!(v["marketWeight"].is_number());
+    assert!(v["diagnostics"]["numComponents"].as_u64().unwrap() >= 1);
+    assert!(v["diagnostics"]["kappa"].as_f64().unwrap() > 0.0);
+    assert!(v["diagnostics"]["excluded"].as_array().unwrap().is_empty());
+    assert!(v["fingerprint"].as_str().unwrap().starts_with("sha256:"));
+    assert_eq!(v["diagnostics"]["effectiveSettings"]["scaling"], "SCALING_SHARPE");
+}
+
+#[test]
+fn settings_from_flags_and_files_apply() {
+    let p = file("set.csv", &window(120, 10));
+    let cfg = file("cfg.toml", "scaling = \"covariance\"\ncomponents = 3\n");
+    let o = keelson(&[
+        "fit",
+        "--returns",
+        p.to_str().unwrap(),
+        "--market",
+        "MKT",
+        "--config",
+        cfg.to_str().unwrap(),
+        "--set",
+        "kappa=0.5",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["diagnostics"]["numComponents"], 3);
+    assert_eq!(v["diagnostics"]["kappa"], 0.5);
+    assert_eq!(v["diagnostics"]["effectiveSettings"]["scaling"], "SCALING_COVARIANCE");
+}
+
+#[test]
+fn previous_weights_give_turnover() {
+    let p = file("tw.csv", &window(120, 6));
+    let prev = file("prev.csv", "factor,weight\nharrow_value,0.5\nretired_factor,0.25\n");
+    let o = keelson(&[
+        "fit",
+        "--returns",
+        p.to_str().unwrap(),
+        "--market",
+        "MKT",
+        "--previous-weights",
+        prev.to_str().unwrap(),
+        "--format",
+        "json",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+    let w: Vec<f64> = v["weights"].as_array().unwrap().iter().map(|w| w["weight"].as_f64().unwrap()).collect();
+    // Turnover Σ|w − w_prev| by its definition (SPEC §8); the unknown factor counts as sold.
+    let want = (w[0] - 0.5).abs() + w[1..].iter().map(|x| x.abs()).sum::<f64>() + 0.25;
+    let got = v["diagnostics"]["turnover"].as_f64().unwrap();
+    assert!((got - want).abs() < 1e-12, "{got} vs {want}");
+    let warnings = v["diagnostics"]["warnings"].as_array().unwrap();
+    assert!(warnings.iter().any(|w| w["code"] == "previous-weights-unknown-factor"));
+}
+
+#[test]
+fn bad_data_gives_clear_errors_with_exit_code_1() {
+    let good = window(60, 5);
+    // Header: period,MKT,f1..f5 → factor columns 3..7; data rows start at line 2.
+    let ragged = good.replacen("\n2016-03,", "\n2016-03,0.1,", 1);
+    assert_data_error("ragged.csv", &ragged, &[], &["line 4", "fields"]);
+    assert_data_error("text.csv", &edit_cell(&good, 5, 4, "abc"), &[], &["line 5, column 4", "not a number"]);
+    assert_data_error("pinf.csv", &edit_cell(&good, 6, 3, "inf"), &[], &["line 6, column 3", "not a finite number"]);
+    assert_data_error("ninf.csv", &edit_cell(&good, 7, 5, "-inf"), &[], &["line 7, column 5", "not a finite number"]);
+    let dup = good.replacen("lantern_momentum", "harrow_value", 1);
+    assert_data_error("dup.csv", &dup, &[], &["line 1, column 4", "duplicate factor name"]);
+    let unsorted = edit_cell(&good, 10, 1, "2015-01");
+    assert_data_error("unsorted.csv", &unsorted, &[], &["line 10, column 1", "strictly increasing"]);
+    let baddate = edit_cell(&good, 10, 1, "March");
+    assert_data_error("baddate.csv", &baddate, &[], &["line 10, column 1", "YYYY-MM"]);
+    assert_data_error("short.csv", &window(20, 5), &[], &["20 periods is too few", "at least 24"]);
+    assert_data_error(
+        "nomkt.csv",
+        &edit_cell(&good, 8, 2, "NA"),
+        &[],
+        &["line 8, column 2", "market return is missing"],
+    );
+    let all_missing: String = good
+        .lines()
+        .enumerate()
+        .map(|(i, l)| if i == 0 { l.to_owned() } else { edit_cell(l, 1, 6, "NA").trim_end().to_owned() })
+        .collect::<Vec<_>>()
+        .join("\n");
+    assert_data_error("allna.csv", &all_missing, &[], &["column 6", "no values in the window"]);
+    let one_na = edit_cell(&good, 9, 7, "NA");
+    assert_data_error("reject.csv", &one_na, &["--set", "missing_policy=reject"], &["line 9, column 7", "missing"]);
+    assert_data_error("empty.csv", "", &[], &["empty"]);
+    assert_data_error("toomanyk.csv", &good, &["--set", "components=40"], &["components", "40 components requested"]);
+    let nofile = keelson(&["fit", "--returns", "/nonexistent/keelson.csv"]);
+    assert_eq!(nofile.status.code(), Some(1));
+    assert!(stderr(&nofile).contains("cannot read /nonexistent/keelson.csv"));
+}
+
+#[test]
+fn drop_factor_policy_excludes_and_reports() {
+    let good = window(60, 5);
+    let p = file("drop.csv", &edit_cell(&good, 9, 7, "NA"));
+    let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT", "--format", "json"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+    let ex = v["diagnostics"]["excluded"].as_array().unwrap();
+    assert_eq!(ex.len(), 1);
+    assert_eq!(ex[0]["factor"], "tamarind_size");
+    assert_eq!(ex[0]["code"], "missing-values");
+    assert_eq!(v["weights"][4]["weight"], 0.0);
+    assert_eq!(v["weights"][4]["excluded"], true);
+}
+
+#[test]
+fn bad_usage_exits_2() {
+    let p = file("usage.csv", &window(60, 4));
+    let f = p.to_str().unwrap();
+    for args in [
+        vec!["fit"],
+        vec!["fit", "--returns", f, "--set", "kapa=1"],
+        vec!["fit", "--returns", f, "--set", "scaling=sharp"],
+        vec!["fit", "--returns", f, "--set", "target_volatility=-0.1"],
+        vec!["fit", "--returns", f, "--set", "folds"],
+        vec!["fit", "--returns", f, "--format", "xml"],
+        vec!["frobnicate"],
+    ] {
+        let o = keelson(&args);
+        assert_eq!(o.status.code(), Some(2), "{args:?}: {}", stderr(&o));
+        assert!(!stderr(&o).contains("panicked"));
+    }
+    let o = keelson(&["fit", "--returns", f, "--set", "target_volatility=-0.1"]);
+    assert!(stderr(&o).contains("setting `target_volatility`: value -0.1 is out of range"));
+}
+
+#[test]
+fn demo_runs_and_matches_fit_on_its_own_csv() {
+    let csv = std::env::temp_dir().join(format!("keelson-demo-{}.csv", std::process::id()));
+    let o = keelson(&["demo", "--write-csv", csv.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let out = stdout(&o);
+    assert!(out.contains("Tessaly Exchange") && out.contains("Caution:") && out.contains("past performance"));
+    let demo: Value = serde_json::from_slice(&keelson(&["demo", "--format", "json"]).stdout).unwrap();
+    let fit: Value = serde_json::from_slice(
+        &keelson(&["fit", "--returns", csv.to_str().unwrap(), "--market", "MKT", "--format", "json"]).stdout,
+    )
+    .unwrap();
+    assert_eq!(demo["weights"], fit["weights"]);
+    assert_eq!(demo["fingerprint"], fit["fingerprint"]);
+}
