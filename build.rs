@@ -1,6 +1,6 @@
 //! Compiles `proto/` with the pure-Rust protox compiler (no system `protoc`),
-//! generates prost message types and their proto3-JSON serde impls, and
-//! writes the descriptor set that the binary embeds.
+//! generates prost messages, tonic client and server code, and proto3-JSON
+//! serde impls, and writes the descriptor set that reflection serves.
 
 use std::path::PathBuf;
 
@@ -11,11 +11,10 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     println!("cargo:rerun-if-changed=proto");
     let fds = protox::compile(protos, ["proto"])?;
     let out = PathBuf::from(std::env::var("OUT_DIR")?);
-    let descriptor_path = out.join("keelson_descriptor.bin");
     let bytes = fds.encode_to_vec();
-    std::fs::write(&descriptor_path, &bytes)?;
+    std::fs::write(out.join("keelson_descriptor.bin"), &bytes)?;
 
-    prost_build::Config::new().compile_fds(fds)?;
+    tonic_prost_build::configure().build_client(true).build_server(true).compile_fds(fds)?;
     pbjson_build::Builder::new().register_descriptors(&bytes)?.emit_fields().build(&[".keelson.v1"])?;
     Ok(())
 }

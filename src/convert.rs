@@ -3,7 +3,8 @@
 //! side fails to compile until it is handled here.
 
 use crate::estimator::{
-    Choice, CvCriterion, CvSurface, Method, MissingPolicy, Normalization, Scaling, Settings, SettingsError, WeightSet,
+    Choice, CvCriterion, CvSurface, Method, MissingPolicy, Normalization, ReturnPanel, Scaling, Settings,
+    SettingsError, WeightSet,
 };
 use crate::proto;
 
@@ -265,6 +266,85 @@ pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWe
     }
 }
 
+/// Splits a request into its window, its settings and its id, without
+/// copying the returns. Validation is the estimator's job.
+pub fn request_into_parts(req: proto::ComputeWeightsRequest) -> (ReturnPanel, proto::Settings, String) {
+    let proto::ComputeWeightsRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        previous_weights,
+        settings,
+        request_id,
+    } = req;
+    let (rows, cols, values) = returns.map_or((0, 0, Vec::new()), |m| (m.rows as usize, m.cols as usize, m.values));
+    let panel = ReturnPanel {
+        factor_names,
+        period_labels,
+        returns: values,
+        rows,
+        cols,
+        // An empty list means "no market" (SPEC §1).
+        market: (!market_returns.is_empty()).then_some(market_returns),
+        previous_weights: previous_weights.into_iter().map(|w| (w.factor, w.weight)).collect(),
+    };
+    (panel, settings.unwrap_or_default(), request_id)
+}
+
+/// A request carrying `panel` with the given settings.
+pub fn request_from_panel(
+    panel: &ReturnPanel,
+    settings: proto::Settings,
+    request_id: &str,
+) -> proto::ComputeWeightsRequest {
+    let ReturnPanel { factor_names, period_labels, returns, rows, cols, market, previous_weights } = panel;
+    proto::ComputeWeightsRequest {
+        factor_names: factor_names.clone(),
+        period_labels: period_labels.clone(),
+        returns: Some(proto::Matrix { rows: *rows as u32, cols: *cols as u32, values: returns.clone() }),
+        market_returns: market.clone().unwrap_or_default(),
+        previous_weights: previous_weights
+            .iter()
+            .map(|(f, w)| proto::FactorWeight { factor: f.clone(), weight: *w, ..Default::default() })
+            .collect(),
+        settings: Some(settings),
+        request_id: request_id.to_owned(),
+    }
+}
+
+/// A proto `Settings` carrying only the named keys of `s` (the others unset,
+/// so that the server's defaults apply to them).
+pub fn settings_to_proto_only(s: &Settings, keys: &[&str]) -> proto::Settings {
+    let full = settings_to_proto(s);
+    let mut out = proto::Settings::default();
+    for &k in keys {
+        match k {
+            "method" => out.method = full.method,
+            "scaling" => out.scaling = full.scaling,
+            "components" => out.components = full.components,
+            "max_components" => out.max_components = full.max_components,
+            "kappa" => out.kappa = full.kappa,
+            "kappa_grid_min" => out.kappa_grid_min = full.kappa_grid_min,
+            "kappa_grid_max" => out.kappa_grid_max = full.kappa_grid_max,
+            "kappa_grid_points" => out.kappa_grid_points = full.kappa_grid_points,
+            "l1_penalty" => out.l1_penalty = full.l1_penalty,
+            "folds" => out.folds = full.folds,
+            "cv_criterion" => out.cv_criterion = full.cv_criterion,
+            "normalization" => out.normalization = full.normalization,
+            "target_volatility" => out.target_volatility = full.target_volatility,
+            "risk_aversion" => out.risk_aversion = full.risk_aversion,
+            "periods_per_year" => out.periods_per_year = full.periods_per_year,
+            "demarket" => out.demarket = full.demarket,
+            "missing_policy" => out.missing_policy = full.missing_policy,
+            "rp_gamma" => out.rp_gamma = full.rp_gamma,
+            "min_periods" => out.min_periods = full.min_periods,
+            _ => {}
+        }
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -281,6 +361,26 @@ mod tests {
         };
         let back = settings_from_proto(&settings_to_proto(&s), &Settings::default()).unwrap();
         assert_eq!(back, s);
+    }
+
+    #[test]
+    fn only_named_keys_are_sent() {
+        let s = Settings { scaling: Scaling::Covariance, folds: 5, ..Settings::default() };
+        let p = settings_to_proto_only(&s, &["scaling"]);
+        assert_eq!(p.scaling, proto::Scaling::Covariance as i32);
+        assert_eq!(p.folds, None);
+        // Every key of Settings is handled.
+        let all = settings_to_proto_only(&s, &Settings::KEYS);
+        assert_eq!(all, settings_to_proto(&s));
+    }
+
+    #[test]
+    fn request_round_trip() {
+        let panel = crate::demo::synthetic_panel(1, 30, 4);
+        let req = request_from_panel(&panel, proto::Settings::default(), "r1");
+        let (back, _, id) = request_into_parts(req);
+        assert_eq!(back, panel);
+        assert_eq!(id, "r1");
     }
 
     #[test]

@@ -4,7 +4,8 @@
 //! [`estimator`] is the pure numerical core (SPEC §1–8); [`panel_csv`] reads
 //! windows from CSV files; [`proto`] holds the generated `keelson.v1`
 //! messages and [`convert`] translates between them and the core's types;
-//! [`demo`] builds the invented demonstration market.
+//! [`service`] serves the API over gRPC; [`demo`] builds the invented
+//! demonstration market.
 #![warn(missing_docs, unreachable_pub)]
 #![deny(rustdoc::broken_intra_doc_links)]
 // `!(x > 0.0)` is deliberate throughout: it is true for NaN as well.
@@ -27,3 +28,4 @@ pub mod proto {
 pub mod convert;
 pub mod demo;
 pub mod panel_csv;
+pub mod service;

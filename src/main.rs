@@ -1,18 +1,25 @@
-//! The `keelson` command: `fit` a window from CSV, or run the `demo`.
+//! The `keelson` command: `fit` a window from CSV, `serve` the gRPC API,
+//! `call` a running server, `healthcheck` it, or run the `demo`.
 //!
-//! Exit codes: 0 success, 1 an error in the data or the computation,
-//! 2 bad usage (unknown flag, unknown or out-of-range setting).
+//! Exit codes: 0 success, 1 an error in the data, the computation or the
+//! server's answer, 2 bad usage (unknown flag, unknown or out-of-range
+//! setting, unusable server configuration).
 
 mod cli;
 
 use std::io::Write as _;
 use std::path::PathBuf;
 use std::process::ExitCode;
+use std::time::Duration;
 
 use anyhow::Context as _;
 use clap::{Parser, Subcommand, ValueEnum};
-use keelson::estimator::{self, EstimateError, FitOptions, Method, Scaling, Settings, SettingsError};
-use keelson::panel_csv;
+use keelson::convert::{request_from_panel, settings_to_proto_only, weight_set_to_proto};
+use keelson::estimator::{self, EstimateError, FitOptions, Settings, SettingsError};
+use keelson::proto::{self, weights_service_client::WeightsServiceClient};
+use keelson::service::{self, config::ConfigError, config::ServerConfig};
+use keelson::{demo, panel_csv};
+use tonic_types::StatusExt as _;
 
 /// Shrunk, Sharpe-scaled principal-component weights for factor portfolios.
 #[derive(Parser, Debug)]
@@ -26,8 +33,14 @@ struct Args {
 enum Command {
     /// Fit one window of factor returns from a CSV file and print the weights.
     Fit(FitArgs),
-    /// Fit the built-in invented market (the Tessaly Exchange) and explain the result.
+    /// Run the built-in invented market through the gRPC service, as a rebalancing job would.
     Demo(DemoArgs),
+    /// Serve the gRPC API (keelson.v1.WeightsService, health, reflection).
+    Serve(ServeArgs),
+    /// Send a window from a CSV file to a running server and print the weights.
+    Call(CallArgs),
+    /// Exit 0 when a server reports SERVING (for container health checks).
+    Healthcheck(HealthArgs),
 }
 
 #[derive(clap::Args, Debug)]
@@ -38,13 +51,10 @@ struct SettingsArgs {
     /// Override one setting, e.g. `--set scaling=covariance --set components=5`.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     set: Vec<String>,
-    /// Worker threads for cross-validation folds (results do not depend on it).
-    #[arg(long, default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..=256))]
-    threads: u16,
 }
 
 #[derive(clap::Args, Debug)]
-struct FitArgs {
+struct WindowArgs {
     /// CSV of returns: header row, periods in the first column, one factor per column.
     #[arg(long, value_name = "FILE.csv")]
     returns: PathBuf,
@@ -54,8 +64,17 @@ struct FitArgs {
     /// CSV `factor,weight` of weights currently held, for turnover.
     #[arg(long, value_name = "FILE.csv")]
     previous_weights: Option<PathBuf>,
+}
+
+#[derive(clap::Args, Debug)]
+struct FitArgs {
+    #[command(flatten)]
+    window: WindowArgs,
     #[command(flatten)]
     settings: SettingsArgs,
+    /// Worker threads for cross-validation folds (results do not depend on it).
+    #[arg(long, default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..=256))]
+    threads: u16,
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     format: Format,
@@ -71,6 +90,50 @@ struct DemoArgs {
     /// Also write the demo window as CSV to this file.
     #[arg(long, value_name = "FILE.csv")]
     write_csv: Option<PathBuf>,
+}
+
+#[derive(clap::Args, Debug)]
+struct ServeArgs {
+    /// TOML server configuration (sections server, estimator, log).
+    #[arg(long, value_name = "FILE.toml")]
+    config: Option<PathBuf>,
+    /// gRPC listen address; overrides `server.address`.
+    #[arg(long, value_name = "HOST:PORT")]
+    addr: Option<String>,
+}
+
+#[derive(clap::Args, Debug)]
+struct CallArgs {
+    /// Server address, e.g. http://127.0.0.1:50051.
+    #[arg(long, value_name = "URL")]
+    addr: String,
+    #[command(flatten)]
+    window: WindowArgs,
+    /// Set one setting in the request, e.g. `--set components=5`; unset ones take the server's defaults.
+    #[arg(long = "set", value_name = "KEY=VALUE")]
+    set: Vec<String>,
+    /// Request id, echoed back and logged by the server.
+    #[arg(long, default_value = "")]
+    request_id: String,
+    /// Deadline of the call in milliseconds.
+    #[arg(long, default_value_t = 30_000)]
+    timeout_ms: u64,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    format: Format,
+}
+
+#[derive(clap::Args, Debug)]
+struct HealthArgs {
+    /// Server address, e.g. http://127.0.0.1:50051.
+    #[arg(long, value_name = "URL")]
+    addr: String,
+    /// Health-check name: empty for the whole server, or liveness, readiness, keelson.v1.WeightsService.
+    #[arg(long, default_value = "")]
+    service: String,
+    /// Deadline in milliseconds.
+    #[arg(long, default_value_t = 2_000)]
+    timeout_ms: u64,
 }
 
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -101,11 +164,10 @@ fn main() -> ExitCode {
                 return ExitCode::SUCCESS;
             }
             eprintln!("error: {e:#}");
-            if e.downcast_ref::<UsageError>().is_some() || e.downcast_ref::<SettingsError>().is_some() {
-                ExitCode::from(2)
-            } else {
-                ExitCode::from(1)
-            }
+            let usage = e.downcast_ref::<UsageError>().is_some()
+                || e.downcast_ref::<SettingsError>().is_some()
+                || e.downcast_ref::<ConfigError>().is_some();
+            ExitCode::from(if usage { 2 } else { 1 })
         }
     }
 }
@@ -114,45 +176,67 @@ fn is_broken_pipe(e: &anyhow::Error) -> bool {
     e.chain().any(|c| c.downcast_ref::<std::io::Error>().is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe))
 }
 
+fn runtime() -> anyhow::Result<tokio::runtime::Runtime> {
+    tokio::runtime::Builder::new_multi_thread().enable_all().build().context("cannot start the async runtime")
+}
+
 fn run(args: Args) -> anyhow::Result<ExitCode> {
     match args.command {
         Command::Fit(a) => fit(a),
-        Command::Demo(a) => demo(a),
+        Command::Demo(a) => runtime()?.block_on(demo(a)),
+        Command::Serve(a) => serve(a),
+        Command::Call(a) => runtime()?.block_on(call(a)),
+        Command::Healthcheck(a) => runtime()?.block_on(healthcheck(a)),
     }
 }
 
-/// Resolves `--config` and `--set` into validated settings.
-fn resolve_settings(a: &SettingsArgs) -> anyhow::Result<estimator::ValidSettings> {
-    let mut s = match &a.config {
+/// Resolves `--config` and `--set` into settings, and the keys `--set` named.
+fn resolve_settings(config: Option<&PathBuf>, set: &[String]) -> anyhow::Result<(Settings, Vec<&'static str>)> {
+    let mut s = match config {
         Some(p) => {
             let text = panel_csv::read_text(p).map_err(|e| UsageError(format!("{e:#}")))?;
             Settings::from_toml(&text).with_context(|| format!("in {}", p.display()))?
         }
         None => Settings::default(),
     };
-    for kv in &a.set {
+    let mut keys = Vec::new();
+    for kv in set {
         let (k, v) = kv
             .split_once('=')
             .ok_or_else(|| UsageError(format!("--set {kv}: expected KEY=VALUE, e.g. --set components=5")))?;
         s.set(k, v)?;
+        let k = k.trim().replace('-', "_");
+        keys.extend(Settings::KEYS.iter().find(|key| **key == k));
     }
-    Ok(s.check()?)
+    Ok((s, keys))
 }
 
-fn options(a: &SettingsArgs) -> FitOptions {
-    FitOptions { threads: usize::from(a.threads), ..FitOptions::default() }
-}
-
-fn fit(a: FitArgs) -> anyhow::Result<ExitCode> {
-    let settings = resolve_settings(&a.settings)?;
-    let file = a.returns.display().to_string();
-    let text = panel_csv::read_text(&a.returns)?;
-    let mut csv = panel_csv::parse_returns(&text, &file, a.market.as_deref())?;
-    if let Some(p) = &a.previous_weights {
+/// Reads the window, and previous weights if given.
+fn read_window(w: &WindowArgs) -> anyhow::Result<panel_csv::CsvPanel> {
+    let file = w.returns.display().to_string();
+    let text = panel_csv::read_text(&w.returns)?;
+    let mut csv = panel_csv::parse_returns(&text, &file, w.market.as_deref())?;
+    if let Some(p) = &w.previous_weights {
         let text = panel_csv::read_text(p)?;
         csv.panel.previous_weights = panel_csv::parse_weights(&text, &p.display().to_string())?;
     }
-    let ws = match estimator::fit_with(&csv.panel, &settings, &options(&a.settings)) {
+    Ok(csv)
+}
+
+fn render(resp: &proto::ComputeWeightsResponse, format: Format, source: &str, labels: &[String]) -> anyhow::Result<()> {
+    let text = match format {
+        Format::Table => cli::output::table(resp, source, labels),
+        Format::Json => cli::output::json(resp)?,
+    };
+    print(&text)
+}
+
+fn fit(a: FitArgs) -> anyhow::Result<ExitCode> {
+    let (settings, _) = resolve_settings(a.settings.config.as_ref(), &a.settings.set)?;
+    let settings = settings.check()?;
+    let csv = read_window(&a.window)?;
+    let options = FitOptions { threads: usize::from(a.threads), ..FitOptions::default() };
+    let ws = match estimator::fit_with(&csv.panel, &settings, &options) {
         Ok(ws) => ws,
         Err(e) => {
             let pos = match &e {
@@ -166,37 +250,141 @@ fn fit(a: FitArgs) -> anyhow::Result<ExitCode> {
             });
         }
     };
-    let text = match a.format {
-        Format::Table => cli::output::table(&ws, &file, &csv.panel.period_labels),
-        Format::Json => cli::output::json(&ws, "")?,
-    };
-    print(&text)?;
+    render(&weight_set_to_proto(&ws, ""), a.format, &csv.file, &csv.panel.period_labels)?;
     Ok(ExitCode::SUCCESS)
 }
 
-fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
-    let settings = resolve_settings(&a.settings)?;
-    let panel = keelson::demo::demo_panel();
-    if let Some(p) = &a.write_csv {
-        std::fs::write(p, keelson::demo::to_csv(&panel)).with_context(|| format!("cannot write {}", p.display()))?;
+fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
+    let mut raw = ServerConfig::load(a.config.as_deref(), std::env::vars())?;
+    if let Some(addr) = a.addr {
+        raw.server.address = addr;
     }
-    let ws = estimator::fit_with(&panel, &settings, &options(&a.settings)).context("fitting the demo window")?;
+    let config = raw.check()?;
+    init_logging(&config.raw.log);
+    tracing::info!(config = %serde_json::to_string(&config.raw).unwrap_or_default(), "effective configuration");
+    let rt = runtime()?;
+    rt.block_on(async move {
+        let listener = tokio::net::TcpListener::bind(config.address)
+            .await
+            .with_context(|| format!("cannot listen on {}", config.address))?;
+        tracing::info!(address = %listener.local_addr()?, "serving keelson.v1.WeightsService");
+        service::serve(config, listener, service::termination_signal()).await.context("server failed")?;
+        Ok::<_, anyhow::Error>(())
+    })?;
+    Ok(ExitCode::SUCCESS)
+}
+
+fn init_logging(log: &service::config::LogSection) {
+    let filter = tracing_subscriber::EnvFilter::try_new(&log.level).unwrap_or_else(|_| "info".into());
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stdout);
+    let _ = match log.format {
+        service::config::LogFormat::Json => builder.json().flatten_event(true).with_current_span(false).try_init(),
+        service::config::LogFormat::Text => builder.try_init(),
+    };
+}
+
+fn endpoint(addr: &str) -> anyhow::Result<tonic::transport::Endpoint> {
+    let url = if addr.contains("://") { addr.to_owned() } else { format!("http://{addr}") };
+    tonic::transport::Endpoint::from_shared(url).map_err(|e| UsageError(format!("--addr {addr}: {e}")).into())
+}
+
+async fn client(addr: &str) -> anyhow::Result<WeightsServiceClient<tonic::transport::Channel>> {
+    let channel = endpoint(addr)?
+        .connect_timeout(Duration::from_secs(5))
+        .connect()
+        .await
+        .with_context(|| format!("cannot connect to {addr}"))?;
+    Ok(WeightsServiceClient::new(channel).max_decoding_message_size(256 << 20).max_encoding_message_size(256 << 20))
+}
+
+/// Describes a failed call: code, message and field violations.
+fn describe_status(s: &tonic::Status) -> String {
+    let mut out = format!("{:?}: {}", s.code(), s.message());
+    if let Some(br) = s.get_details_bad_request() {
+        for v in &br.field_violations {
+            out.push_str(&format!("\n  field {}: {}", v.field, v.description));
+        }
+    }
+    out
+}
+
+async fn call(a: CallArgs) -> anyhow::Result<ExitCode> {
+    let (settings, keys) = resolve_settings(None, &a.set)?;
+    let settings_msg = settings_to_proto_only(&settings, &keys);
+    let csv = read_window(&a.window)?;
+    let mut request = tonic::Request::new(request_from_panel(&csv.panel, settings_msg, &a.request_id));
+    request.set_timeout(Duration::from_millis(a.timeout_ms));
+    let mut c = client(&a.addr).await?;
+    let resp = c.compute_weights(request).await.map_err(|s| anyhow::anyhow!(describe_status(&s)))?.into_inner();
+    render(&resp, a.format, &csv.file, &csv.panel.period_labels)?;
+    Ok(ExitCode::SUCCESS)
+}
+
+async fn healthcheck(a: HealthArgs) -> anyhow::Result<ExitCode> {
+    use tonic_health::pb::{HealthCheckRequest, health_check_response::ServingStatus, health_client::HealthClient};
+    let channel = endpoint(&a.addr)?
+        .connect_timeout(Duration::from_millis(a.timeout_ms))
+        .timeout(Duration::from_millis(a.timeout_ms))
+        .connect()
+        .await
+        .with_context(|| format!("cannot connect to {}", a.addr))?;
+    let resp = HealthClient::new(channel)
+        .check(HealthCheckRequest { service: a.service.clone() })
+        .await
+        .map_err(|s| anyhow::anyhow!(describe_status(&s)))?
+        .into_inner();
+    let status = ServingStatus::try_from(resp.status).unwrap_or(ServingStatus::Unknown);
+    println!("{}", status.as_str_name());
+    Ok(if status == ServingStatus::Serving { ExitCode::SUCCESS } else { ExitCode::from(1) })
+}
+
+/// The demo runs the whole path a rebalancing job takes: an in-process
+/// server on an ephemeral loopback port, a gRPC client, the invented window.
+async fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
+    let (settings, keys) = resolve_settings(a.settings.config.as_ref(), &a.settings.set)?;
+    let checked = settings.clone().check()?;
+    let panel = demo::demo_panel();
+    if let Some(p) = &a.write_csv {
+        std::fs::write(p, demo::to_csv(&panel)).with_context(|| format!("cannot write {}", p.display()))?;
+    }
+    let mut config = ServerConfig::default();
+    config.server.address = "127.0.0.1:0".to_owned();
+    config.estimator = checked.settings().clone();
+    let config = config.check()?;
+    let listener = tokio::net::TcpListener::bind(config.address).await.context("cannot bind a loopback port")?;
+    let addr = listener.local_addr()?;
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let server = tokio::spawn(service::serve(config, listener, async {
+        let _ = stop_rx.await;
+    }));
+    let run = async {
+        let mut c = client(&format!("http://{addr}")).await?;
+        let sent = settings_to_proto_only(&settings, &keys);
+        let req = request_from_panel(&panel, sent, "demo");
+        let resp = c.compute_weights(req).await.map_err(|s| anyhow::anyhow!(describe_status(&s)))?.into_inner();
+        let plain =
+            if checked.scaling != estimator::Scaling::Covariance && checked.method == estimator::Method::Components {
+                let mut s = sent;
+                s.scaling = proto::Scaling::Covariance.into();
+                c.compute_weights(request_from_panel(&panel, s, "demo-plain-pca")).await.ok().map(|r| r.into_inner())
+            } else {
+                None
+            };
+        Ok::<_, anyhow::Error>((resp, plain))
+    };
+    let result = run.await;
+    let _ = stop_tx.send(());
+    let _ = server.await;
+    let (resp, plain) = result.context("calling the in-process demo server")?;
     match a.format {
-        Format::Json => print(&cli::output::json(&ws, "demo")?)?,
+        Format::Json => print(&cli::output::json(&resp)?)?,
         Format::Table => {
             let mut text = String::new();
             text.push_str(cli::DEMO_INTRO);
+            text.push_str(&format!("(served over gRPC by an in-process server on {addr})\n\n"));
+            text.push_str(&cli::output::table(&resp, "Tessaly Exchange (invented)", &panel.period_labels));
             text.push('\n');
-            text.push_str(&cli::output::table(&ws, "Tessaly Exchange (invented)", &panel.period_labels));
-            text.push('\n');
-            let plain = (settings.scaling != Scaling::Covariance && settings.method == Method::Components)
-                .then(|| {
-                    let mut s = settings.settings().clone();
-                    s.scaling = Scaling::Covariance;
-                    s.check().ok().and_then(|s| estimator::fit_with(&panel, &s, &options(&a.settings)).ok())
-                })
-                .flatten();
-            text.push_str(&cli::demo_explanation(&ws, plain.as_ref()));
+            text.push_str(&cli::demo_explanation(&resp, plain.as_ref()));
             text.push_str(cli::CAUTION);
             print(&text)?;
         }

@@ -2,7 +2,7 @@
 
 pub mod output;
 
-use keelson::estimator::WeightSet;
+use keelson::proto::{ComputeWeightsResponse, Diagnostics};
 
 /// What the demo is, printed before its weights.
 pub const DEMO_INTRO: &str = "\
@@ -24,11 +24,12 @@ live use and run it through your own risk and compliance process.
 
 /// A short reading of the demo's result, against plain PCA (covariance
 /// scaling) fitted on the same window with the same settings otherwise.
-pub fn demo_explanation(ws: &WeightSet, plain: Option<&WeightSet>) -> String {
-    let d = &ws.diagnostics;
-    let mut top: Vec<&keelson::estimator::FactorReport> = ws.factors.iter().filter(|f| f.excluded.is_none()).collect();
+pub fn demo_explanation(ws: &ComputeWeightsResponse, plain: Option<&ComputeWeightsResponse>) -> String {
+    let none = Diagnostics::default();
+    let d = ws.diagnostics.as_ref().unwrap_or(&none);
+    let mut top: Vec<_> = ws.weights.iter().filter(|f| !f.excluded).collect();
     top.sort_by(|a, b| b.weight.abs().total_cmp(&a.weight.abs()));
-    let names: Vec<&str> = top.iter().take(3).map(|f| f.name.as_str()).collect();
+    let names: Vec<&str> = top.iter().take(3).map(|f| f.factor.as_str()).collect();
     let mut out = format!(
         "Reading: cross-validation kept {} component(s); the largest positions are in {}. \
          The top 30% of factors by Sharpe ratio hold {:.0}% of the gross weight. The held-out \
@@ -40,8 +41,7 @@ pub fn demo_explanation(ws: &WeightSet, plain: Option<&WeightSet>) -> String {
         d.cv_sharpe,
         d.in_sample_sharpe
     );
-    if let Some(p) = plain {
-        let pd = &p.diagnostics;
+    if let Some(pd) = plain.and_then(|p| p.diagnostics.as_ref()) {
         out.push_str(&format!(
             " For comparison, plain PCA (scaling covariance) on the same window keeps {} component(s), \
              puts {:.0}% of gross weight in the top-Sharpe factors and has a cross-validated Sharpe \

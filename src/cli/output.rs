@@ -1,13 +1,21 @@
-//! Rendering of weight sets for people (a table) and programs (proto3 JSON).
+//! Rendering of a `ComputeWeightsResponse` for people (a table) and programs
+//! (proto3 JSON). `fit`, `call` and `demo` all print through here, so a
+//! local fit and a remote call look the same.
 
 use std::fmt::Write as _;
 
-use keelson::estimator::{Method, WeightSet};
+use keelson::proto::{self, ComputeWeightsResponse};
 
-/// One line per factor sorted by weight, then the key diagnostics.
-pub fn table(ws: &WeightSet, source: &str, labels: &[String]) -> String {
-    let d = &ws.diagnostics;
-    let s = &ws.settings;
+/// `SCALING_SHARPE_RAW` → `sharpe-raw`: the name used in files and flags.
+fn setting_word(enum_name: &str, prefix: &str) -> String {
+    enum_name.strip_prefix(prefix).unwrap_or(enum_name).to_ascii_lowercase().replace('_', "-")
+}
+
+/// One line per factor sorted by absolute weight, then the key diagnostics.
+pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> String {
+    let default = proto::Diagnostics::default();
+    let d = r.diagnostics.as_ref().unwrap_or(&default);
+    let settings = d.effective_settings.unwrap_or_default();
     let mut out = String::new();
     let span = match (labels.first(), labels.last()) {
         (Some(a), Some(b)) => format!(" ({a} … {b})"),
@@ -17,16 +25,16 @@ pub fn table(ws: &WeightSet, source: &str, labels: &[String]) -> String {
         out,
         "Keelson weights · {source}: {} periods{span}, {} factors, {} used",
         d.periods,
-        ws.factors.len(),
+        r.weights.len(),
         d.factors_used
     );
     let how = |cv: bool| if cv { "cross-validated" } else { "fixed" };
-    match s.method {
-        Method::Components => {
+    match settings.method() {
+        proto::Method::Components | proto::Method::Unspecified => {
             let _ = writeln!(
                 out,
                 "method components · scaling {} · K = {} ({}) · κ = {:.4} annualised ({}) · γ = {:.3e}",
-                serde_plain(&s.scaling),
+                setting_word(settings.scaling().as_str_name(), "SCALING_"),
                 d.num_components,
                 how(d.components_cross_validated),
                 d.kappa,
@@ -35,18 +43,18 @@ pub fn table(ws: &WeightSet, source: &str, labels: &[String]) -> String {
             );
         }
         m => {
-            let _ = writeln!(out, "method {} (baseline)", serde_plain(&m));
+            let _ = writeln!(out, "method {} (baseline)", setting_word(m.as_str_name(), "METHOD_"));
         }
     }
     let _ = writeln!(out);
-    let width = ws.factors.iter().map(|f| f.name.chars().count()).max().unwrap_or(6).clamp(6, 40);
+    let width = r.weights.iter().map(|f| f.factor.chars().count()).max().unwrap_or(6).clamp(12, 40);
     let _ = writeln!(out, "{:<width$}  {:>8}  {:>9}  {:>10}", "factor", "Sharpe", "weight", "risk share");
-    let mut order: Vec<usize> = (0..ws.factors.len()).collect();
-    order.sort_by(|&a, &b| ws.factors[b].weight.abs().total_cmp(&ws.factors[a].weight.abs()));
+    let mut order: Vec<usize> = (0..r.weights.len()).collect();
+    order.sort_by(|&a, &b| r.weights[b].weight.abs().total_cmp(&r.weights[a].weight.abs()));
     for &i in &order {
-        let f = &ws.factors[i];
-        let name: String = f.name.chars().take(width).collect();
-        if f.excluded.is_some() {
+        let f = &r.weights[i];
+        let name: String = f.factor.chars().take(width).collect();
+        if f.excluded {
             let _ = writeln!(out, "{name:<width$}  {:>8}  {:>9}  {:>10}", "-", "excluded", "-");
         } else {
             let _ = writeln!(
@@ -58,7 +66,7 @@ pub fn table(ws: &WeightSet, source: &str, labels: &[String]) -> String {
             );
         }
     }
-    let _ = writeln!(out, "{:<width$}  {:>8}  {:>9.4}", "market hedge", "", ws.market_weight);
+    let _ = writeln!(out, "{:<width$}  {:>8}  {:>9.4}", "market hedge", "", r.market_weight);
     let _ = writeln!(out);
     let _ = writeln!(
         out,
@@ -81,17 +89,11 @@ pub fn table(ws: &WeightSet, source: &str, labels: &[String]) -> String {
     for w in &d.warnings {
         let _ = writeln!(out, "warning [{}]: {}", w.code, w.message);
     }
-    let _ = writeln!(out, "fingerprint {} · {}", ws.fingerprint, ws.estimator_version);
+    let _ = writeln!(out, "fingerprint {} · {}", r.fingerprint, r.estimator_version);
     out
 }
 
-/// The kebab-case name a settings enum has in files and on the command line.
-fn serde_plain<T: serde::Serialize>(v: &T) -> String {
-    serde_json::to_value(v).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default()
-}
-
-/// The `ComputeWeightsResponse` in the proto3 JSON mapping.
-pub fn json(ws: &WeightSet, request_id: &str) -> anyhow::Result<String> {
-    let msg = keelson::convert::weight_set_to_proto(ws, request_id);
-    Ok(serde_json::to_string_pretty(&msg)? + "\n")
+/// The response in the proto3 JSON mapping.
+pub fn json(r: &ComputeWeightsResponse) -> anyhow::Result<String> {
+    Ok(serde_json::to_string_pretty(r)? + "\n")
 }

@@ -1,0 +1,369 @@
+//! The gRPC transport around the estimator: `keelson.v1.WeightsService`,
+//! health, reflection, limits, load shedding, deadlines and graceful drain.
+//! Handlers only validate → convert → compute (on the blocking pool) →
+//! convert; every error becomes a status in [`status::to_status`].
+
+pub mod config;
+pub mod status;
+
+use std::future::Future;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::time::{Duration, Instant};
+
+use tokio::net::TcpListener;
+use tokio::sync::Semaphore;
+use tonic::{Request, Response, Status};
+use tonic_health::ServingStatus;
+
+use crate::convert::{request_into_parts, settings_from_proto, settings_to_proto, weight_set_to_proto};
+use crate::estimator::{self, EstimateError, FitOptions, Stop};
+use crate::proto;
+use crate::proto::weights_service_server::{WeightsService, WeightsServiceServer};
+use config::ValidConfig;
+use status::{ServiceError, to_status};
+
+/// The encoded descriptor set of the `keelson.v1` API, for reflection.
+pub const FILE_DESCRIPTOR_SET: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "/keelson_descriptor.bin"));
+
+/// Full gRPC name of the weights service, also its health-check name.
+pub const SERVICE_NAME: &str = "keelson.v1.WeightsService";
+
+/// State shared by every request.
+#[derive(Debug)]
+struct Shared {
+    config: ValidConfig,
+    /// Requests admitted (computing or waiting for a worker).
+    admission: Arc<Semaphore>,
+    /// Requests computing on the blocking pool.
+    workers: Arc<Semaphore>,
+    draining: AtomicBool,
+    /// Computations that stopped early on a deadline or a cancellation.
+    stopped_early: AtomicU64,
+}
+
+/// The `WeightsService` implementation.
+#[derive(Clone, Debug)]
+pub struct WeightsApi {
+    shared: Arc<Shared>,
+}
+
+/// Sets the cancellation flag when the request's future is dropped (the
+/// client went away or the transport timed it out), so the blocking
+/// computation stops at its next check.
+struct CancelOnDrop(Arc<AtomicBool>);
+
+impl Drop for CancelOnDrop {
+    fn drop(&mut self) {
+        self.0.store(true, Ordering::Relaxed);
+    }
+}
+
+/// Parses the `grpc-timeout` header (gRPC over HTTP/2 spec: 1–8 digits and a
+/// unit H, M, S, m, u or n).
+fn grpc_timeout(meta: &tonic::metadata::MetadataMap) -> Option<Duration> {
+    let v = meta.get("grpc-timeout")?.to_str().ok()?;
+    if v.len() < 2 || v.len() > 9 {
+        return None;
+    }
+    let (digits, unit) = v.split_at(v.len() - 1);
+    let n: u64 = digits.parse().ok()?;
+    Some(match unit {
+        "H" => Duration::from_secs(n.saturating_mul(3600)),
+        "M" => Duration::from_secs(n.saturating_mul(60)),
+        "S" => Duration::from_secs(n),
+        "m" => Duration::from_millis(n),
+        "u" => Duration::from_micros(n),
+        "n" => Duration::from_nanos(n),
+        _ => return None,
+    })
+}
+
+impl WeightsApi {
+    /// A service with the given configuration.
+    pub fn new(config: ValidConfig) -> Self {
+        let admission = Arc::new(Semaphore::new(config.raw.server.max_in_flight));
+        let workers = Arc::new(Semaphore::new(config.workers));
+        let draining = AtomicBool::new(false);
+        let stopped_early = AtomicU64::new(0);
+        WeightsApi { shared: Arc::new(Shared { config, admission, workers, draining, stopped_early }) }
+    }
+
+    /// Computations running on the blocking pool right now.
+    pub fn computing(&self) -> usize {
+        self.shared.config.workers - self.shared.workers.available_permits()
+    }
+
+    /// Computations that stopped early because their deadline passed or their
+    /// caller went away, since start.
+    pub fn stopped_early(&self) -> u64 {
+        self.shared.stopped_early.load(Ordering::Relaxed)
+    }
+
+    /// Refuses new requests from now on (in-flight ones continue).
+    pub fn start_draining(&self) {
+        self.shared.draining.store(true, Ordering::SeqCst);
+    }
+
+    /// Requests currently admitted.
+    pub fn in_flight(&self) -> usize {
+        self.shared.config.raw.server.max_in_flight - self.shared.admission.available_permits()
+    }
+
+    async fn compute(
+        &self,
+        req: proto::ComputeWeightsRequest,
+        client_timeout: Option<Duration>,
+    ) -> Result<proto::ComputeWeightsResponse, ServiceError> {
+        let sh = &self.shared;
+        let limits = &sh.config.raw.server;
+        if sh.draining.load(Ordering::SeqCst) {
+            return Err(ServiceError::Draining);
+        }
+        let _admitted = sh
+            .admission
+            .clone()
+            .try_acquire_owned()
+            .map_err(|_| ServiceError::Overloaded { limit: limits.max_in_flight })?;
+        let (rows, cols, values) =
+            req.returns.as_ref().map_or((0, 0, 0), |m| (m.rows as u64, m.cols as u64, m.values.len() as u64));
+        if cols > limits.max_factors as u64 || req.factor_names.len() > limits.max_factors {
+            return Err(ServiceError::TooLarge {
+                field: "returns.cols",
+                value: cols.max(req.factor_names.len() as u64),
+                limit: limits.max_factors as u64,
+                what: "factors",
+            });
+        }
+        let cells = rows.saturating_mul(cols).max(values);
+        if cells > limits.max_cells as u64 {
+            return Err(ServiceError::TooLarge {
+                field: "returns",
+                value: cells,
+                limit: limits.max_cells as u64,
+                what: "periods × factors",
+            });
+        }
+        let (panel, proto_settings, request_id) = request_into_parts(req);
+        let settings = settings_from_proto(&proto_settings, &sh.config.defaults)
+            .and_then(|s| s.check())
+            .map_err(EstimateError::from)?;
+
+        // The earlier of the client's deadline and the server's own limit.
+        let server_limit = Duration::from_millis(limits.request_timeout_ms);
+        let client_binds = client_timeout.is_some_and(|c| c < server_limit);
+        let deadline = Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit));
+        let timed_out = || {
+            if client_binds {
+                ServiceError::Estimate(EstimateError::DeadlineExceeded)
+            } else {
+                ServiceError::ServerTimeout { limit_ms: limits.request_timeout_ms }
+            }
+        };
+        let flag = Arc::new(AtomicBool::new(false));
+        let _cancel = CancelOnDrop(flag.clone());
+        let stop = Stop::never().with_deadline(deadline).with_flag(flag);
+        let tokio_deadline = tokio::time::Instant::from_std(deadline);
+        let worker = tokio::time::timeout_at(tokio_deadline, sh.workers.clone().acquire_owned())
+            .await
+            .map_err(|_| timed_out())?
+            .map_err(|_| ServiceError::Internal("worker pool closed".into()))?;
+        let shared = self.shared.clone();
+        let job = tokio::task::spawn_blocking(move || {
+            let result =
+                estimator::fit_with(&panel, &settings, &FitOptions { threads: 1, stop, ..FitOptions::default() });
+            if matches!(result, Err(EstimateError::Cancelled | EstimateError::DeadlineExceeded)) {
+                shared.stopped_early.fetch_add(1, Ordering::Relaxed);
+            }
+            // The worker slot frees only when the computation has really ended.
+            drop(worker);
+            result
+        });
+        let ws = match tokio::time::timeout_at(tokio_deadline, job).await {
+            Err(_) => return Err(timed_out()),
+            Ok(Err(join)) => return Err(ServiceError::Internal(format!("worker failed: {join}"))),
+            Ok(Ok(Err(EstimateError::DeadlineExceeded))) => return Err(timed_out()),
+            Ok(Ok(r)) => r?,
+        };
+        Ok(weight_set_to_proto(&ws, &request_id))
+    }
+}
+
+#[tonic::async_trait]
+impl WeightsService for WeightsApi {
+    async fn compute_weights(
+        &self,
+        request: Request<proto::ComputeWeightsRequest>,
+    ) -> Result<Response<proto::ComputeWeightsResponse>, Status> {
+        let started = Instant::now();
+        let timeout = grpc_timeout(request.metadata());
+        let req = request.into_inner();
+        let (periods, factors) = req.returns.as_ref().map_or((0, 0), |m| (m.rows, m.cols));
+        let cols = req.returns.as_ref().map(|m| m.cols as usize);
+        let request_id = req.request_id.clone();
+        let result = self.compute(req, timeout).await;
+        let latency_ms = started.elapsed().as_secs_f64() * 1e3;
+        match result {
+            Ok(resp) => {
+                let d = resp.diagnostics.as_ref();
+                tracing::info!(
+                    target: "keelson::request",
+                    method = "ComputeWeights",
+                    request_id = %request_id,
+                    periods,
+                    factors,
+                    components = d.map_or(0, |d| d.num_components),
+                    kappa = d.map_or(0.0, |d| d.kappa),
+                    fingerprint = %resp.fingerprint,
+                    code = "OK",
+                    latency_ms,
+                    "request served"
+                );
+                Ok(Response::new(resp))
+            }
+            Err(e) => {
+                let status = to_status(&e, cols);
+                tracing::info!(
+                    target: "keelson::request",
+                    method = "ComputeWeights",
+                    request_id = %request_id,
+                    periods,
+                    factors,
+                    code = ?status.code(),
+                    error = %e,
+                    latency_ms,
+                    "request failed"
+                );
+                Err(status)
+            }
+        }
+    }
+
+    async fn get_service_info(
+        &self,
+        _request: Request<proto::GetServiceInfoRequest>,
+    ) -> Result<Response<proto::GetServiceInfoResponse>, Status> {
+        let c = &self.shared.config;
+        let s = &c.raw.server;
+        Ok(Response::new(proto::GetServiceInfoResponse {
+            estimator_version: estimator::ESTIMATOR_VERSION.to_owned(),
+            server_version: env!("CARGO_PKG_VERSION").to_owned(),
+            default_settings: Some(settings_to_proto(c.defaults.settings())),
+            limits: Some(proto::ServiceLimits {
+                max_message_bytes: s.max_message_bytes as u64,
+                max_cells: s.max_cells as u64,
+                max_factors: s.max_factors as u32,
+                max_in_flight: s.max_in_flight as u32,
+                workers: c.workers as u32,
+                request_timeout_ms: s.request_timeout_ms,
+            }),
+        }))
+    }
+}
+
+/// Health-check names registered beside the service name and the empty
+/// (whole-server) name.
+pub const HEALTH_NAMES: [&str; 2] = ["liveness", "readiness"];
+
+/// Serves on `listener` until `shutdown` resolves, then drains: readiness
+/// goes NOT_SERVING, new requests get UNAVAILABLE, in-flight requests finish,
+/// all within `server.drain_timeout_ms`.
+///
+/// # Errors
+/// A transport error from tonic.
+pub async fn serve(
+    config: ValidConfig,
+    listener: TcpListener,
+    shutdown: impl Future<Output = ()>,
+) -> Result<(), tonic::transport::Error> {
+    serve_api(WeightsApi::new(config), listener, shutdown).await
+}
+
+/// [`serve`] with a service built by the caller, who keeps a handle to it
+/// (tests read [`WeightsApi::computing`] and [`WeightsApi::stopped_early`]).
+///
+/// # Errors
+/// A transport error from tonic.
+pub async fn serve_api(
+    api: WeightsApi,
+    listener: TcpListener,
+    shutdown: impl Future<Output = ()>,
+) -> Result<(), tonic::transport::Error> {
+    let s = api.shared.config.raw.server.clone();
+    let (reporter, health) = tonic_health::server::health_reporter();
+    for name in ["", SERVICE_NAME, HEALTH_NAMES[0], HEALTH_NAMES[1]] {
+        reporter.set_service_status(name, ServingStatus::Serving).await;
+    }
+    let (v1, v1alpha) = if s.reflection {
+        let v1 = tonic_reflection::server::Builder::configure()
+            .register_encoded_file_descriptor_set(FILE_DESCRIPTOR_SET)
+            .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+            .build_v1()
+            .ok();
+        let v1alpha = tonic_reflection::server::Builder::configure()
+            .register_encoded_file_descriptor_set(FILE_DESCRIPTOR_SET)
+            .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+            .build_v1alpha()
+            .ok();
+        (v1, v1alpha)
+    } else {
+        (None, None)
+    };
+    let service = WeightsServiceServer::new(api.clone())
+        .max_decoding_message_size(s.max_message_bytes)
+        .max_encoding_message_size(s.max_message_bytes);
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let server = tonic::transport::Server::builder()
+        .tcp_nodelay(true)
+        .add_service(health)
+        .add_optional_service(v1)
+        .add_optional_service(v1alpha)
+        .add_service(service)
+        .serve_with_incoming_shutdown(tonic::transport::server::TcpIncoming::from(listener), async {
+            let _ = stop_rx.await;
+        });
+    tokio::pin!(server);
+    tokio::select! {
+        r = &mut server => return r,
+        () = shutdown => {}
+    }
+    tracing::info!(in_flight = api.in_flight(), "shutdown requested: draining");
+    reporter.set_service_status("readiness", ServingStatus::NotServing).await;
+    reporter.set_service_status("", ServingStatus::NotServing).await;
+    reporter.set_service_status(SERVICE_NAME, ServingStatus::NotServing).await;
+    api.start_draining();
+    let _ = stop_tx.send(());
+    match tokio::time::timeout(Duration::from_millis(s.drain_timeout_ms), &mut server).await {
+        Ok(r) => {
+            tracing::info!("drained");
+            r
+        }
+        Err(_) => {
+            tracing::warn!(in_flight = api.in_flight(), budget_ms = s.drain_timeout_ms, "drain budget exceeded");
+            Ok(())
+        }
+    }
+}
+
+/// Resolves on SIGTERM or SIGINT.
+pub async fn termination_signal() {
+    #[cfg(unix)]
+    {
+        let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(s) => s,
+            Err(e) => {
+                tracing::error!(error = %e, "cannot listen for SIGTERM; only SIGINT stops the server");
+                let _ = tokio::signal::ctrl_c().await;
+                return;
+            }
+        };
+        tokio::select! {
+            _ = term.recv() => tracing::info!("SIGTERM received"),
+            _ = tokio::signal::ctrl_c() => tracing::info!("SIGINT received"),
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = tokio::signal::ctrl_c().await;
+    }
+}

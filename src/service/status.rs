@@ -1,0 +1,189 @@
+//! The one place where errors become gRPC statuses. Every variant of every
+//! error is matched explicitly (no wildcard arm), so a new error variant
+//! does not compile until its status is decided here.
+
+use std::collections::HashMap;
+
+use thiserror::Error;
+use tonic::{Code, Status};
+use tonic_types::{ErrorDetails, FieldViolation, StatusExt as _};
+
+use crate::estimator::{EstimateError, InputError, Location, SettingsError};
+
+/// Error domain reported in `google.rpc.ErrorInfo`.
+pub const ERROR_DOMAIN: &str = "keelson.v1";
+
+/// Everything a request can fail with.
+#[derive(Debug, Error)]
+#[non_exhaustive]
+pub enum ServiceError {
+    /// The estimator rejected the window or failed on it.
+    #[error(transparent)]
+    Estimate(#[from] EstimateError),
+    /// The request exceeds a configured size limit.
+    #[error("field `{field}`: {value} exceeds the server limit of {limit} ({what})")]
+    TooLarge {
+        /// Request field.
+        field: &'static str,
+        /// Size found.
+        value: u64,
+        /// Configured limit.
+        limit: u64,
+        /// What is measured.
+        what: &'static str,
+    },
+    /// More requests are in flight than the server admits.
+    #[error("the server is at its limit of {limit} requests in flight; retry with backoff")]
+    Overloaded {
+        /// The configured limit.
+        limit: usize,
+    },
+    /// The server is shutting down.
+    #[error("the server is draining for shutdown; retry on another replica")]
+    Draining,
+    /// The server-side time limit passed before the result was ready.
+    #[error("the request ran past the server time limit of {limit_ms} ms")]
+    ServerTimeout {
+        /// The configured limit.
+        limit_ms: u64,
+    },
+    /// A bug: a worker task failed.
+    #[error("internal error: {0}")]
+    Internal(String),
+}
+
+fn violation_path(at: &Location, cols: Option<usize>) -> String {
+    match (at.field, at.row, at.column) {
+        ("returns", Some(r), Some(c)) => match cols {
+            Some(n) => format!("returns.values[{}]", r * n + c),
+            None => "returns.values".to_owned(),
+        },
+        ("returns", None, Some(c)) => format!("returns.cols[{c}]"),
+        ("market_returns", Some(r), _) => format!("market_returns[{r}]"),
+        ("factor_names", _, Some(c)) => format!("factor_names[{c}]"),
+        ("period_labels", Some(r), _) => format!("period_labels[{r}]"),
+        ("previous_weights", _, Some(c)) => format!("previous_weights[{c}]"),
+        (f, _, _) => f.to_owned(),
+    }
+}
+
+fn location_metadata(at: &Location) -> HashMap<String, String> {
+    let mut m = HashMap::from([("field".to_owned(), at.field.to_owned())]);
+    if let Some(r) = at.row {
+        m.insert("row".to_owned(), r.to_string());
+    }
+    if let Some(c) = at.column {
+        m.insert("column".to_owned(), c.to_string());
+    }
+    if let Some(p) = &at.period {
+        m.insert("period".to_owned(), p.clone());
+    }
+    if let Some(f) = &at.factor {
+        m.insert("factor".to_owned(), f.clone());
+    }
+    m
+}
+
+fn invalid(reason: &str, field: String, message: String, metadata: HashMap<String, String>) -> Status {
+    let mut details = ErrorDetails::with_bad_request(vec![FieldViolation::new(field, message.clone())]);
+    details.set_error_info(reason, ERROR_DOMAIN, metadata);
+    Status::with_error_details(Code::InvalidArgument, message, details)
+}
+
+fn with_info(code: Code, reason: &str, message: String) -> Status {
+    Status::with_error_details(code, message, ErrorDetails::with_error_info(reason, ERROR_DOMAIN, HashMap::new()))
+}
+
+fn input_reason(e: &InputError) -> &'static str {
+    match e {
+        InputError::Shape { .. } => "SHAPE_MISMATCH",
+        InputError::NonFinite { .. } => "NON_FINITE_VALUE",
+        InputError::Missing { .. } => "MISSING_VALUE",
+        InputError::AllMissing { .. } => "ALL_MISSING",
+        InputError::DuplicateName { .. } => "DUPLICATE_FACTOR_NAME",
+        InputError::EmptyName { .. } => "EMPTY_FACTOR_NAME",
+        InputError::NameTooLong { .. } => "FACTOR_NAME_TOO_LONG",
+        InputError::BadPeriodLabel { .. } => "BAD_PERIOD_LABEL",
+        InputError::UnsortedPeriods { .. } => "UNSORTED_PERIODS",
+        InputError::TooFewPeriods { .. } => "TOO_FEW_PERIODS",
+        InputError::NoFactors => "NO_FACTORS",
+        InputError::NoUsableFactors { .. } => "NO_USABLE_FACTORS",
+        InputError::MarketZeroVariance => "MARKET_ZERO_VARIANCE",
+    }
+}
+
+fn settings_status(e: &SettingsError) -> Status {
+    let (reason, field) = match e {
+        SettingsError::UnknownField { field } => ("UNKNOWN_SETTING", format!("settings.{field}")),
+        SettingsError::InvalidValue { field, .. } => ("INVALID_SETTING", format!("settings.{field}")),
+        SettingsError::OutOfRange { field, .. } => ("SETTING_OUT_OF_RANGE", format!("settings.{field}")),
+        SettingsError::File { .. } => ("INVALID_SETTING", "settings".to_owned()),
+    };
+    let meta = HashMap::from([("field".to_owned(), field.clone())]);
+    invalid(reason, field, e.to_string(), meta)
+}
+
+/// Maps an error to its gRPC status. `cols` is the request's column count,
+/// used to point a field violation at `returns.values[i]`.
+pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
+    match err {
+        ServiceError::Estimate(e) => match e {
+            EstimateError::Input(ie) => {
+                let (path, meta) = match ie.location() {
+                    Some(at) => (violation_path(at, cols), location_metadata(at)),
+                    None => {
+                        let field = match ie.as_ref() {
+                            InputError::TooFewPeriods { .. }
+                            | InputError::NoUsableFactors { .. }
+                            | InputError::Shape { .. }
+                            | InputError::NonFinite { .. }
+                            | InputError::Missing { .. }
+                            | InputError::AllMissing { .. }
+                            | InputError::BadPeriodLabel { .. }
+                            | InputError::UnsortedPeriods { .. } => "returns",
+                            InputError::NoFactors
+                            | InputError::DuplicateName { .. }
+                            | InputError::EmptyName { .. }
+                            | InputError::NameTooLong { .. } => "factor_names",
+                            InputError::MarketZeroVariance => "market_returns",
+                        };
+                        (field.to_owned(), HashMap::from([("field".to_owned(), field.to_owned())]))
+                    }
+                };
+                invalid(input_reason(ie), path, ie.to_string(), meta)
+            }
+            EstimateError::Settings(se) => settings_status(se),
+            EstimateError::TooManyComponents { .. } => invalid(
+                "TOO_MANY_COMPONENTS",
+                "settings.components".into(),
+                e.to_string(),
+                HashMap::from([("field".to_owned(), "settings.components".to_owned())]),
+            ),
+            EstimateError::CriterionUnavailable { .. } => invalid(
+                "CV_CRITERION_UNAVAILABLE",
+                "settings.cv_criterion".into(),
+                e.to_string(),
+                HashMap::from([("field".to_owned(), "settings.cv_criterion".to_owned())]),
+            ),
+            // The data admit no usable portfolio: the request cannot succeed as sent.
+            EstimateError::NoFiniteScore { .. } => {
+                with_info(Code::FailedPrecondition, "NO_FINITE_CV_SCORE", e.to_string())
+            }
+            EstimateError::DegeneratePortfolio { .. } => {
+                with_info(Code::FailedPrecondition, "DEGENERATE_PORTFOLIO", e.to_string())
+            }
+            EstimateError::Numerical { .. } => with_info(Code::Internal, "NUMERICAL_FAILURE", e.to_string()),
+            EstimateError::Cancelled => with_info(Code::Cancelled, "CANCELLED", e.to_string()),
+            EstimateError::DeadlineExceeded => with_info(Code::DeadlineExceeded, "DEADLINE_EXCEEDED", e.to_string()),
+        },
+        ServiceError::TooLarge { field, .. } => Status::with_error_details(Code::InvalidArgument, err.to_string(), {
+            let mut d = ErrorDetails::with_bad_request(vec![FieldViolation::new(*field, err.to_string())]);
+            d.set_error_info("REQUEST_TOO_LARGE", ERROR_DOMAIN, HashMap::from([("field".into(), (*field).into())]));
+            d
+        }),
+        ServiceError::Overloaded { .. } => with_info(Code::ResourceExhausted, "OVERLOADED", err.to_string()),
+        ServiceError::Draining => with_info(Code::Unavailable, "DRAINING", err.to_string()),
+        ServiceError::ServerTimeout { .. } => with_info(Code::DeadlineExceeded, "SERVER_TIMEOUT", err.to_string()),
+        ServiceError::Internal(_) => with_info(Code::Internal, "INTERNAL", err.to_string()),
+    }
+}

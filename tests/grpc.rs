@@ -1,0 +1,367 @@
+//! The gRPC service in-process on 127.0.0.1:0 with tonic clients: results
+//! equal to the library bit for bit, health, reflection, typed errors with
+//! field violations, size limits, deadlines, load shedding and drain.
+
+use std::future::Future;
+use std::net::SocketAddr;
+use std::time::Duration;
+
+use keelson::convert::{request_from_panel, weight_set_to_proto};
+use keelson::demo::synthetic_panel;
+use keelson::estimator::{self, ReturnPanel, Settings};
+use keelson::proto::{self, weights_service_client::WeightsServiceClient};
+use keelson::service::{self, WeightsApi, config::ServerConfig};
+use prost::Message as _;
+use tokio::sync::oneshot;
+use tonic::Code;
+use tonic::transport::Channel;
+use tonic_types::StatusExt as _;
+
+struct Server {
+    addr: SocketAddr,
+    api: WeightsApi,
+    stop: Option<oneshot::Sender<()>>,
+    task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
+}
+
+impl Server {
+    async fn start(edit: impl FnOnce(&mut ServerConfig)) -> Server {
+        let mut c = ServerConfig::default();
+        c.server.address = "127.0.0.1:0".into();
+        edit(&mut c);
+        let config = c.check().unwrap();
+        let listener = tokio::net::TcpListener::bind(config.address).await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let api = WeightsApi::new(config);
+        let (tx, rx) = oneshot::channel::<()>();
+        let task = tokio::spawn(service::serve_api(api.clone(), listener, async {
+            let _ = rx.await;
+        }));
+        Server { addr, api, stop: Some(tx), task }
+    }
+
+    async fn channel(&self) -> Channel {
+        Channel::from_shared(format!("http://{}", self.addr)).unwrap().connect().await.unwrap()
+    }
+
+    async fn client(&self) -> WeightsServiceClient<Channel> {
+        WeightsServiceClient::new(self.channel().await)
+            .max_encoding_message_size(1 << 30)
+            .max_decoding_message_size(1 << 30)
+    }
+
+    async fn shutdown(mut self) {
+        let _ = self.stop.take().unwrap().send(());
+        self.task.await.unwrap().unwrap();
+    }
+}
+
+/// Polls `cond` every 10 ms, at most `limit` times; true when it held.
+async fn eventually(limit: usize, cond: impl Fn() -> bool) -> bool {
+    for _ in 0..limit {
+        if cond() {
+            return true;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    cond()
+}
+
+fn request(panel: &ReturnPanel, settings: proto::Settings, id: &str) -> proto::ComputeWeightsRequest {
+    request_from_panel(panel, settings, id)
+}
+
+/// A request that takes seconds of CPU: 2000 factors × 1000 periods with cross-validation.
+fn slow_request() -> proto::ComputeWeightsRequest {
+    request(&synthetic_panel(77, 1000, 2000), proto::Settings::default(), "slow")
+}
+
+fn run<F: Future>(f: F) -> F::Output {
+    tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().unwrap().block_on(f)
+}
+
+#[test]
+fn weights_over_grpc_equal_the_library_bit_for_bit() {
+    run(async {
+        let server = Server::start(|_| {}).await;
+        let mut c = server.client().await;
+        let panel = synthetic_panel(5, 120, 50);
+        for scaling in [proto::Scaling::Unspecified, proto::Scaling::RiskPremium, proto::Scaling::Covariance] {
+            let s = proto::Settings { scaling: scaling.into(), ..Default::default() };
+            let resp = c.compute_weights(request(&panel, s, "req-7")).await.unwrap().into_inner();
+            let settings = keelson::convert::settings_from_proto(&s, &Settings::default()).unwrap().check().unwrap();
+            let local = weight_set_to_proto(&estimator::fit(&panel, &settings).unwrap(), "req-7");
+            assert_eq!(resp.encode_to_vec(), local.encode_to_vec(), "{scaling:?}");
+            assert_eq!(resp.request_id, "req-7");
+        }
+        let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
+        assert_eq!(info.estimator_version, estimator::ESTIMATOR_VERSION);
+        assert_eq!(info.limits.unwrap().max_message_bytes, 64 << 20);
+        assert_eq!(info.default_settings.unwrap().folds, Some(3));
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn server_default_settings_apply_to_unset_fields() {
+    run(async {
+        let server = Server::start(|c| c.estimator.scaling = estimator::Scaling::Covariance).await;
+        let mut c = server.client().await;
+        let panel = synthetic_panel(6, 96, 12);
+        let resp = c.compute_weights(request(&panel, proto::Settings::default(), "")).await.unwrap().into_inner();
+        let eff = resp.diagnostics.unwrap().effective_settings.unwrap();
+        assert_eq!(eff.scaling(), proto::Scaling::Covariance);
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn health_and_reflection_answer() {
+    use tonic_health::pb::{HealthCheckRequest, health_check_response::ServingStatus, health_client::HealthClient};
+    run(async {
+        let server = Server::start(|_| {}).await;
+        let mut h = HealthClient::new(server.channel().await);
+        for name in ["", "liveness", "readiness", "keelson.v1.WeightsService"] {
+            let r = h.check(HealthCheckRequest { service: name.into() }).await.unwrap().into_inner();
+            assert_eq!(r.status(), ServingStatus::Serving, "{name:?}");
+        }
+        let e = h.check(HealthCheckRequest { service: "nope".into() }).await.unwrap_err();
+        assert_eq!(e.code(), Code::NotFound);
+
+        {
+            use tonic_reflection::pb::v1::{
+                ServerReflectionRequest, server_reflection_client::ServerReflectionClient,
+                server_reflection_request::MessageRequest, server_reflection_response::MessageResponse,
+            };
+            let mut r = ServerReflectionClient::new(server.channel().await);
+            let req = ServerReflectionRequest {
+                host: String::new(),
+                message_request: Some(MessageRequest::ListServices(String::new())),
+            };
+            let mut stream = r.server_reflection_info(tokio_stream_once(req)).await.unwrap().into_inner();
+            let msg = stream.message().await.unwrap().unwrap();
+            let Some(MessageResponse::ListServicesResponse(list)) = msg.message_response else { panic!("v1: {msg:?}") };
+            let names: Vec<String> = list.service.into_iter().map(|s| s.name).collect();
+            assert!(names.contains(&"keelson.v1.WeightsService".to_owned()), "{names:?}");
+            assert!(names.contains(&"grpc.health.v1.Health".to_owned()), "{names:?}");
+        }
+        {
+            use tonic_reflection::pb::v1alpha::{
+                ServerReflectionRequest, server_reflection_client::ServerReflectionClient,
+                server_reflection_request::MessageRequest, server_reflection_response::MessageResponse,
+            };
+            let mut r = ServerReflectionClient::new(server.channel().await);
+            let req = ServerReflectionRequest {
+                host: String::new(),
+                message_request: Some(MessageRequest::FileContainingSymbol("keelson.v1.WeightsService".into())),
+            };
+            let mut stream = r.server_reflection_info(tokio_stream_once(req)).await.unwrap().into_inner();
+            let msg = stream.message().await.unwrap().unwrap();
+            let Some(MessageResponse::FileDescriptorResponse(fd)) = msg.message_response else {
+                panic!("v1alpha: {msg:?}")
+            };
+            assert!(!fd.file_descriptor_proto.is_empty());
+        }
+        server.shutdown().await;
+
+        let off = Server::start(|c| c.server.reflection = false).await;
+        use tonic_reflection::pb::v1::{ServerReflectionRequest, server_reflection_client::ServerReflectionClient};
+        let mut r = ServerReflectionClient::new(off.channel().await);
+        let e = r.server_reflection_info(tokio_stream_once(ServerReflectionRequest::default())).await.unwrap_err();
+        assert_eq!(e.code(), Code::Unimplemented);
+        off.shutdown().await;
+    });
+}
+
+/// A one-message request stream.
+fn tokio_stream_once<T: Send + 'static>(item: T) -> impl tonic::codegen::tokio_stream::Stream<Item = T> + Send {
+    tonic::codegen::tokio_stream::iter(vec![item])
+}
+
+/// Sends `req` and checks INVALID_ARGUMENT with a field violation on `field`
+/// and an ErrorInfo with `reason`; then checks the server still serves.
+async fn expect_invalid(
+    c: &mut WeightsServiceClient<Channel>,
+    req: proto::ComputeWeightsRequest,
+    field: &str,
+    reason: &str,
+) {
+    let e = c.compute_weights(req).await.expect_err(field);
+    assert_eq!(e.code(), Code::InvalidArgument, "{field}: {}", e.message());
+    let br = e.get_details_bad_request().unwrap_or_else(|| panic!("{field}: no BadRequest detail"));
+    assert_eq!(br.field_violations[0].field, field, "{}", e.message());
+    let info = e.get_details_error_info().expect("ErrorInfo detail");
+    assert_eq!(info.reason, reason, "{field}");
+    assert_eq!(info.domain, "keelson.v1");
+    let ok = c.compute_weights(request(&synthetic_panel(1, 60, 5), proto::Settings::default(), "")).await;
+    assert!(ok.is_ok(), "server stopped serving after {field}");
+}
+
+#[test]
+fn bad_input_returns_invalid_argument_with_field_violations() {
+    run(async {
+        let server = Server::start(|c| c.server.max_cells = 100_000).await;
+        let mut c = server.client().await;
+        let good = synthetic_panel(2, 60, 5);
+        let base = || request(&good, proto::Settings::default(), "");
+
+        let mut r = base();
+        r.returns.as_mut().unwrap().values.pop();
+        expect_invalid(&mut c, r, "returns", "SHAPE_MISMATCH").await;
+
+        let mut r = base();
+        r.returns.as_mut().unwrap().values[3 * 5 + 2] = f64::INFINITY;
+        let e = c.compute_weights(r.clone()).await.unwrap_err();
+        let meta = e.get_details_error_info().unwrap().metadata;
+        assert_eq!((meta["row"].as_str(), meta["column"].as_str()), ("3", "2"));
+        assert!(e.message().contains("row 3") && e.message().contains("column 2"), "{}", e.message());
+        expect_invalid(&mut c, r, "returns.values[17]", "NON_FINITE_VALUE").await;
+
+        let mut r = base();
+        r.factor_names[3] = r.factor_names[1].clone();
+        expect_invalid(&mut c, r, "factor_names[3]", "DUPLICATE_FACTOR_NAME").await;
+
+        let mut r = base();
+        r.factor_names[0] = String::new();
+        expect_invalid(&mut c, r, "factor_names[0]", "EMPTY_FACTOR_NAME").await;
+
+        let mut r = base();
+        r.factor_names[0] = "x".repeat(10 << 20);
+        expect_invalid(&mut c, r, "factor_names[0]", "FACTOR_NAME_TOO_LONG").await;
+
+        let mut r = base();
+        r.period_labels.swap(5, 6);
+        expect_invalid(&mut c, r, "period_labels[6]", "UNSORTED_PERIODS").await;
+
+        let mut r = base();
+        r.market_returns[4] = f64::NAN;
+        expect_invalid(&mut c, r, "market_returns[4]", "MISSING_VALUE").await;
+
+        let mut r = base();
+        r.returns.as_mut().unwrap().values[7] = f64::NAN;
+        r.settings =
+            Some(proto::Settings { missing_policy: proto::MissingPolicy::Reject.into(), ..Default::default() });
+        expect_invalid(&mut c, r, "returns.values[7]", "MISSING_VALUE").await;
+
+        let mut r = base();
+        for t in 0..60 {
+            r.returns.as_mut().unwrap().values[t * 5 + 4] = f64::NAN;
+        }
+        expect_invalid(&mut c, r, "returns.cols[4]", "ALL_MISSING").await;
+
+        let short = synthetic_panel(2, 20, 5);
+        expect_invalid(&mut c, request(&short, proto::Settings::default(), ""), "returns", "TOO_FEW_PERIODS").await;
+
+        let mut r = base();
+        r.settings = Some(proto::Settings { scaling: 99, ..Default::default() });
+        expect_invalid(&mut c, r, "settings.scaling", "INVALID_SETTING").await;
+
+        let mut r = base();
+        r.settings = Some(proto::Settings { folds: Some(1), ..Default::default() });
+        expect_invalid(&mut c, r, "settings.folds", "SETTING_OUT_OF_RANGE").await;
+
+        let mut r = base();
+        r.settings = Some(proto::Settings { kappa: Some(f64::NAN), ..Default::default() });
+        expect_invalid(&mut c, r, "settings.kappa", "SETTING_OUT_OF_RANGE").await;
+
+        let mut r = base();
+        r.settings = Some(proto::Settings { components: Some(9), ..Default::default() });
+        expect_invalid(&mut c, r, "settings.components", "TOO_MANY_COMPONENTS").await;
+
+        let big = synthetic_panel(2, 600, 200);
+        expect_invalid(&mut c, request(&big, proto::Settings::default(), ""), "returns", "REQUEST_TOO_LARGE").await;
+
+        expect_invalid(&mut c, proto::ComputeWeightsRequest::default(), "factor_names", "NO_FACTORS").await;
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn oversize_message_is_rejected() {
+    run(async {
+        let server = Server::start(|c| c.server.max_message_bytes = 64 * 1024).await;
+        let mut c = server.client().await;
+        // 120 × 50 doubles ≈ 48 KiB of values fits; 240 × 50 ≈ 96 KiB does not.
+        assert!(c.compute_weights(request(&synthetic_panel(3, 120, 50), proto::Settings::default(), "")).await.is_ok());
+        let e =
+            c.compute_weights(request(&synthetic_panel(3, 240, 50), proto::Settings::default(), "")).await.unwrap_err();
+        // tonic reports a decoded message above the limit as OUT_OF_RANGE.
+        assert_eq!(e.code(), Code::OutOfRange, "{}", e.message());
+        assert!(e.message().contains("too large"), "{}", e.message());
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn deadline_stops_the_computation() {
+    run(async {
+        let server = Server::start(|c| c.server.workers = 1).await;
+        let mut c = server.client().await;
+        let mut req = tonic::Request::new(slow_request());
+        req.set_timeout(Duration::from_millis(200));
+        let e = c.compute_weights(req).await.unwrap_err();
+        assert!(matches!(e.code(), Code::DeadlineExceeded | Code::Cancelled), "{e:?}");
+        // The blocking computation must notice and end, freeing its worker, rather than run to completion.
+        assert!(eventually(1000, || server.api.computing() == 0).await, "computation still running");
+        assert_eq!(server.api.stopped_early(), 1, "the computation did not stop early");
+        assert!(c.compute_weights(request(&synthetic_panel(4, 60, 5), proto::Settings::default(), "")).await.is_ok());
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn client_cancellation_stops_the_computation() {
+    run(async {
+        let server = Server::start(|c| c.server.workers = 1).await;
+        let mut c = server.client().await;
+        let call = tokio::spawn(async move { c.compute_weights(slow_request()).await });
+        assert!(eventually(2000, || server.api.computing() == 1).await, "slow request never started");
+        call.abort();
+        assert!(eventually(1000, || server.api.computing() == 0).await, "computation still running after cancel");
+        assert_eq!(server.api.stopped_early(), 1);
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn excess_concurrent_requests_are_shed() {
+    run(async {
+        let server = Server::start(|c| {
+            c.server.max_in_flight = 1;
+            c.server.workers = 1;
+        })
+        .await;
+        let mut slow_client = server.client().await;
+        let slow = tokio::spawn(async move { slow_client.compute_weights(slow_request()).await });
+        assert!(eventually(2000, || server.api.in_flight() == 1).await);
+        let mut c = server.client().await;
+        let e =
+            c.compute_weights(request(&synthetic_panel(4, 60, 5), proto::Settings::default(), "")).await.unwrap_err();
+        assert_eq!(e.code(), Code::ResourceExhausted);
+        assert_eq!(e.get_details_error_info().unwrap().reason, "OVERLOADED");
+        assert!(slow.await.unwrap().is_ok(), "the admitted request must succeed");
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn shutdown_drains_an_in_flight_request() {
+    use tonic_health::pb::{HealthCheckRequest, health_check_response::ServingStatus, health_client::HealthClient};
+    run(async {
+        let server = Server::start(|c| c.server.workers = 1).await;
+        let mut c = server.client().await;
+        let mut h = HealthClient::new(server.channel().await);
+        let slow = tokio::spawn(async move { c.compute_weights(slow_request()).await });
+        assert!(eventually(2000, || server.api.computing() == 1).await);
+        let Server { addr, api, mut stop, task } = server;
+        let _ = stop.take().unwrap().send(());
+        // Readiness flips before the in-flight request finishes (or the health stream is refused).
+        let ready = h.check(HealthCheckRequest { service: "readiness".into() }).await;
+        assert!(ready.map_or(true, |r| r.into_inner().status() == ServingStatus::NotServing));
+        let resp = slow.await.unwrap().expect("the in-flight request completes during the drain");
+        assert_eq!(resp.into_inner().request_id, "slow");
+        task.await.unwrap().unwrap();
+        assert_eq!(api.in_flight(), 0);
+        assert!(Channel::from_shared(format!("http://{addr}")).unwrap().connect().await.is_err(), "still accepting");
+    });
+}
