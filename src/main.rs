@@ -302,7 +302,11 @@ fn describe_status(s: &tonic::Status) -> String {
     let mut out = format!("{:?}: {}", s.code(), s.message());
     if let Some(br) = s.get_details_bad_request() {
         for v in &br.field_violations {
-            out.push_str(&format!("\n  field {}: {}", v.field, v.description));
+            if v.description == s.message() {
+                out.push_str(&format!("\n  field violation: {}", v.field));
+            } else {
+                out.push_str(&format!("\n  field violation: {}: {}", v.field, v.description));
+            }
         }
     }
     out
