@@ -47,6 +47,8 @@ fn method_to_proto(m: Method) -> proto::Method {
         Method::Components => proto::Method::Components,
         Method::PlugIn => proto::Method::PlugIn,
         Method::EqualWeight => proto::Method::EqualWeight,
+        Method::KnsRidge => proto::Method::KnsRidge,
+        Method::PlugInLedoitWolf => proto::Method::PlugInLedoitWolf,
     }
 }
 
@@ -162,6 +164,8 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
         proto::Method::Components => Method::Components,
         proto::Method::PlugIn => Method::PlugIn,
         proto::Method::EqualWeight => Method::EqualWeight,
+        proto::Method::KnsRidge => Method::KnsRidge,
+        proto::Method::PlugInLedoitWolf => Method::PlugInLedoitWolf,
     };
     s.components = components.map_or(Choice::Auto, Choice::Fixed);
     s.kappa = kappa.map_or(Choice::Auto, Choice::Fixed);

@@ -9,7 +9,7 @@ use super::basis::{ComponentBasis, EigenPath};
 use super::dense;
 use super::error::EstimateError;
 use super::moments::{Moments, demarket};
-use super::settings::{CvCriterion, ValidSettings};
+use super::settings::{CvCriterion, Scaling, ValidSettings};
 use super::shrinkage::{ShrinkagePath, kns_gamma};
 use super::stop::Stop;
 
@@ -98,6 +98,7 @@ impl Fold {
         (start, end): (usize, usize),
         index: usize,
         settings: &ValidSettings,
+        scaling: Scaling,
         k: usize,
         path: EigenPath,
     ) -> Result<Fold, EstimateError> {
@@ -106,7 +107,7 @@ impl Fold {
         let r_train = Mat::from_fn(train_rows.len(), n, |i, j| r[(train_rows[i], j)]);
         let m_train: Option<Vec<f64>> = market.map(|m| train_rows.iter().map(|&i| m[i]).collect());
         let mom = Moments::compute(r_train.as_ref(), m_train.as_deref());
-        let basis = ComponentBasis::compute(&mom, settings.scaling, settings.rp_gamma, k, path)?;
+        let basis = ComponentBasis::compute(&mom, scaling, settings.rp_gamma, k, path)?;
 
         // Held-out block, demarketed with the training betas (no look-ahead).
         let r_test = r.subrows(start, end - start);
@@ -238,8 +239,10 @@ fn select(scores: &[f64], cols: usize) -> Option<(usize, usize, f64)> {
 
 /// Scores every (K, κ) on every fold, averages over folds and picks the best
 /// (ties: smaller K, then smaller κ).
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn cross_validate(
     settings: &ValidSettings,
+    diagonal: bool,
     ks: &[usize],
     kappas: &[f64],
     folds: &[Fold],
@@ -249,7 +252,6 @@ pub(crate) fn cross_validate(
     let annualise = f64::from(settings.periods_per_year).sqrt();
     let kappa_p: Vec<f64> = kappas.iter().map(|&k| settings.kappa_per_period(k)).collect();
     let criterion = settings.cv_criterion;
-    let diagonal = settings.scaling.has_diagonal_components();
     let l1 = settings.l1_penalty;
     let cells = ks.len() * kappas.len();
 

@@ -24,7 +24,7 @@ pub use cv::{CrossValidation, CvSurface};
 pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use moments::Moments;
 pub use settings::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, ValidSettings};
-pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, plug_in};
+pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
 pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, Warning, WeightSet};
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
@@ -68,24 +68,30 @@ pub fn fit(panel: &ReturnPanel, settings: &ValidSettings) -> Result<WeightSet, E
 /// the window, [`EstimateError::CriterionUnavailable`],
 /// [`EstimateError::DegeneratePortfolio`], and [`EstimateError::Cancelled`] /
 /// [`EstimateError::DeadlineExceeded`] when `options.stop` fires.
-pub fn fit_with(
-    panel: &ReturnPanel,
-    settings: &ValidSettings,
-    options: &FitOptions,
-) -> Result<WeightSet, EstimateError> {
+pub fn fit_with(panel: &ReturnPanel, settings: &ValidSettings, options: &FitOptions) -> Result<WeightSet, EstimateError> {
     options.stop.check()?;
     let window = ReturnWindow::new(panel, settings)?;
     let market = if settings.demarket { window.market.as_deref() } else { None };
     let mom = Moments::compute(window.returns.as_ref(), market);
     let mut warnings = Vec::new();
     match settings.method {
-        Method::Components => {
-            let model = fit_components(&window, &mom, settings, options, &mut warnings)?;
+        Method::Components | Method::KnsRidge => {
+            let policy = match (settings.method, settings.components.fixed()) {
+                (Method::KnsRidge, _) => KPolicy::All,
+                (_, Some(k)) => KPolicy::Fixed(k as usize),
+                (_, None) => KPolicy::Grid,
+            };
+            let prepared = ComponentFit::prepare(&window, &mom, settings, policy, options)?;
+            let model = prepared.solve(settings, policy, options, &mut warnings)?;
             let direction = direction_of(&model);
             weights::assemble(panel, &window, &mom, settings, &direction, Some(model), None, warnings)
         }
-        Method::PlugIn => {
-            let plug = shrinkage::plug_in(&mom)?;
+        Method::PlugIn | Method::PlugInLedoitWolf => {
+            let plug = if settings.method == Method::PlugIn {
+                shrinkage::plug_in(&mom)?
+            } else {
+                shrinkage::plug_in_ledoit_wolf(&mom)?
+            };
             if plug.singular {
                 warnings.push(Warning {
                     code: "singular-covariance",
@@ -106,121 +112,207 @@ pub fn fit_with(
     }
 }
 
+/// Fits the components method once for every fixed K in `ks` (κ as the
+/// settings say), sharing the window's validation, moments, eigenproblems
+/// and fold preparation: the OOS-Sharpe-against-K sweep of a backtest.
+/// Entry i is the fit with K = ks[i], or its error (for example a K larger
+/// than the window supports).
+///
+/// # Errors
+/// Errors that concern the whole window (input, settings, cancellation).
+pub fn fit_component_sweep(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    ks: &[usize],
+    options: &FitOptions,
+) -> Result<Vec<Result<WeightSet, EstimateError>>, EstimateError> {
+    options.stop.check()?;
+    let window = ReturnWindow::new(panel, settings)?;
+    let market = if settings.demarket { window.market.as_deref() } else { None };
+    let mom = Moments::compute(window.returns.as_ref(), market);
+    let top = ks.iter().copied().max().unwrap_or(1);
+    let prepared = ComponentFit::prepare(&window, &mom, settings, KPolicy::Fixed(top), options)?;
+    let mut out = Vec::with_capacity(ks.len());
+    for &k in ks {
+        let mut warnings = Vec::new();
+        let r = prepared.solve(settings, KPolicy::Fixed(k), options, &mut warnings).and_then(|model| {
+            let direction = direction_of(&model);
+            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), None, warnings)
+        });
+        out.push(r);
+    }
+    Ok(out)
+}
+
 fn direction_of(model: &ComponentModel) -> Vec<f64> {
     let q = &model.basis.q;
     (0..q.nrows()).map(|i| (0..model.k).map(|c| q[(i, c)] * model.b[c]).sum()).collect()
 }
 
-fn fit_components(
-    window: &ReturnWindow,
-    mom: &Moments,
-    settings: &ValidSettings,
-    options: &FitOptions,
-    warnings: &mut Vec<Warning>,
-) -> Result<ComponentModel, EstimateError> {
-    let t = window.periods();
-    let n = window.factors_used();
-    let folds = settings.folds as usize;
-    let train_min = min_training_periods(t, folds);
-    let data_cap = n.min(train_min.saturating_sub(2));
-    let fixed_k = settings.components.fixed().map(|k| k as usize);
-    let k_need = fixed_k.unwrap_or((settings.max_components as usize).min(data_cap)).clamp(1, n);
+/// How the number of components is set.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum KPolicy {
+    /// Cross-validated over 1..=K_max.
+    Grid,
+    /// Fixed by the caller.
+    Fixed(usize),
+    /// Every component the window supports (KNS ridge on all factors).
+    All,
+}
 
-    let full = ComponentBasis::compute(mom, settings.scaling, settings.rp_gamma, k_need, options.eigen_path)?;
-    let market = if settings.demarket { window.market.as_deref() } else { None };
-    let mut fold_data = Vec::with_capacity(folds);
-    for (i, &bounds) in fold_bounds(t, folds).iter().enumerate() {
-        options.stop.check()?;
-        fold_data.push(Fold::prepare(
-            window.returns.as_ref(),
-            market,
-            bounds,
-            i,
-            settings,
-            k_need,
-            options.eigen_path,
-        )?);
-    }
-    let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(0);
-    let allowed = data_cap.min(full.rank).min(fold_rank);
-    let reason = || {
-        format!(
-            "{n} usable factors, {train_min} periods in the shortest training sample (K ≤ T_train − 2 = {}), numerical rank {} in the window and {fold_rank} in the folds",
-            train_min.saturating_sub(2),
-            full.rank
-        )
-    };
-    if let Some(k) = fixed_k
-        && k > allowed
-    {
-        return Err(EstimateError::TooManyComponents { requested: k, allowed, reason: reason() });
-    }
-    if allowed == 0 {
-        return Err(EstimateError::DegeneratePortfolio {
-            reason: format!("no component has positive variance ({})", reason()),
-        });
-    }
-    let ks: Vec<usize> = match fixed_k {
-        Some(k) => vec![k],
-        None => {
-            let top = (settings.max_components as usize).min(allowed);
-            if top < (settings.max_components as usize).min(data_cap) {
-                warnings.push(Warning {
-                    code: "components-capped-by-rank",
-                    message: format!("the component grid stops at K = {top}: {}", reason()),
-                });
-            }
-            (1..=top).collect()
+/// The expensive, K-independent part of a components fit: the window's
+/// basis and every fold's training basis and held-out forms.
+struct ComponentFit {
+    full: ComponentBasis,
+    folds: Vec<Fold>,
+    periods: usize,
+    factors: usize,
+    data_cap: usize,
+    allowed: usize,
+    train_min: usize,
+    scaling: Scaling,
+}
+
+impl ComponentFit {
+    fn prepare(
+        window: &ReturnWindow,
+        mom: &Moments,
+        settings: &ValidSettings,
+        policy: KPolicy,
+        options: &FitOptions,
+    ) -> Result<ComponentFit, EstimateError> {
+        let t = window.periods();
+        let n = window.factors_used();
+        let folds = settings.folds as usize;
+        let train_min = min_training_periods(t, folds);
+        let data_cap = n.min(train_min.saturating_sub(2));
+        // KNS ridge on all factors is covariance PCA with every component.
+        let scaling = if settings.method == Method::KnsRidge { Scaling::Covariance } else { settings.scaling };
+        let k_need = match policy {
+            KPolicy::Grid => (settings.max_components as usize).min(data_cap),
+            KPolicy::Fixed(k) => k,
+            KPolicy::All => data_cap,
         }
-    };
-    let kappas = settings.kappa_grid();
-    let cv = cv::cross_validate(settings, &ks, &kappas, &fold_data, &options.stop, options.threads)?;
-    if cv.solver_limit_hit {
-        warnings.push(Warning {
-            code: "solver-not-converged",
-            message: format!("coordinate descent reached {} sweeps at some grid points", shrinkage::MAX_SWEEPS),
-        });
-    }
-    if fixed_k.is_none() && ks.len() > 1 && cv.k == *ks.last().unwrap_or(&0) && cv.k < n {
-        warnings.push(Warning {
-            code: "components-at-grid-edge",
-            message: format!(
-                "cross-validation chose K = {}, the largest in its grid; raise max_components if the window allows",
-                cv.k
-            ),
-        });
-    }
-    if settings.kappa.fixed().is_none() && (cv.kappa == kappas[0] || cv.kappa == kappas[kappas.len() - 1]) {
-        warnings.push(Warning {
-            code: "kappa-at-grid-edge",
-            message: format!(
-                "cross-validation chose κ = {:.4}, an end of its grid [{}, {}]",
-                cv.kappa,
-                kappas[0],
-                kappas[kappas.len() - 1]
-            ),
-        });
+        .clamp(1, n);
+        let full = ComponentBasis::compute(mom, scaling, settings.rp_gamma, k_need, options.eigen_path)?;
+        let market = if settings.demarket { window.market.as_deref() } else { None };
+        let mut fold_data = Vec::with_capacity(folds);
+        for (i, &bounds) in fold_bounds(t, folds).iter().enumerate() {
+            options.stop.check()?;
+            fold_data.push(Fold::prepare(
+                window.returns.as_ref(),
+                market,
+                bounds,
+                i,
+                settings,
+                scaling,
+                k_need,
+                options.eigen_path,
+            )?);
+        }
+        let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(0);
+        let allowed = data_cap.min(full.rank).min(fold_rank);
+        Ok(ComponentFit { full, folds: fold_data, periods: t, factors: n, data_cap, allowed, train_min, scaling })
     }
 
-    let gamma = kns_gamma(full.trace_f(cv.k), settings.kappa_per_period(cv.kappa), t);
-    let mut b = vec![0.0; full.len()];
-    let info = ShrinkagePath::new(&full, settings.scaling.has_diagonal_components(), settings.l1_penalty)
-        .solve(cv.k, gamma, &mut b);
-    if !info.converged {
-        warnings.push(Warning {
-            code: "solver-not-converged",
-            message: format!("coordinate descent on the final fit reached {} sweeps", shrinkage::MAX_SWEEPS),
-        });
+    fn reason(&self) -> String {
+        let fold_rank = self.folds.iter().map(|f| f.basis.rank).min().unwrap_or(0);
+        format!(
+            "{} usable factors, {} periods in the shortest training sample (K ≤ T_train − 2 = {}), numerical rank {} in the window and {fold_rank} in the folds",
+            self.factors,
+            self.train_min,
+            self.train_min.saturating_sub(2),
+            self.full.rank
+        )
     }
-    b.truncate(cv.k);
-    Ok(ComponentModel {
-        basis: full,
-        k: cv.k,
-        kappa: cv.kappa,
-        gamma,
-        b,
-        best_score: cv.best_score,
-        held_out_sharpe: cv.held_out_sharpe,
-        surface: cv.surface,
-    })
+
+    fn solve(
+        &self,
+        settings: &ValidSettings,
+        policy: KPolicy,
+        options: &FitOptions,
+        warnings: &mut Vec<Warning>,
+    ) -> Result<ComponentModel, EstimateError> {
+        let (t, n, allowed) = (self.periods, self.factors, self.allowed);
+        if let KPolicy::Fixed(k) = policy {
+            if k > allowed {
+                return Err(EstimateError::TooManyComponents { requested: k, allowed, reason: self.reason() });
+            }
+        }
+        if allowed == 0 {
+            return Err(EstimateError::DegeneratePortfolio {
+                reason: format!("no component has positive variance ({})", self.reason()),
+            });
+        }
+        let ks: Vec<usize> = match policy {
+            KPolicy::Fixed(k) => vec![k],
+            KPolicy::All => vec![allowed],
+            KPolicy::Grid => {
+                let top = (settings.max_components as usize).min(allowed);
+                if top < (settings.max_components as usize).min(self.data_cap) {
+                    warnings.push(Warning {
+                        code: "components-capped-by-rank",
+                        message: format!("the component grid stops at K = {top}: {}", self.reason()),
+                    });
+                }
+                (1..=top).collect()
+            }
+        };
+        if policy == KPolicy::All && allowed < n {
+            warnings.push(Warning {
+                code: "components-capped-by-rank",
+                message: format!("the ridge on all factors uses {allowed} of {n} components: {}", self.reason()),
+            });
+        }
+        let diagonal = self.scaling.has_diagonal_components();
+        let kappas = settings.kappa_grid();
+        let cv = cv::cross_validate(settings, diagonal, &ks, &kappas, &self.folds, &options.stop, options.threads)?;
+        if cv.solver_limit_hit {
+            warnings.push(Warning {
+                code: "solver-not-converged",
+                message: format!("coordinate descent reached {} sweeps at some grid points", shrinkage::MAX_SWEEPS),
+            });
+        }
+        if policy == KPolicy::Grid && ks.len() > 1 && cv.k == *ks.last().unwrap_or(&0) && cv.k < n {
+            warnings.push(Warning {
+                code: "components-at-grid-edge",
+                message: format!(
+                    "cross-validation chose K = {}, the largest in its grid; raise max_components if the window allows",
+                    cv.k
+                ),
+            });
+        }
+        if settings.kappa.fixed().is_none() && (cv.kappa == kappas[0] || cv.kappa == kappas[kappas.len() - 1]) {
+            warnings.push(Warning {
+                code: "kappa-at-grid-edge",
+                message: format!(
+                    "cross-validation chose κ = {:.4}, an end of its grid [{}, {}]",
+                    cv.kappa,
+                    kappas[0],
+                    kappas[kappas.len() - 1]
+                ),
+            });
+        }
+
+        let gamma = kns_gamma(self.full.trace_f(cv.k), settings.kappa_per_period(cv.kappa), t);
+        let mut b = vec![0.0; self.full.len()];
+        let info = ShrinkagePath::new(&self.full, diagonal, settings.l1_penalty).solve(cv.k, gamma, &mut b);
+        if !info.converged {
+            warnings.push(Warning {
+                code: "solver-not-converged",
+                message: format!("coordinate descent on the final fit reached {} sweeps", shrinkage::MAX_SWEEPS),
+            });
+        }
+        b.truncate(cv.k);
+        Ok(ComponentModel {
+            basis: self.full.clone(),
+            k: cv.k,
+            kappa: cv.kappa,
+            gamma,
+            b,
+            best_score: cv.best_score,
+            held_out_sharpe: cv.held_out_sharpe,
+            surface: cv.surface,
+        })
+    }
 }

@@ -3,7 +3,7 @@
 //!
 //! | name | default | range | meaning |
 //! |---|---|---|---|
-//! | `method` | `components` | `components`, `plug-in`, `equal-weight` | portfolio rule |
+//! | `method` | `components` | `components`, `kns-ridge`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight` | portfolio rule |
 //! | `scaling` | `sharpe` | `sharpe`, `sharpe-raw`, `standardized`, `covariance`, `risk-premium` | factor scaling before PCA |
 //! | `components` | `auto` | `auto` or 1..=1000 | number of components K |
 //! | `max_components` | 30 | 1..=1000 | largest K cross-validation may choose |
@@ -38,6 +38,10 @@ pub enum Method {
     Components,
     /// Unshrunk Σ⁻¹μ on all usable factors (a baseline).
     PlugIn,
+    /// Σ_LW⁻¹μ with the Ledoit & Wolf (2004) shrunk covariance (a baseline).
+    PlugInLedoitWolf,
+    /// KNS ridge on all factors: covariance PCA with every component, κ as set (a baseline).
+    KnsRidge,
     /// Equal weight over the demarketed factors (DeMiguel, Garlappi & Uppal 2009).
     EqualWeight,
 }

@@ -154,6 +154,61 @@ pub fn plug_in(mom: &Moments) -> Result<PlugIn, EstimateError> {
     Ok(PlugIn { weights: w, singular: rank < n, rank })
 }
 
+/// Ledoit & Wolf (2004) shrinkage of the sample covariance towards a scaled
+/// identity, Σ_LW = (1 − δ)S + δ·(tr S/N)·I with S = X_c'X_c/T (divisor T),
+/// the estimator and shrinkage intensity of scikit-learn `LedoitWolf`.
+/// Returns Σ_LW and δ.
+pub fn ledoit_wolf(mom: &Moments) -> (faer::Mat<f64>, f64) {
+    let (t, n) = mom.centered.shape();
+    let tf = t as f64;
+    let x = &mom.centered;
+    let mut s = dense::gram_tn(x.as_ref());
+    let x2 = faer::Mat::from_fn(t, n, |i, j| x[(i, j)] * x[(i, j)]);
+    let x2tx2 = dense::gram_tn(x2.as_ref());
+    let mut trace_s = 0.0;
+    for j in 0..n {
+        trace_s += s[(j, j)] / tf;
+    }
+    let mu = trace_s / n as f64;
+    let mut beta_sum = 0.0;
+    let mut delta_sum = 0.0;
+    for a in 0..n {
+        for b in 0..n {
+            beta_sum += x2tx2[(a, b)];
+            delta_sum += s[(a, b)] * s[(a, b)];
+        }
+    }
+    let delta_raw = delta_sum / (tf * tf);
+    let beta = (beta_sum / tf - delta_raw) / (n as f64 * tf);
+    let delta = (delta_raw - 2.0 * mu * trace_s + n as f64 * mu * mu) / n as f64;
+    let beta = beta.min(delta);
+    let shrinkage = if beta == 0.0 { 0.0 } else { beta / delta };
+    for a in 0..n {
+        for b in 0..n {
+            s[(a, b)] = (1.0 - shrinkage) * s[(a, b)] / tf + if a == b { shrinkage * mu } else { 0.0 };
+        }
+    }
+    (s, shrinkage)
+}
+
+/// The plug-in portfolio Σ_LW⁻¹μ with the Ledoit–Wolf covariance.
+///
+/// # Errors
+/// [`EstimateError::Numerical`] if Σ_LW is not positive definite (all returns constant).
+pub fn plug_in_ledoit_wolf(mom: &Moments) -> Result<PlugIn, EstimateError> {
+    let (sigma, _) = ledoit_wolf(mom);
+    let n = sigma.nrows();
+    let mut a: Vec<f64> = (0..n * n).map(|i| sigma[(i / n, i % n)]).collect();
+    let mut w = mom.mean.clone();
+    if !dense::spd_solve_in_place(&mut a, n, &mut w) {
+        return Err(EstimateError::Numerical {
+            stage: "Ledoit-Wolf plug-in",
+            detail: "the shrunk covariance is not positive definite".into(),
+        });
+    }
+    Ok(PlugIn { weights: w, singular: false, rank: n })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -174,7 +174,9 @@ pub(crate) fn assemble(
         Normalization::TargetVolatility => settings.target_volatility / (p * var_dir).sqrt(),
         Normalization::RiskAversion => match settings.method {
             // b-implied mean–variance weights divided by γ (SPEC §7).
-            Method::Components | Method::PlugIn => 1.0 / settings.risk_aversion,
+            Method::Components | Method::KnsRidge | Method::PlugIn | Method::PlugInLedoitWolf => {
+                1.0 / settings.risk_aversion
+            }
             // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
             Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
         },

@@ -161,7 +161,7 @@ impl ReturnWindow {
             }
         }
 
-        let min_required = (settings.min_periods as usize).max(if settings.method == Method::Components {
+        let min_required = (settings.min_periods as usize).max(if matches!(settings.method, Method::Components | Method::KnsRidge) {
             settings.folds as usize * MIN_PERIODS_PER_FOLD
         } else {
             0
