@@ -229,6 +229,7 @@ pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWe
                 sharpe_annualized: c.sharpe_annualized,
                 coefficient: c.coefficient,
                 shrinkage_factor: c.shrinkage_factor,
+                loadings: c.loadings.clone(),
             })
             .collect(),
         diagnostics: Some(proto::Diagnostics {

@@ -17,6 +17,7 @@
 #![allow(clippy::result_large_err)]
 
 pub mod estimator;
+pub mod evaluate;
 
 /// Generated `keelson.v1` protobuf messages with their proto3-JSON mapping.
 #[allow(missing_docs, unreachable_pub, clippy::all)]
@@ -28,4 +29,5 @@ pub mod proto {
 pub mod convert;
 pub mod demo;
 pub mod panel_csv;
+pub mod report;
 pub mod service;

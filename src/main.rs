@@ -41,6 +41,46 @@ enum Command {
     Call(CallArgs),
     /// Exit 0 when a server reports SERVING (for container health checks).
     Healthcheck(HealthArgs),
+    /// Backtest the configured method against its baselines out of sample and write a report.
+    Backtest(BacktestArgs),
+}
+
+#[derive(clap::Args, Debug)]
+struct BacktestArgs {
+    #[command(flatten)]
+    window: WindowArgs,
+    #[command(flatten)]
+    settings: SettingsArgs,
+    /// A benchmark set for alphas, comma-separated column names (repeatable); the market alone is always tested.
+    #[arg(long, value_name = "NAME,NAME...")]
+    benchmarks: Vec<String>,
+    /// Estimation window in periods (the minimum when --expanding).
+    #[arg(long = "window", default_value_t = 120)]
+    window_len: usize,
+    /// Expanding instead of rolling windows.
+    #[arg(long)]
+    expanding: bool,
+    /// Refit every STEP periods.
+    #[arg(long, default_value_t = 1)]
+    step: usize,
+    /// Linear trading cost, basis points of turnover.
+    #[arg(long, default_value_t = 10.0)]
+    cost_bps: f64,
+    /// Risk aversion of the certainty-equivalent return.
+    #[arg(long, default_value_t = 3.0)]
+    cer_risk_aversion: f64,
+    /// Largest K of the OOS Sharpe-against-K sweep (0 = no sweep).
+    #[arg(long, default_value_t = 10)]
+    sweep_max_k: usize,
+    /// Only the configured method, no baselines.
+    #[arg(long)]
+    no_baselines: bool,
+    /// Worker threads over refit dates (results do not depend on it).
+    #[arg(long, default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..=256))]
+    threads: u16,
+    /// Folder for report.html, summary.json and returns.csv.
+    #[arg(long, value_name = "DIR")]
+    out: PathBuf,
 }
 
 #[derive(clap::Args, Debug)]
@@ -187,6 +227,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
         Command::Serve(a) => serve(a),
         Command::Call(a) => runtime()?.block_on(call(a)),
         Command::Healthcheck(a) => runtime()?.block_on(healthcheck(a)),
+        Command::Backtest(a) => backtest(a),
     }
 }
 
@@ -394,6 +435,84 @@ async fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
         }
     }
     Ok(ExitCode::SUCCESS)
+}
+
+fn backtest(a: BacktestArgs) -> anyhow::Result<ExitCode> {
+    use std::io::IsTerminal as _;
+    let (settings, _) = resolve_settings(a.settings.config.as_ref(), &a.settings.set)?;
+    let settings = settings.check()?;
+    if !a.cost_bps.is_finite() || a.cost_bps < 0.0 {
+        return Err(UsageError(format!("--cost-bps {}: must be a non-negative number", a.cost_bps)).into());
+    }
+    if !(a.cer_risk_aversion.is_finite() && a.cer_risk_aversion > 0.0) {
+        return Err(UsageError(format!("--cer-risk-aversion {}: must be positive", a.cer_risk_aversion)).into());
+    }
+    let csv = read_window(&a.window)?;
+    let market_name = a.window.market.clone();
+    let benchmark_sets = a
+        .benchmarks
+        .iter()
+        .map(|set| {
+            set.split(',')
+                .map(str::trim)
+                .filter(|n| !n.is_empty())
+                .map(|n| if Some(n) == market_name.as_deref() { keelson::evaluate::MARKET.to_owned() } else { n.to_owned() })
+                .collect()
+        })
+        .collect();
+    let spec = keelson::evaluate::BacktestSpec {
+        window: a.window_len,
+        expanding: a.expanding,
+        step: a.step,
+        cost_bps: a.cost_bps,
+        cer_risk_aversion: a.cer_risk_aversion,
+        sweep_max_k: a.sweep_max_k,
+        benchmark_sets,
+        nw_lag: None,
+        baselines: !a.no_baselines,
+        threads: usize::from(a.threads),
+    };
+    let tty = std::io::stderr().is_terminal();
+    let progress = |p: keelson::evaluate::Progress| {
+        if tty && (p.done % 20 == 0 || p.done == p.total) {
+            let filled = 40 * p.done / p.total.max(1);
+            eprint!("\r[{}{}] {}/{} fits", "#".repeat(filled), " ".repeat(40 - filled), p.done, p.total);
+            if p.done == p.total {
+                eprintln!();
+            }
+        }
+    };
+    let started = std::time::Instant::now();
+    let result = keelson::evaluate::run(&csv.panel, &settings, &spec, &progress, &estimator::Stop::never())
+        .with_context(|| format!("backtesting {csv}"))?;
+    let elapsed = started.elapsed();
+    keelson::report::write(&a.out, &result, &format!("Keelson backtest: {}", csv.file))?;
+    let mut text = keelson::report::summary_table(&result);
+    text.push_str(&backtest_footer(&result));
+    text.push_str(&format!(
+        "{} refits in {:.1} s; report written to {}\n",
+        result.refits,
+        elapsed.as_secs_f64(),
+        a.out.join("report.html").display()
+    ));
+    print(&text)?;
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Inference lines under the summary table.
+fn backtest_footer(r: &keelson::evaluate::BacktestResult) -> String {
+    let mut out = String::new();
+    for c in &r.comparisons {
+        out.push_str(&format!(
+            "configured vs {:<24} ΔSharpe {:>6.2}  z {:>6.2}  p {:.3}\n",
+            c.against, c.test.difference, c.test.z, c.test.p_value
+        ));
+    }
+    out.push_str(&format!(
+        "probabilistic Sharpe ratio (vs 0) {:.3}; deflated Sharpe ratio over {} configurations {:.3}\n",
+        r.psr, r.trials, r.dsr
+    ));
+    out
 }
 
 fn print(text: &str) -> anyhow::Result<()> {

@@ -49,6 +49,9 @@ pub struct ComponentReport {
     pub coefficient: f64,
     /// Σ_F,kk/(Σ_F,kk + γ).
     pub shrinkage_factor: f64,
+    /// The component portfolio q_k over the panel's factors (0 for excluded
+    /// ones); its return is q_k'(r − β m).
+    pub loadings: Vec<f64>,
 }
 
 /// A condition worth knowing; the weights are still valid.
@@ -294,6 +297,13 @@ pub(crate) fn assemble(
                 sharpe_annualized: if sf > 0.0 { p.sqrt() * m.basis.mu_f[k] / sf.sqrt() } else { 0.0 },
                 coefficient: m.b[k],
                 shrinkage_factor: sf / (sf + m.gamma),
+                loadings: {
+                    let mut l = vec![0.0; window.names.len()];
+                    for (j, &col) in window.used.iter().enumerate() {
+                        l[col] = m.basis.q[(j, k)];
+                    }
+                    l
+                },
             });
         }
         diag.num_components = m.k;

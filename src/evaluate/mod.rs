@@ -1,0 +1,673 @@
+//! Out-of-sample evaluation (SPEC §9): rolling or expanding refits, the
+//! configured method beside its baselines on the same dates, a sweep of
+//! out-of-sample Sharpe ratio against K, and the statistics that tell luck
+//! from skill. Pure: no async runtime, no protobuf types.
+//!
+//! Weights fitted on periods [t − L, t) (or [0, t) when expanding) are held
+//! over [t, t + step); the out-of-sample return is p_t = w'r_t + w_m m_t. No
+//! step of a fit sees a period at or after t.
+
+pub mod stats;
+
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use serde::Serialize;
+use thiserror::Error;
+
+use crate::estimator::{
+    self, Choice, EstimateError, FitOptions, Method, ReturnPanel, Scaling, Settings, Stop, ValidSettings, WeightSet,
+};
+
+/// Name of the market as a benchmark and as a strategy.
+pub const MARKET: &str = "market";
+
+/// How a backtest runs. Defaults: 120-period rolling window, monthly refits.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct BacktestSpec {
+    /// Estimation window length L (the minimum length when expanding).
+    pub window: usize,
+    /// Expanding instead of rolling windows.
+    pub expanding: bool,
+    /// Refit every `step` periods.
+    pub step: usize,
+    /// Linear trading cost in basis points of turnover.
+    pub cost_bps: f64,
+    /// Risk aversion γ of the certainty-equivalent return.
+    pub cer_risk_aversion: f64,
+    /// Largest K of the OOS-Sharpe-against-K sweep (0 turns the sweep off).
+    pub sweep_max_k: usize,
+    /// Benchmark sets for alphas: names of factors or [`MARKET`]. The market
+    /// alone is always added when the panel has a market.
+    pub benchmark_sets: Vec<Vec<String>>,
+    /// Newey–West lag; `None` = ⌊4(T/100)^{2/9}⌋.
+    pub nw_lag: Option<usize>,
+    /// Also run every baseline strategy.
+    pub baselines: bool,
+    /// Worker threads over refit dates (results do not depend on it).
+    pub threads: usize,
+}
+
+impl Default for BacktestSpec {
+    fn default() -> Self {
+        BacktestSpec {
+            window: 120,
+            expanding: false,
+            step: 1,
+            cost_bps: 10.0,
+            cer_risk_aversion: 3.0,
+            sweep_max_k: 10,
+            benchmark_sets: Vec::new(),
+            nw_lag: None,
+            baselines: true,
+            threads: 1,
+        }
+    }
+}
+
+/// A backtest that cannot run.
+#[derive(Debug, Error)]
+#[non_exhaustive]
+pub enum BacktestError {
+    /// The specification does not fit the panel.
+    #[error("backtest `{field}`: {reason}")]
+    Spec {
+        /// Offending option.
+        field: &'static str,
+        /// Why.
+        reason: String,
+    },
+    /// A fit failed on one window.
+    #[error("strategy `{strategy}`, window ending before {period}: {source}")]
+    Window {
+        /// Strategy name.
+        strategy: String,
+        /// First held-out period of the window.
+        period: String,
+        /// The estimator's error.
+        #[source]
+        source: EstimateError,
+    },
+    /// Cancelled or past its deadline.
+    #[error(transparent)]
+    Stopped(EstimateError),
+}
+
+/// One strategy of the comparison.
+#[derive(Clone, Debug)]
+pub struct Strategy {
+    /// Display name.
+    pub name: String,
+    /// Settings of its fits; `None` for the market itself.
+    pub settings: Option<ValidSettings>,
+}
+
+fn with(base: &Settings, f: impl FnOnce(&mut Settings)) -> Option<ValidSettings> {
+    let mut s = base.clone();
+    f(&mut s);
+    s.check().ok()
+}
+
+/// The configured method first, then (when `baselines`) the same with every
+/// other scaling, plug-in, plug-in with Ledoit–Wolf, KNS ridge on all
+/// factors, equal weight, and the market.
+pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool) -> Vec<Strategy> {
+    let base = configured.settings();
+    let mut out = vec![Strategy { name: "configured".into(), settings: Some(configured.clone()) }];
+    if !baselines {
+        return out;
+    }
+    if base.method == Method::Components {
+        for sc in Scaling::ALL {
+            if sc != base.scaling {
+                let name = serde_json::to_value(sc).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
+                out.push(Strategy { name: format!("scaling {name}"), settings: with(base, |s| s.scaling = sc) });
+            }
+        }
+    }
+    let baseline = |m: Method| {
+        with(base, |s| {
+            s.method = m;
+            s.components = Choice::Auto;
+        })
+    };
+    out.push(Strategy { name: "plug-in".into(), settings: baseline(Method::PlugIn) });
+    out.push(Strategy { name: "plug-in Ledoit-Wolf".into(), settings: baseline(Method::PlugInLedoitWolf) });
+    out.push(Strategy { name: "KNS ridge, all factors".into(), settings: baseline(Method::KnsRidge) });
+    out.push(Strategy { name: "equal weight".into(), settings: baseline(Method::EqualWeight) });
+    if has_market {
+        out.push(Strategy { name: MARKET.into(), settings: None });
+    }
+    out.retain(|s| s.name == MARKET || s.settings.is_some());
+    out
+}
+
+/// Progress of a running backtest.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Progress {
+    /// Fits done.
+    pub done: usize,
+    /// Fits in all.
+    pub total: usize,
+}
+
+/// Performance of one return series.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Metrics {
+    /// Annualised mean, P·mean.
+    pub mean: f64,
+    /// Annualised volatility, √P·sd.
+    pub volatility: f64,
+    /// Annualised Sharpe ratio.
+    pub sharpe: f64,
+    /// Lo (2002) iid standard error of the annualised Sharpe ratio.
+    pub sharpe_se_iid: f64,
+    /// Lo (2002) Newey–West standard error of the annualised Sharpe ratio.
+    pub sharpe_se_nw: f64,
+    /// Certainty-equivalent return (annualised).
+    pub cer: f64,
+    /// Maximum drawdown of compounded wealth.
+    pub max_drawdown: f64,
+    /// Skewness.
+    pub skewness: f64,
+    /// Non-excess kurtosis.
+    pub kurtosis: f64,
+}
+
+fn metrics(x: &[f64], p: f64, gamma: f64, lag: usize) -> Metrics {
+    let sr = stats::sharpe(x);
+    let (skewness, kurtosis) = stats::skew_kurt(x);
+    Metrics {
+        mean: p * stats::mean(x),
+        volatility: (p * stats::var(x)).sqrt(),
+        sharpe: p.sqrt() * sr,
+        sharpe_se_iid: p.sqrt() * stats::sharpe_se_iid(sr, x.len()),
+        sharpe_se_nw: p.sqrt() * stats::sharpe_se_nw(x, lag),
+        cer: stats::cer(x, gamma, p),
+        max_drawdown: stats::max_drawdown(x),
+        skewness,
+        kurtosis,
+    }
+}
+
+/// Everything about one strategy.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct StrategyResult {
+    /// Name.
+    pub name: String,
+    /// Out-of-sample return per period.
+    pub returns: Vec<f64>,
+    /// Returns net of linear costs.
+    pub net_returns: Vec<f64>,
+    /// Gross metrics.
+    pub metrics: Metrics,
+    /// Metrics net of costs.
+    pub net_metrics: Metrics,
+    /// Average turnover Σ|Δw| + |Δw_m| per refit (after the first).
+    pub average_turnover: f64,
+    /// K chosen at each refit (0 for methods without components).
+    pub chosen_k: Vec<usize>,
+    /// Annualised κ chosen at each refit.
+    pub chosen_kappa: Vec<f64>,
+    /// Share of gross weight in the top-Sharpe factors at each refit.
+    pub top_sharpe_share: Vec<f64>,
+    /// Holding-period returns that were missing for a factor with weight (counted as 0).
+    pub missing_holding_returns: usize,
+}
+
+/// One point of the sweep.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct SweepPoint {
+    /// Scaling.
+    pub scaling: Scaling,
+    /// Fixed number of components.
+    pub k: usize,
+    /// Annualised OOS Sharpe ratio (NaN where K did not fit every window).
+    pub sharpe: f64,
+}
+
+/// Alpha of a strategy against one benchmark set.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct AlphaTest {
+    /// Strategy.
+    pub strategy: String,
+    /// Benchmark names.
+    pub benchmarks: Vec<String>,
+    /// Annualised alpha P·α.
+    pub alpha: f64,
+    /// Newey–West t-statistic of α.
+    pub t_nw: f64,
+    /// Heteroskedasticity-robust (HC0) t-statistic of α.
+    pub t_robust: f64,
+    /// R² of the regression.
+    pub r2: f64,
+}
+
+/// The pricing test of the configured method's K-component model.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct PricingTest {
+    /// Components in the model.
+    pub k: usize,
+    /// Test assets (factors observed in every out-of-sample period).
+    pub assets: usize,
+    /// Assets whose alpha has |NW t| > 1.96.
+    pub significant: usize,
+    /// GRS statistic and p-value.
+    pub grs: Option<stats::Grs>,
+}
+
+/// Sharpe-difference test of the configured method against one strategy.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Comparison {
+    /// Baseline.
+    pub against: String,
+    /// The test.
+    pub test: stats::SharpeDifference,
+}
+
+/// Result of a backtest.
+#[derive(Clone, Debug, Serialize)]
+pub struct BacktestResult {
+    /// The specification.
+    pub spec: BacktestSpec,
+    /// Periods per year.
+    pub periods_per_year: u32,
+    /// Out-of-sample period labels (or indices).
+    pub periods: Vec<String>,
+    /// Refits.
+    pub refits: usize,
+    /// Strategies, the configured method first.
+    pub strategies: Vec<StrategyResult>,
+    /// OOS Sharpe against K.
+    pub sweep: Vec<SweepPoint>,
+    /// Jobson–Korkie–Memmel tests, configured against each other strategy.
+    pub comparisons: Vec<Comparison>,
+    /// Probabilistic Sharpe ratio of the configured method against 0.
+    pub psr: f64,
+    /// Deflated Sharpe ratio of the configured method.
+    pub dsr: f64,
+    /// Configurations counted as trials for the DSR.
+    pub trials: usize,
+    /// Alphas of every strategy against every benchmark set.
+    pub alphas: Vec<AlphaTest>,
+    /// Pricing test of the configured K-component model.
+    pub pricing: Option<PricingTest>,
+    /// The configured method's fit on the latest window.
+    #[serde(skip)]
+    pub last_fit: Option<WeightSet>,
+    /// Newey–West lag used.
+    pub nw_lag: usize,
+}
+
+/// One refit's outcome for one strategy.
+#[derive(Clone, Debug)]
+struct Held {
+    weights: Vec<f64>,
+    market: f64,
+    k: usize,
+    kappa: f64,
+    top_share: f64,
+    /// Component loadings (configured strategy only) and betas.
+    components: Vec<Vec<f64>>,
+    betas: Vec<f64>,
+}
+
+fn sub_panel(panel: &ReturnPanel, start: usize, end: usize) -> ReturnPanel {
+    let c = panel.cols;
+    ReturnPanel {
+        factor_names: panel.factor_names.clone(),
+        period_labels: if panel.period_labels.is_empty() { Vec::new() } else { panel.period_labels[start..end].to_vec() },
+        returns: panel.returns[start * c..end * c].to_vec(),
+        rows: end - start,
+        cols: c,
+        market: panel.market.as_ref().map(|m| m[start..end].to_vec()),
+        previous_weights: Vec::new(),
+    }
+}
+
+fn label(panel: &ReturnPanel, t: usize) -> String {
+    panel.period_labels.get(t).cloned().unwrap_or_else(|| format!("#{t}"))
+}
+
+fn held_from(ws: &WeightSet) -> Held {
+    Held {
+        weights: ws.factors.iter().map(|f| f.weight).collect(),
+        market: ws.market_weight,
+        k: ws.diagnostics.num_components,
+        kappa: ws.diagnostics.kappa,
+        top_share: ws.diagnostics.top_sharpe_gross_share,
+        components: ws.components.iter().map(|c| c.loadings.clone()).collect(),
+        betas: ws.factors.iter().map(|f| f.market_beta).collect(),
+    }
+}
+
+/// Runs every strategy over every refit date, with `threads` workers over
+/// dates; `progress` is called after each date.
+///
+/// # Errors
+/// [`BacktestError::Spec`] for options that do not fit the panel,
+/// [`BacktestError::Window`] naming the strategy and date of a failed fit,
+/// [`BacktestError::Stopped`] when `stop` fires.
+pub fn run(
+    panel: &ReturnPanel,
+    configured: &ValidSettings,
+    spec: &BacktestSpec,
+    progress: &(dyn Fn(Progress) + Sync),
+    stop: &Stop,
+) -> Result<BacktestResult, BacktestError> {
+    let t_all = panel.rows;
+    let spec_err = |field, reason: String| BacktestError::Spec { field, reason };
+    if spec.step == 0 {
+        return Err(spec_err("step", "must be at least 1".into()));
+    }
+    if spec.window < 3 {
+        return Err(spec_err("window", "must be at least 3 periods".into()));
+    }
+    if panel.returns.len() != panel.rows * panel.cols || panel.cols == 0 {
+        return Err(spec_err("returns", format!("{} values for {} × {}", panel.returns.len(), panel.rows, panel.cols)));
+    }
+    if t_all <= spec.window {
+        return Err(spec_err(
+            "window",
+            format!("{} periods leave nothing out of sample after a {}-period window", t_all, spec.window),
+        ));
+    }
+    let mut benchmark_sets: Vec<Vec<String>> = Vec::new();
+    if panel.market.is_some() {
+        benchmark_sets.push(vec![MARKET.to_owned()]);
+    }
+    for set in &spec.benchmark_sets {
+        for name in set {
+            let known = (name == MARKET && panel.market.is_some()) || panel.factor_names.iter().any(|f| f == name);
+            if !known {
+                return Err(spec_err("benchmarks", format!("no factor or market named \"{name}\"")));
+            }
+        }
+        if !set.is_empty() && !benchmark_sets.contains(set) {
+            benchmark_sets.push(set.clone());
+        }
+    }
+    let p = f64::from(configured.periods_per_year);
+    let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
+    let dates: Vec<usize> = (spec.window..t_all).step_by(spec.step).collect();
+    let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k).collect();
+    let sweep_scalings: Vec<Scaling> =
+        if spec.sweep_max_k > 0 && configured.method == Method::Components { Scaling::ALL.to_vec() } else { Vec::new() };
+    let per_date = strategies.len() + sweep_scalings.len();
+    let total = dates.len() * per_date;
+    let done = AtomicUsize::new(0);
+
+    type DateOut = (Vec<Held>, Vec<Vec<Option<Held>>>, Option<WeightSet>);
+    let fit_date = |d: usize| -> Result<DateOut, BacktestError> {
+        let t = dates[d];
+        let start = if spec.expanding { 0 } else { t - spec.window };
+        let window = sub_panel(panel, start, t);
+        let opts = FitOptions { threads: 1, stop: stop.clone(), ..FitOptions::default() };
+        let wrap = |strategy: &str, e: EstimateError| match e {
+            EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
+            e => BacktestError::Window { strategy: strategy.to_owned(), period: label(panel, t), source: e },
+        };
+        let mut held = Vec::with_capacity(strategies.len());
+        let mut last = None;
+        for (i, s) in strategies.iter().enumerate() {
+            let h = match &s.settings {
+                None => Held {
+                    weights: vec![0.0; panel.cols],
+                    market: 1.0,
+                    k: 0,
+                    kappa: 0.0,
+                    top_share: 0.0,
+                    components: Vec::new(),
+                    betas: Vec::new(),
+                },
+                Some(settings) => {
+                    let ws = estimator::fit_with(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
+                    let h = held_from(&ws);
+                    if i == 0 && d + 1 == dates.len() {
+                        last = Some(ws);
+                    }
+                    h
+                }
+            };
+            held.push(h);
+            let n = done.fetch_add(1, Ordering::Relaxed) + 1;
+            progress(Progress { done: n, total });
+        }
+        let mut sweep = Vec::with_capacity(sweep_scalings.len());
+        for &sc in &sweep_scalings {
+            let mut s = configured.settings().clone();
+            s.scaling = sc;
+            let settings = s.check().map_err(|e| wrap("sweep", e.into()))?;
+            let fits = estimator::fit_component_sweep(&window, &settings, &sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
+            sweep.push(fits.into_iter().map(|r| r.ok().map(|ws| held_from(&ws))).collect());
+            let n = done.fetch_add(1, Ordering::Relaxed) + 1;
+            progress(Progress { done: n, total });
+        }
+        Ok((held, sweep, last))
+    };
+
+    // Refit dates are independent: split them across threads, keep date order.
+    let results: Vec<Result<DateOut, BacktestError>> = if spec.threads <= 1 {
+        (0..dates.len()).map(|d| fit_date(d)).collect()
+    } else {
+        let chunk = dates.len().div_ceil(spec.threads);
+        let n_dates = dates.len();
+        std::thread::scope(|scope| {
+            let handles: Vec<_> = (0..spec.threads)
+                .map(|w| {
+                    let f = &fit_date;
+                    scope.spawn(move || {
+                        (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>()
+                    })
+                })
+                .collect();
+            handles
+                .into_iter()
+                .flat_map(|h| {
+                    h.join().unwrap_or_else(|_| {
+                        vec![Err(BacktestError::Stopped(EstimateError::Numerical {
+                            stage: "backtest",
+                            detail: "worker panicked".into(),
+                        }))]
+                    })
+                })
+                .collect()
+        })
+    };
+    let mut per_date_held = Vec::with_capacity(dates.len());
+    let mut per_date_sweep = Vec::with_capacity(dates.len());
+    let mut last_fit = None;
+    for r in results {
+        let (h, s, l) = r?;
+        per_date_held.push(h);
+        per_date_sweep.push(s);
+        if l.is_some() {
+            last_fit = l;
+        }
+    }
+
+    // Out-of-sample returns.
+    let oos: Vec<usize> = (spec.window..t_all).collect();
+    let periods: Vec<String> = oos.iter().map(|&t| label(panel, t)).collect();
+    let date_of = |t: usize| (t - spec.window) / spec.step;
+    let cols = panel.cols;
+    let market = panel.market.as_deref();
+    let port_return = |h: &Held, t: usize, missing: &mut usize| {
+        let mut r = h.market * market.map_or(0.0, |m| m[t]);
+        for j in 0..cols {
+            let w = h.weights[j];
+            if w != 0.0 {
+                let x = panel.returns[t * cols + j];
+                if x.is_nan() {
+                    *missing += 1;
+                } else {
+                    r += w * x;
+                }
+            }
+        }
+        r
+    };
+    let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.len()));
+    let cost = spec.cost_bps / 1e4;
+    let mut results = Vec::with_capacity(strategies.len());
+    for (si, s) in strategies.iter().enumerate() {
+        let mut missing = 0;
+        let returns: Vec<f64> = oos.iter().map(|&t| port_return(&per_date_held[date_of(t)][si], t, &mut missing)).collect();
+        let mut turnovers = Vec::new();
+        let mut net = returns.clone();
+        for d in 1..dates.len() {
+            let (a, b) = (&per_date_held[d - 1][si], &per_date_held[d][si]);
+            let tv: f64 =
+                a.weights.iter().zip(&b.weights).map(|(x, y)| (x - y).abs()).sum::<f64>() + (a.market - b.market).abs();
+            turnovers.push(tv);
+            net[dates[d] - spec.window] -= cost * tv;
+        }
+        let avg_turnover = if turnovers.is_empty() { 0.0 } else { stats::mean(&turnovers) };
+        results.push(StrategyResult {
+            name: s.name.clone(),
+            metrics: metrics(&returns, p, spec.cer_risk_aversion, lag),
+            net_metrics: metrics(&net, p, spec.cer_risk_aversion, lag),
+            returns,
+            net_returns: net,
+            average_turnover: avg_turnover,
+            chosen_k: per_date_held.iter().map(|h| h[si].k).collect(),
+            chosen_kappa: per_date_held.iter().map(|h| h[si].kappa).collect(),
+            top_sharpe_share: per_date_held.iter().map(|h| h[si].top_share).collect(),
+            missing_holding_returns: missing,
+        });
+    }
+
+    // OOS Sharpe against K.
+    let mut sweep = Vec::new();
+    for (ci, &sc) in sweep_scalings.iter().enumerate() {
+        for (ki, &k) in sweep_ks.iter().enumerate() {
+            let mut missing = 0;
+            let mut series = Vec::with_capacity(oos.len());
+            for &t in &oos {
+                match &per_date_sweep[date_of(t)][ci][ki] {
+                    Some(h) => series.push(port_return(h, t, &mut missing)),
+                    None => break,
+                }
+            }
+            let sharpe = if series.len() == oos.len() { p.sqrt() * stats::sharpe(&series) } else { f64::NAN };
+            sweep.push(SweepPoint { scaling: sc, k, sharpe });
+        }
+    }
+
+    // Inference.
+    let configured_returns = &results[0].returns;
+    let comparisons = results[1..]
+        .iter()
+        .map(|r| Comparison { against: r.name.clone(), test: stats::jobson_korkie_memmel(configured_returns, &r.returns, p) })
+        .collect();
+    let sr = stats::sharpe(configured_returns);
+    let (skew, kurt) = stats::skew_kurt(configured_returns);
+    let psr = stats::probabilistic_sharpe(sr, 0.0, configured_returns.len(), skew, kurt);
+    // Every configuration evaluated counts as a trial: the strategies and the sweep points.
+    let mut trial_srs: Vec<f64> = results.iter().map(|r| r.metrics.sharpe / p.sqrt()).collect();
+    trial_srs.extend(sweep.iter().map(|s| s.sharpe / p.sqrt()));
+    trial_srs.retain(|v| v.is_finite());
+    let trials = trial_srs.len();
+    let dsr = if trials >= 2 {
+        stats::deflated_sharpe(sr, configured_returns.len(), skew, kurt, stats::var(&trial_srs), trials)
+    } else {
+        f64::NAN
+    };
+
+    let series_of = |name: &str| -> Option<Vec<f64>> {
+        if name == MARKET {
+            return market.map(|m| oos.iter().map(|&t| m[t]).collect());
+        }
+        let j = panel.factor_names.iter().position(|f| f == name)?;
+        Some(oos.iter().map(|&t| panel.returns[t * cols + j]).collect())
+    };
+    let mut alphas = Vec::new();
+    for set in &benchmark_sets {
+        let xs: Option<Vec<Vec<f64>>> = set.iter().map(|n| series_of(n)).collect();
+        let Some(xs) = xs else { continue };
+        if xs.iter().any(|x| x.iter().any(|v| !v.is_finite())) {
+            continue;
+        }
+        for r in &results {
+            if let Some(reg) = stats::ols(&r.returns, &xs, lag) {
+                alphas.push(AlphaTest {
+                    strategy: r.name.clone(),
+                    benchmarks: set.clone(),
+                    alpha: p * reg.coef[0],
+                    t_nw: reg.coef[0] / reg.se_nw[0],
+                    t_robust: reg.coef[0] / reg.se_robust[0],
+                    r2: reg.r2,
+                });
+            }
+        }
+    }
+
+    let pricing = pricing_test(panel, &per_date_held, &oos, date_of, lag, configured);
+    Ok(BacktestResult {
+        spec: spec.clone(),
+        periods_per_year: configured.periods_per_year,
+        periods,
+        refits: dates.len(),
+        strategies: results,
+        sweep,
+        comparisons,
+        psr,
+        dsr,
+        trials,
+        alphas,
+        pricing,
+        last_fit,
+        nw_lag: lag,
+    })
+}
+
+/// Time-series regressions of every factor observed throughout the
+/// out-of-sample span on the out-of-sample returns of the configured
+/// method's first K components (and the market, when there is one); K is the
+/// one chosen most often.
+fn pricing_test(
+    panel: &ReturnPanel,
+    held: &[Vec<Held>],
+    oos: &[usize],
+    date_of: impl Fn(usize) -> usize,
+    lag: usize,
+    configured: &ValidSettings,
+) -> Option<PricingTest> {
+    if !matches!(configured.method, Method::Components | Method::KnsRidge) {
+        return None;
+    }
+    let mut counts = std::collections::BTreeMap::new();
+    for h in held {
+        *counts.entry(h[0].k).or_insert(0usize) += 1;
+    }
+    let k = counts.iter().max_by_key(|(k, c)| (**c, std::cmp::Reverse(**k))).map(|(k, _)| *k)?;
+    let cols = panel.cols;
+    let m = panel.market.as_deref();
+    let mut regressors: Vec<Vec<f64>> = vec![Vec::with_capacity(oos.len()); k];
+    for &t in oos {
+        let h = &held[date_of(t)][0];
+        for (c, reg) in regressors.iter_mut().enumerate() {
+            let Some(load) = h.components.get(c) else { return None };
+            let mut v = 0.0;
+            for j in 0..cols {
+                if load[j] != 0.0 {
+                    let x = panel.returns[t * cols + j];
+                    v += load[j] * (x - h.betas[j] * m.map_or(0.0, |m| m[t]));
+                }
+            }
+            reg.push(v);
+        }
+    }
+    if let Some(m) = m {
+        regressors.push(oos.iter().map(|&t| m[t]).collect());
+    }
+    let assets: Vec<Vec<f64>> = (0..cols)
+        .map(|j| oos.iter().map(|&t| panel.returns[t * cols + j]).collect::<Vec<f64>>())
+        .filter(|s| s.iter().all(|v| v.is_finite()))
+        .collect();
+    let significant = assets
+        .iter()
+        .filter_map(|y| stats::ols(y, &regressors, lag))
+        .filter(|r| (r.coef[0] / r.se_nw[0]).abs() > 1.96)
+        .count();
+    Some(PricingTest { k, assets: assets.len(), significant, grs: stats::grs(&assets, &regressors) })
+}
