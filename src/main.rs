@@ -456,7 +456,9 @@ fn backtest(a: BacktestArgs) -> anyhow::Result<ExitCode> {
             set.split(',')
                 .map(str::trim)
                 .filter(|n| !n.is_empty())
-                .map(|n| if Some(n) == market_name.as_deref() { keelson::evaluate::MARKET.to_owned() } else { n.to_owned() })
+                .map(|n| {
+                    if Some(n) == market_name.as_deref() { keelson::evaluate::MARKET.to_owned() } else { n.to_owned() }
+                })
                 .collect()
         })
         .collect();
@@ -474,7 +476,7 @@ fn backtest(a: BacktestArgs) -> anyhow::Result<ExitCode> {
     };
     let tty = std::io::stderr().is_terminal();
     let progress = |p: keelson::evaluate::Progress| {
-        if tty && (p.done % 20 == 0 || p.done == p.total) {
+        if tty && (p.done.is_multiple_of(20) || p.done == p.total) {
             let filled = 40 * p.done / p.total.max(1);
             eprint!("\r[{}{}] {}/{} fits", "#".repeat(filled), " ".repeat(40 - filled), p.done, p.total);
             if p.done == p.total {

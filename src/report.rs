@@ -50,6 +50,17 @@ fn finite_range(values: impl Iterator<Item = f64>) -> (f64, f64) {
     (lo - pad, hi + pad)
 }
 
+/// A tick label with as many decimals as the axis range needs.
+fn tick(v: f64, range: f64) -> String {
+    if range >= 20.0 {
+        format!("{v:.0}")
+    } else if range >= 2.0 {
+        format!("{v:.1}")
+    } else {
+        format!("{v:.3}")
+    }
+}
+
 /// Lines of `series` (name, y) against period index, x labels from `periods`.
 fn line_chart(
     title: &str,
@@ -78,7 +89,7 @@ fn line_chart(
             .y_desc(y_label)
             .x_labels(8)
             .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
-            .y_label_formatter(&|y| if log_y { format!("{:.3}", 10f64.powf(*y)) } else { format!("{y:.3}") })
+            .y_label_formatter(&|y| if log_y { format!("{:.3}", 10f64.powf(*y)) } else { tick(*y, hi - lo) })
             .draw()?;
         for (i, (name, ys)) in series.iter().enumerate() {
             let c = colour(i);
@@ -117,7 +128,13 @@ fn xy_chart(title: &str, x_label: &str, y_label: &str, series: &[(String, Vec<(f
             .x_label_area_size(40)
             .y_label_area_size(70)
             .build_cartesian_2d(xlo..xhi, ylo..yhi)?;
-        chart.configure_mesh().x_desc(x_label).y_desc(y_label).draw()?;
+        chart
+            .configure_mesh()
+            .x_desc(x_label)
+            .y_desc(y_label)
+            .y_label_formatter(&|y| tick(*y, yhi - ylo))
+            .x_label_formatter(&|x| tick(*x, xhi - xlo))
+            .draw()?;
         for (i, (name, pts)) in series.iter().enumerate() {
             let c = colour(i);
             let pts: Vec<(f64, f64)> = pts.iter().copied().filter(|p| p.1.is_finite()).collect();
@@ -152,7 +169,10 @@ fn surface_chart(ks: &[usize], kappas: &[f64], scores: &[f64], criterion: &str) 
         let (x0, x1) = (lk[0] - dx / 2.0, lk[lk.len() - 1] + dx / 2.0);
         let (y0, y1) = (ks[0] as f64 - 0.5, ks[ks.len() - 1] as f64 + 0.5);
         let mut chart = ChartBuilder::on(&root)
-            .caption(format!("Cross-validation surface of the latest window ({criterion}; dark red = best)"), ("sans-serif", 18))
+            .caption(
+                format!("Cross-validation surface of the latest window ({criterion}; dark red = best)"),
+                ("sans-serif", 18),
+            )
             .margin(10)
             .x_label_area_size(40)
             .y_label_area_size(60)
@@ -163,6 +183,7 @@ fn surface_chart(ks: &[usize], kappas: &[f64], scores: &[f64], criterion: &str) 
             .x_desc("κ, annualised (log scale)")
             .y_desc("components K")
             .x_label_formatter(&|x| format!("{:.2}", 10f64.powf(*x)))
+            .y_label_formatter(&|y| format!("{y:.0}"))
             .draw()?;
         let cols = kappas.len();
         chart.draw_series(ks.iter().enumerate().flat_map(|(r, &k)| {
@@ -175,10 +196,7 @@ fn surface_chart(ks: &[usize], kappas: &[f64], scores: &[f64], criterion: &str) 
                 } else {
                     RGBColor(220, 220, 220)
                 };
-                Rectangle::new(
-                    [(lk[c] - dx / 2.0, k as f64 - 0.5), (lk[c] + dx / 2.0, k as f64 + 0.5)],
-                    col.filled(),
-                )
+                Rectangle::new([(lk[c] - dx / 2.0, k as f64 - 0.5), (lk[c] + dx / 2.0, k as f64 + 0.5)], col.filled())
             })
         }))?;
         root.draw(&Text::new(
@@ -289,17 +307,24 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
         csv.push('\n');
     }
     std::fs::write(dir.join("returns.csv"), csv).context("writing returns.csv")?;
-    std::fs::write(dir.join("summary.json"), serde_json::to_string_pretty(r)? + "\n").context("writing summary.json")?;
+    std::fs::write(dir.join("summary.json"), serde_json::to_string_pretty(r)? + "\n")
+        .context("writing summary.json")?;
 
     let cumulative: Vec<(String, Vec<f64>)> = r
         .strategies
         .iter()
         .map(|s| {
             let mut acc = 0.0;
-            (s.name.clone(), s.returns.iter().map(|x| {
-                acc += x;
-                100.0 * acc
-            }).collect())
+            (
+                s.name.clone(),
+                s.returns
+                    .iter()
+                    .map(|x| {
+                        acc += x;
+                        100.0 * acc
+                    })
+                    .collect(),
+            )
         })
         .collect();
     let mut charts = Vec::new();
@@ -311,7 +336,8 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
     if !r.sweep.is_empty() {
         let mut by_scaling: Vec<(String, Vec<(f64, f64)>)> = Vec::new();
         for p in &r.sweep {
-            let name = serde_json::to_value(p.scaling).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
+            let name =
+                serde_json::to_value(p.scaling).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
             match by_scaling.iter_mut().find(|(n, _)| *n == name) {
                 Some((_, pts)) => pts.push((p.k as f64, p.sharpe)),
                 None => by_scaling.push((name, vec![(p.k as f64, p.sharpe)])),
@@ -325,7 +351,8 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
     }
     if let Some(ws) = &r.last_fit {
         if let Some(s) = &ws.diagnostics.cv_surface {
-            let crit = serde_json::to_value(s.criterion).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
+            let crit =
+                serde_json::to_value(s.criterion).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
             charts.push((
                 "Cross-validation surface",
                 "Mean held-out score of every (K, κ) pair in the latest window's cross-validation; the chosen point is the best cell, ties going to fewer components and more shrinkage.",
@@ -352,11 +379,18 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
             "Number of components K chosen by cross-validation at each refit (fixed K shows as a flat line).",
             chart(line_chart("K chosen at each refit", "components K", &refit_labels, &k_series, false))?,
         ));
-        let kappa_series: Vec<(String, Vec<f64>)> = fits.iter().take(6).map(|s| (s.name.clone(), s.chosen_kappa.clone())).collect();
+        let kappa_series: Vec<(String, Vec<f64>)> =
+            fits.iter().take(6).map(|s| (s.name.clone(), s.chosen_kappa.clone())).collect();
         charts.push((
             "Shrinkage chosen over time",
             "Annualised κ chosen at each refit (log scale): smaller κ means more shrinkage.",
-            chart(line_chart("κ chosen at each refit (annualised, log scale)", "κ", &refit_labels, &kappa_series, true))?,
+            chart(line_chart(
+                "κ chosen at each refit (annualised, log scale)",
+                "κ",
+                &refit_labels,
+                &kappa_series,
+                true,
+            ))?,
         ));
         let share: Vec<(String, Vec<f64>)> = r
             .strategies

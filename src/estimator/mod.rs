@@ -68,7 +68,11 @@ pub fn fit(panel: &ReturnPanel, settings: &ValidSettings) -> Result<WeightSet, E
 /// the window, [`EstimateError::CriterionUnavailable`],
 /// [`EstimateError::DegeneratePortfolio`], and [`EstimateError::Cancelled`] /
 /// [`EstimateError::DeadlineExceeded`] when `options.stop` fires.
-pub fn fit_with(panel: &ReturnPanel, settings: &ValidSettings, options: &FitOptions) -> Result<WeightSet, EstimateError> {
+pub fn fit_with(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    options: &FitOptions,
+) -> Result<WeightSet, EstimateError> {
     options.stop.check()?;
     let window = ReturnWindow::new(panel, settings)?;
     let market = if settings.demarket { window.market.as_deref() } else { None };
@@ -234,10 +238,10 @@ impl ComponentFit {
         warnings: &mut Vec<Warning>,
     ) -> Result<ComponentModel, EstimateError> {
         let (t, n, allowed) = (self.periods, self.factors, self.allowed);
-        if let KPolicy::Fixed(k) = policy {
-            if k > allowed {
-                return Err(EstimateError::TooManyComponents { requested: k, allowed, reason: self.reason() });
-            }
+        if let KPolicy::Fixed(k) = policy
+            && k > allowed
+        {
+            return Err(EstimateError::TooManyComponents { requested: k, allowed, reason: self.reason() });
         }
         if allowed == 0 {
             return Err(EstimateError::DegeneratePortfolio {

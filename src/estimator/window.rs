@@ -161,11 +161,12 @@ impl ReturnWindow {
             }
         }
 
-        let min_required = (settings.min_periods as usize).max(if matches!(settings.method, Method::Components | Method::KnsRidge) {
-            settings.folds as usize * MIN_PERIODS_PER_FOLD
-        } else {
-            0
-        });
+        let min_required =
+            (settings.min_periods as usize).max(if matches!(settings.method, Method::Components | Method::KnsRidge) {
+                settings.folds as usize * MIN_PERIODS_PER_FOLD
+            } else {
+                0
+            });
         if rows < min_required {
             let reason = if rows < settings.min_periods as usize {
                 "setting min_periods"

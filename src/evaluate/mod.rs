@@ -119,7 +119,8 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
     if base.method == Method::Components {
         for sc in Scaling::ALL {
             if sc != base.scaling {
-                let name = serde_json::to_value(sc).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
+                let name =
+                    serde_json::to_value(sc).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
                 out.push(Strategy { name: format!("scaling {name}"), settings: with(base, |s| s.scaling = sc) });
             }
         }
@@ -315,7 +316,11 @@ fn sub_panel(panel: &ReturnPanel, start: usize, end: usize) -> ReturnPanel {
     let c = panel.cols;
     ReturnPanel {
         factor_names: panel.factor_names.clone(),
-        period_labels: if panel.period_labels.is_empty() { Vec::new() } else { panel.period_labels[start..end].to_vec() },
+        period_labels: if panel.period_labels.is_empty() {
+            Vec::new()
+        } else {
+            panel.period_labels[start..end].to_vec()
+        },
         returns: panel.returns[start * c..end * c].to_vec(),
         rows: end - start,
         cols: c,
@@ -390,8 +395,11 @@ pub fn run(
     let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
     let dates: Vec<usize> = (spec.window..t_all).step_by(spec.step).collect();
     let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k).collect();
-    let sweep_scalings: Vec<Scaling> =
-        if spec.sweep_max_k > 0 && configured.method == Method::Components { Scaling::ALL.to_vec() } else { Vec::new() };
+    let sweep_scalings: Vec<Scaling> = if spec.sweep_max_k > 0 && configured.method == Method::Components {
+        Scaling::ALL.to_vec()
+    } else {
+        Vec::new()
+    };
     let per_date = strategies.len() + sweep_scalings.len();
     let total = dates.len() * per_date;
     let done = AtomicUsize::new(0);
@@ -437,7 +445,8 @@ pub fn run(
             let mut s = configured.settings().clone();
             s.scaling = sc;
             let settings = s.check().map_err(|e| wrap("sweep", e.into()))?;
-            let fits = estimator::fit_component_sweep(&window, &settings, &sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
+            let fits =
+                estimator::fit_component_sweep(&window, &settings, &sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
             sweep.push(fits.into_iter().map(|r| r.ok().map(|ws| held_from(&ws))).collect());
             let n = done.fetch_add(1, Ordering::Relaxed) + 1;
             progress(Progress { done: n, total });
@@ -447,7 +456,7 @@ pub fn run(
 
     // Refit dates are independent: split them across threads, keep date order.
     let results: Vec<Result<DateOut, BacktestError>> = if spec.threads <= 1 {
-        (0..dates.len()).map(|d| fit_date(d)).collect()
+        (0..dates.len()).map(&fit_date).collect()
     } else {
         let chunk = dates.len().div_ceil(spec.threads);
         let n_dates = dates.len();
@@ -455,9 +464,7 @@ pub fn run(
             let handles: Vec<_> = (0..spec.threads)
                 .map(|w| {
                     let f = &fit_date;
-                    scope.spawn(move || {
-                        (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>()
-                    })
+                    scope.spawn(move || (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>())
                 })
                 .collect();
             handles
@@ -511,7 +518,8 @@ pub fn run(
     let mut results = Vec::with_capacity(strategies.len());
     for (si, s) in strategies.iter().enumerate() {
         let mut missing = 0;
-        let returns: Vec<f64> = oos.iter().map(|&t| port_return(&per_date_held[date_of(t)][si], t, &mut missing)).collect();
+        let returns: Vec<f64> =
+            oos.iter().map(|&t| port_return(&per_date_held[date_of(t)][si], t, &mut missing)).collect();
         let mut turnovers = Vec::new();
         let mut net = returns.clone();
         for d in 1..dates.len() {
@@ -557,7 +565,10 @@ pub fn run(
     let configured_returns = &results[0].returns;
     let comparisons = results[1..]
         .iter()
-        .map(|r| Comparison { against: r.name.clone(), test: stats::jobson_korkie_memmel(configured_returns, &r.returns, p) })
+        .map(|r| Comparison {
+            against: r.name.clone(),
+            test: stats::jobson_korkie_memmel(configured_returns, &r.returns, p),
+        })
         .collect();
     let sr = stats::sharpe(configured_returns);
     let (skew, kurt) = stats::skew_kurt(configured_returns);
@@ -601,7 +612,10 @@ pub fn run(
         }
     }
 
-    let pricing = pricing_test(panel, &per_date_held, &oos, date_of, lag, configured);
+    // The pricing test needs the same K components at every refit: the
+    // configured fits when they have them, else the sweep's fixed-K fits.
+    let sweep_index = sweep_scalings.iter().position(|&sc| sc == configured.scaling);
+    let pricing = pricing_test(panel, &per_date_held, &per_date_sweep, sweep_index, &oos, date_of, lag, configured);
     Ok(BacktestResult {
         spec: spec.clone(),
         periods_per_year: configured.periods_per_year,
@@ -622,11 +636,14 @@ pub fn run(
 
 /// Time-series regressions of every factor observed throughout the
 /// out-of-sample span on the out-of-sample returns of the configured
-/// method's first K components (and the market, when there is one); K is the
-/// one chosen most often.
+/// scaling's first K components (and the market, when there is one); K is
+/// the one the configured method chose most often.
+#[allow(clippy::too_many_arguments)]
 fn pricing_test(
     panel: &ReturnPanel,
     held: &[Vec<Held>],
+    sweep: &[Vec<Vec<Option<Held>>>],
+    sweep_index: Option<usize>,
     oos: &[usize],
     date_of: impl Fn(usize) -> usize,
     lag: usize,
@@ -640,11 +657,17 @@ fn pricing_test(
         *counts.entry(h[0].k).or_insert(0usize) += 1;
     }
     let k = counts.iter().max_by_key(|(k, c)| (**c, std::cmp::Reverse(**k))).map(|(k, _)| *k)?;
+    let fits: Vec<&Held> = if held.iter().all(|h| h[0].components.len() >= k) {
+        held.iter().map(|h| &h[0]).collect()
+    } else {
+        let si = sweep_index?;
+        sweep.iter().map(|d| d.get(si).and_then(|ks| ks.get(k - 1)).and_then(Option::as_ref)).collect::<Option<_>>()?
+    };
     let cols = panel.cols;
     let m = panel.market.as_deref();
     let mut regressors: Vec<Vec<f64>> = vec![Vec::with_capacity(oos.len()); k];
     for &t in oos {
-        let h = &held[date_of(t)][0];
+        let h = fits[date_of(t)];
         for (c, reg) in regressors.iter_mut().enumerate() {
             let Some(load) = h.components.get(c) else { return None };
             let mut v = 0.0;

@@ -264,9 +264,8 @@ pub fn grs(assets: &[Vec<f64>], factors: &[Vec<f64>]) -> Option<Grs> {
     let mut resid = Vec::with_capacity(n);
     for y in assets {
         let r = ols(y, factors, 0)?;
-        let e: Vec<f64> = (0..t)
-            .map(|i| y[i] - r.coef[0] - (0..l).map(|k| r.coef[k + 1] * factors[k][i]).sum::<f64>())
-            .collect();
+        let e: Vec<f64> =
+            (0..t).map(|i| y[i] - r.coef[0] - (0..l).map(|k| r.coef[k + 1] * factors[k][i]).sum::<f64>()).collect();
         alphas.push(r.coef[0]);
         resid.push(e);
     }

@@ -9,6 +9,13 @@ general-purpose libraries:
 * ridge: scikit-learn Ridge on X = Sigma_F^{1/2}, y = Sigma_F^{-1/2} mu_F
 * elastic net: scikit-learn ElasticNet (tol 1e-12) on the same X, y
 * plug-in: numpy.linalg.solve, and numpy.linalg.lstsq when Sigma is singular
+* Ledoit-Wolf covariance: scikit-learn LedoitWolf
+* Newey-West standard errors: statsmodels OLS cov_type="HAC"
+* robust alpha test: linearmodels TradedFactorModel (cov_type="robust", debiased=False)
+* GRS: the Gibbons-Ross-Shanken formula with scipy's F distribution
+* Sharpe inference (Lo, Jobson-Korkie-Memmel, PSR, DSR): their published formulas
+* backtests: an independent numpy rolling backtest on the monthly U.S. data that
+  linearmodels ships (linearmodels.datasets.french), exported to data/french.csv
 
 Inputs are deterministic panels drawn from numpy's PCG64 generator with fixed
 seeds; they are written as CSV next to this script so the Rust tests read
@@ -26,8 +33,13 @@ import os
 import sys
 
 import numpy as np
+import pandas as pd
 import scipy
 import sklearn
+import statsmodels
+import statsmodels.api as sm
+from scipy import stats as sps
+from sklearn.covariance import LedoitWolf
 from sklearn.linear_model import ElasticNet, Ridge
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -475,6 +487,153 @@ def step_checks():
     return checks
 
 
+# ----------------------------------------------------------------------------
+# Real data and evaluation checks
+# ----------------------------------------------------------------------------
+
+FRENCH_INDUSTRIES = ["NoDur", "Durbl", "Manuf", "Enrgy", "Chems", "BusEq", "Telcm", "Utils", "Shops", "Hlth",
+                     "Money", "Other"]
+FRENCH_PORTFOLIOS = ["S1V1", "S1V3", "S1V5", "S3V1", "S3V3", "S3V5", "S5V1", "S5V3", "S5V5",
+                     "S1M1", "S1M3", "S1M5", "S3M1", "S3M3", "S3M5", "S5M1", "S5M3", "S5M5"]
+
+
+def french_csv_text():
+    """linearmodels.datasets.french as a Keelson window: the market excess return,
+    the long-short factors SMB, HML and Mom, and industry and size/value/momentum
+    portfolio returns in excess of the risk-free rate."""
+    from linearmodels.datasets import french
+    d = french.load()
+    cols = ["SMB", "HML", "Mom"] + FRENCH_INDUSTRIES + FRENCH_PORTFOLIOS
+    lines = ["period,MKT," + ",".join(cols)]
+    for _, row in d.iterrows():
+        date = pd.Timestamp(row["dates"])
+        vals = [row["MktRF"], row["SMB"], row["HML"], row["Mom"]]
+        vals += [row[c] - row["RF"] for c in FRENCH_INDUSTRIES + FRENCH_PORTFOLIOS]
+        lines.append("%04d-%02d," % (date.year, date.month) + ",".join(repr(float(v)) for v in vals))
+    return "\n".join(lines) + "\n"
+
+
+def backtest(R, m, s, window, step):
+    """Rolling refits on [t - window, t), weights held over [t, t + step)."""
+    T = R.shape[0]
+    out = []
+    for t0 in range(window, T, step):
+        f = fit(R[t0 - window:t0], m[t0 - window:t0] if m is not None else None, s)
+        w, wm = f["weights"], f["market_weight"]
+        for t in range(t0, min(t0 + step, T)):
+            out.append(float(w @ R[t] + (wm * m[t] if m is not None else 0.0)))
+    return out
+
+
+BACKTESTS = [
+    ("french_fixed", {"components": 3, "kappa": 1.0}, 120, 1),
+    ("french_auto", {}, 120, 3),
+]
+
+
+def sharpe_se_nw(x, m):
+    """Lo (2002) delta-method SE of mu/sigma with a Bartlett long-run covariance."""
+    T = len(x)
+    mu = x.mean()
+    s2 = ((x - mu) ** 2).mean()
+    g = np.column_stack([x - mu, (x - mu) ** 2 - s2])
+    omega = g.T @ g / T
+    for j in range(1, m + 1):
+        G = g[j:].T @ g[:-j] / T
+        omega += (1 - j / (m + 1)) * (G + G.T)
+    grad = np.array([1 / math.sqrt(s2), -mu / (2 * s2 ** 1.5)])
+    return math.sqrt(grad @ omega @ grad / T)
+
+
+def jkm(a, b):
+    """Jobson & Korkie (1981) with Memmel (2003): z and two-sided p."""
+    T = len(a)
+    sa, sb = a.mean() / a.std(ddof=1), b.mean() / b.std(ddof=1)
+    rho = np.corrcoef(a, b)[0, 1]
+    theta = (2 - 2 * rho + 0.5 * (sa ** 2 + sb ** 2 - 2 * sa * sb * rho ** 2)) / T
+    z = (sa - sb) / math.sqrt(theta)
+    return z, 2 * sps.norm.sf(abs(z))
+
+
+def psr(sr, sr_star, T, skew, kurt):
+    """Bailey & Lopez de Prado (2012), non-excess kurtosis."""
+    return sps.norm.cdf((sr - sr_star) * math.sqrt(T - 1) / math.sqrt(1 - skew * sr + (kurt - 1) / 4 * sr ** 2))
+
+
+def dsr(sr, T, skew, kurt, var_trials, n):
+    """Bailey & Lopez de Prado (2014)."""
+    g = 0.5772156649015329
+    sr_star = math.sqrt(var_trials) * ((1 - g) * sps.norm.ppf(1 - 1 / n) + g * sps.norm.ppf(1 - 1 / (n * math.e)))
+    return psr(sr, sr_star, T, skew, kurt)
+
+
+def grs(assets, factors):
+    """Gibbons, Ross & Shanken (1989) with Sigma and Omega divided by T."""
+    T, N = assets.shape
+    L = factors.shape[1]
+    X = np.column_stack([np.ones(T), factors])
+    B = np.linalg.lstsq(X, assets, rcond=None)[0]
+    E = assets - X @ B
+    alpha = B[0]
+    Sigma = E.T @ E / T
+    fbar = factors.mean(0)
+    Fc = factors - fbar
+    Omega = Fc.T @ Fc / T
+    stat = (T - N - L) / N * (alpha @ np.linalg.solve(Sigma, alpha)) / (1 + fbar @ np.linalg.solve(Omega, fbar))
+    return stat, sps.f.sf(stat, N, T - N - L)
+
+
+def evaluation_checks(R, m, names):
+    """Inference formulas and library estimators on the French data."""
+    from linearmodels.asset_pricing import TradedFactorModel
+    col = {n: R[:, i] for i, n in enumerate(names)}
+    T = R.shape[0]
+    lag = int(math.floor(4 * (T / 100) ** (2 / 9)))
+    y = col["SMB"]
+    X = np.column_stack([m, col["HML"]])
+    ols = sm.OLS(y, sm.add_constant(X))
+    hac = ols.fit(cov_type="HAC", cov_kwds={"maxlags": lag})
+    lm = TradedFactorModel(pd.DataFrame(y[:, None], columns=["SMB"]),
+                           pd.DataFrame(X, columns=["MKT", "HML"])).fit(cov_type="robust", debiased=False)
+    hml = col["HML"]
+    sr = hml.mean() / hml.std(ddof=1)
+    skew = sps.skew(hml)
+    kurt = sps.kurtosis(hml, fisher=False)
+    inds = np.column_stack([col[n] for n in FRENCH_INDUSTRIES])
+    ind_srs = inds.mean(0) / inds.std(0, ddof=1)
+    z, p = jkm(hml, col["SMB"])
+    g_stat, g_p = grs(inds, np.column_stack([m, col["SMB"], col["HML"]]))
+    Xc = inds - inds.mean(0)
+    lw = LedoitWolf().fit(inds)
+    return dict(
+        lag=lag,
+        nw_coef=hac.params, nw_se=hac.bse,
+        robust_se=lm.std_errors.values[0], robust_alpha=float(lm.alphas.values[0]),
+        lm_j=float(lm.j_statistic.stat),
+        sharpe_hml=sr, sharpe_se_iid=math.sqrt((1 + sr ** 2 / 2) / T), sharpe_se_nw=sharpe_se_nw(hml, lag),
+        skew_hml=skew, kurt_hml=kurt,
+        psr_0=psr(sr, 0.0, T, skew, kurt), psr_01=psr(sr, 0.1, T, skew, kurt),
+        dsr=dsr(sr, T, skew, kurt, float(np.var(ind_srs, ddof=1)), len(ind_srs)),
+        jkm_z=z, jkm_p=p,
+        grs=g_stat, grs_p=g_p,
+        lw_shrinkage=float(lw.shrinkage_), lw_cov=lw.covariance_,
+        cer_hml=12 * (hml.mean() - 3 / 2 * hml.var(ddof=1)),
+    )
+
+
+def real_data():
+    R, m = load_panel("french")
+    with open(os.path.join(DATA, "french.csv")) as f:
+        names = f.readline().strip().split(",")[2:]
+    out = dict(backtests=[], evaluation=jsonable(evaluation_checks(R, m, names)))
+    for name, overrides, window, step in BACKTESTS:
+        s = dict(DEFAULTS)
+        s.update(overrides)
+        out["backtests"].append(dict(name=name, settings=overrides, window=window, step=step,
+                                     returns=backtest(R, m, s, window, step)))
+    return out
+
+
 def compute_all():
     cases = []
     for panel, name, overrides in CASES:
@@ -487,9 +646,11 @@ def compute_all():
         cases.append(dict(panel=panel, name=name, settings=overrides, expected=jsonable(out)))
     return dict(
         generator="tests/reference/make_reference.py",
-        versions=dict(numpy=np.__version__, scipy=scipy.__version__, sklearn=sklearn.__version__),
+        versions=dict(numpy=np.__version__, scipy=scipy.__version__, sklearn=sklearn.__version__,
+                      statsmodels=statsmodels.__version__),
         cases=cases,
         steps=jsonable(step_checks()),
+        real_data=jsonable(real_data()),
     )
 
 
@@ -532,7 +693,11 @@ def main():
     names = {}
     for key, (R, m) in panels.items():
         names[key] = ["f%02d" % (j + 1) for j in range(R.shape[1])]
+    french_path = os.path.join(DATA, "french.csv")
     if args.check:
+        if french_csv_text() != open(french_path).read():
+            print("drift: data/french.csv differs from linearmodels.datasets.french", file=sys.stderr)
+            return 1
         for key, (R, m) in panels.items():
             tmp = os.path.join(DATA, key + ".csv.check")
             write_csv(tmp, R, m, names[key])
@@ -552,6 +717,8 @@ def main():
         return 0
     for key, (R, m) in panels.items():
         write_csv(os.path.join(DATA, key + ".csv"), R, m, names[key])
+    with open(french_path, "w") as f:
+        f.write(french_csv_text())
     result = compute_all()
     with open(os.path.join(HERE, "expected.json"), "w") as f:
         json.dump(result, f, indent=1, allow_nan=False)
