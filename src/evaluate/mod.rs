@@ -669,7 +669,7 @@ fn pricing_test(
     for &t in oos {
         let h = fits[date_of(t)];
         for (c, reg) in regressors.iter_mut().enumerate() {
-            let Some(load) = h.components.get(c) else { return None };
+            let load = h.components.get(c)?;
             let mut v = 0.0;
             for j in 0..cols {
                 if load[j] != 0.0 {
