@@ -350,6 +350,124 @@ pub fn settings_to_proto_only(s: &Settings, keys: &[&str]) -> proto::Settings {
     out
 }
 
+/// Splits a backtest request into its history, its settings, the backtest
+/// specification (unset options take their defaults) and its id.
+pub fn backtest_request_into_parts(
+    req: proto::RunBacktestRequest,
+) -> (ReturnPanel, proto::Settings, crate::evaluate::BacktestSpec, String) {
+    let proto::RunBacktestRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        settings,
+        window,
+        expanding,
+        step,
+        cost_bps,
+        cer_risk_aversion,
+        sweep_max_k,
+        benchmark_sets,
+        skip_baselines,
+        request_id,
+    } = req;
+    let (panel, settings, request_id) = request_into_parts(proto::ComputeWeightsRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        previous_weights: Vec::new(),
+        settings,
+        request_id,
+    });
+    let d = crate::evaluate::BacktestSpec::default();
+    let spec = crate::evaluate::BacktestSpec {
+        window: if window == 0 { d.window } else { window as usize },
+        expanding,
+        step: if step == 0 { d.step } else { step as usize },
+        cost_bps: cost_bps.unwrap_or(d.cost_bps),
+        cer_risk_aversion: cer_risk_aversion.unwrap_or(d.cer_risk_aversion),
+        sweep_max_k: sweep_max_k.map_or(d.sweep_max_k, |k| k as usize),
+        benchmark_sets: benchmark_sets.into_iter().map(|b| b.names).collect(),
+        nw_lag: None,
+        baselines: !skip_baselines,
+        threads: 1,
+    };
+    (panel, settings, spec, request_id)
+}
+
+/// The proto message of a backtest result.
+pub fn backtest_result_to_proto(r: &crate::evaluate::BacktestResult, request_id: &str) -> proto::BacktestResult {
+    proto::BacktestResult {
+        periods: r.periods.clone(),
+        refits: r.refits as u32,
+        strategies: r
+            .strategies
+            .iter()
+            .map(|s| proto::StrategyPerformance {
+                name: s.name.clone(),
+                returns: s.returns.clone(),
+                net_returns: s.net_returns.clone(),
+                mean: s.metrics.mean,
+                volatility: s.metrics.volatility,
+                sharpe: s.metrics.sharpe,
+                sharpe_se_iid: s.metrics.sharpe_se_iid,
+                sharpe_se_newey_west: s.metrics.sharpe_se_nw,
+                cer: s.metrics.cer,
+                max_drawdown: s.metrics.max_drawdown,
+                net_sharpe: s.net_metrics.sharpe,
+                average_turnover: s.average_turnover,
+                chosen_components: s.chosen_k.iter().map(|&k| k as u32).collect(),
+                chosen_kappa: s.chosen_kappa.clone(),
+                top_sharpe_share: s.top_sharpe_share.clone(),
+            })
+            .collect(),
+        sweep: r
+            .sweep
+            .iter()
+            .map(|p| proto::SweepPoint {
+                scaling: scaling_to_proto(p.scaling).into(),
+                components: p.k as u32,
+                sharpe: p.sharpe,
+            })
+            .collect(),
+        comparisons: r
+            .comparisons
+            .iter()
+            .map(|c| proto::SharpeComparison {
+                against: c.against.clone(),
+                difference: c.test.difference,
+                z: c.test.z,
+                p_value: c.test.p_value,
+            })
+            .collect(),
+        probabilistic_sharpe: r.psr,
+        deflated_sharpe: r.dsr,
+        trials: r.trials as u32,
+        alphas: r
+            .alphas
+            .iter()
+            .map(|a| proto::AlphaTest {
+                strategy: a.strategy.clone(),
+                benchmarks: a.benchmarks.clone(),
+                alpha: a.alpha,
+                t_newey_west: a.t_nw,
+                t_robust: a.t_robust,
+                r_squared: a.r2,
+            })
+            .collect(),
+        pricing: r.pricing.as_ref().map(|p| proto::PricingTest {
+            components: p.k as u32,
+            assets: p.assets as u32,
+            significant: p.significant as u32,
+            grs: p.grs.as_ref().map_or(f64::NAN, |g| g.statistic),
+            grs_p_value: p.grs.as_ref().map_or(f64::NAN, |g| g.p_value),
+        }),
+        newey_west_lag: r.nw_lag as u32,
+        latest_fit: r.last_fit.as_ref().map(|ws| weight_set_to_proto(ws, request_id)),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -365,3 +365,78 @@ fn shutdown_drains_an_in_flight_request() {
         assert!(Channel::from_shared(format!("http://{addr}")).unwrap().connect().await.is_err(), "still accepting");
     });
 }
+
+fn backtest_request(panel: &ReturnPanel) -> proto::RunBacktestRequest {
+    let r = request(panel, proto::Settings::default(), "bt-1");
+    proto::RunBacktestRequest {
+        factor_names: r.factor_names,
+        period_labels: r.period_labels,
+        returns: r.returns,
+        market_returns: r.market_returns,
+        settings: r.settings,
+        window: 60,
+        step: 3,
+        sweep_max_k: Some(3),
+        request_id: "bt-1".into(),
+        ..Default::default()
+    }
+}
+
+#[test]
+fn run_backtest_streams_progress_then_the_library_result() {
+    use proto::run_backtest_response::Event;
+    run(async {
+        let server = Server::start(|_| {}).await;
+        let mut c = server.client().await;
+        let panel = synthetic_panel(12, 120, 10);
+        let mut stream = c.run_backtest(backtest_request(&panel)).await.unwrap().into_inner();
+        let mut progress = Vec::new();
+        let mut result = None;
+        while let Some(msg) = stream.message().await.unwrap() {
+            assert_eq!(msg.request_id, "bt-1");
+            match msg.event.unwrap() {
+                Event::Progress(p) => progress.push((p.fits_done, p.fits_total)),
+                Event::Result(r) => result = Some(r),
+            }
+        }
+        assert!(!progress.is_empty(), "progress messages");
+        assert!(progress.windows(2).all(|w| w[0].0 <= w[1].0));
+        let result = result.expect("a result message");
+        let spec = keelson::evaluate::BacktestSpec { window: 60, step: 3, sweep_max_k: 3, ..Default::default() };
+        let local = keelson::evaluate::run(
+            &panel,
+            &Settings::default().check().unwrap(),
+            &spec,
+            &|_| {},
+            &estimator::Stop::never(),
+        )
+        .unwrap();
+        let want = keelson::convert::backtest_result_to_proto(&local, "bt-1");
+        assert_eq!(result.encode_to_vec(), want.encode_to_vec(), "gRPC backtest equals the library's");
+        assert_eq!(result.strategies[0].name, "configured");
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn run_backtest_rejects_bad_specifications_and_stops_when_cancelled() {
+    run(async {
+        let server = Server::start(|c| c.server.workers = 1).await;
+        let mut c = server.client().await;
+        let mut bad = backtest_request(&synthetic_panel(13, 50, 5));
+        bad.window = 60;
+        let mut s = c.run_backtest(bad).await.unwrap().into_inner();
+        let e = s.message().await.unwrap_err();
+        assert_eq!(e.code(), Code::InvalidArgument, "{}", e.message());
+        assert_eq!(e.get_details_bad_request().unwrap().field_violations[0].field, "window");
+
+        let mut long = backtest_request(&synthetic_panel(14, 700, 60));
+        long.step = 1;
+        let stream = c.run_backtest(long).await.unwrap().into_inner();
+        assert!(eventually(2000, || server.api.computing() == 1).await, "backtest never started");
+        drop(stream);
+        assert!(eventually(1000, || server.api.computing() == 0).await, "backtest still running after cancel");
+        assert_eq!(server.api.stopped_early(), 1);
+        server.shutdown().await;
+    });
+}

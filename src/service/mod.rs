@@ -59,6 +59,23 @@ impl Drop for CancelOnDrop {
     }
 }
 
+/// The response stream of `RunBacktest`: progress messages, then the result.
+pub struct BacktestStream {
+    rx: tokio::sync::mpsc::Receiver<Result<proto::RunBacktestResponse, Status>>,
+    _cancel: CancelOnDrop,
+}
+
+impl tonic::codegen::tokio_stream::Stream for BacktestStream {
+    type Item = Result<proto::RunBacktestResponse, Status>;
+
+    fn poll_next(
+        mut self: std::pin::Pin<&mut Self>,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<Option<Self::Item>> {
+        self.rx.poll_recv(cx)
+    }
+}
+
 /// Parses the `grpc-timeout` header (gRPC over HTTP/2 spec: 1–8 digits and a
 /// unit H, M, S, m, u or n).
 fn grpc_timeout(meta: &tonic::metadata::MetadataMap) -> Option<Duration> {
@@ -110,6 +127,122 @@ impl WeightsApi {
         self.shared.config.raw.server.max_in_flight - self.shared.admission.available_permits()
     }
 
+    /// Rejects windows above the configured size limits.
+    fn check_size(&self, returns: Option<&proto::Matrix>, names: usize) -> Result<(), ServiceError> {
+        let limits = &self.shared.config.raw.server;
+        let (rows, cols, values) =
+            returns.map_or((0, 0, 0), |m| (m.rows as u64, m.cols as u64, m.values.len() as u64));
+        if cols > limits.max_factors as u64 || names > limits.max_factors {
+            return Err(ServiceError::TooLarge {
+                field: "returns.cols",
+                value: cols.max(names as u64),
+                limit: limits.max_factors as u64,
+                what: "factors",
+            });
+        }
+        let cells = rows.saturating_mul(cols).max(values);
+        if cells > limits.max_cells as u64 {
+            return Err(ServiceError::TooLarge {
+                field: "returns",
+                value: cells,
+                limit: limits.max_cells as u64,
+                what: "periods × factors",
+            });
+        }
+        Ok(())
+    }
+
+    /// Admits a backtest and starts it on the blocking pool; the returned
+    /// stream yields progress and then the result. Dropping the stream (the
+    /// client cancelled) stops the computation.
+    async fn start_backtest(
+        &self,
+        req: proto::RunBacktestRequest,
+        client_timeout: Option<Duration>,
+    ) -> Result<BacktestStream, ServiceError> {
+        let sh = self.shared.clone();
+        let limits = sh.config.raw.server.clone();
+        if sh.draining.load(Ordering::SeqCst) {
+            return Err(ServiceError::Draining);
+        }
+        let admitted = sh
+            .admission
+            .clone()
+            .try_acquire_owned()
+            .map_err(|_| ServiceError::Overloaded { limit: limits.max_in_flight })?;
+        self.check_size(req.returns.as_ref(), req.factor_names.len())?;
+        let (panel, proto_settings, spec, request_id) = crate::convert::backtest_request_into_parts(req);
+        let settings = settings_from_proto(&proto_settings, &sh.config.defaults)
+            .and_then(|s| s.check())
+            .map_err(EstimateError::from)?;
+        let server_limit = Duration::from_millis(limits.request_timeout_ms);
+        let deadline = Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit));
+        let flag = Arc::new(AtomicBool::new(false));
+        let stop = Stop::never().with_deadline(deadline).with_flag(flag.clone());
+        let (tx, rx) = tokio::sync::mpsc::channel::<Result<proto::RunBacktestResponse, Status>>(32);
+        let id = request_id.clone();
+        tokio::spawn(async move {
+            let _admitted = admitted;
+            let started = Instant::now();
+            let tokio_deadline = tokio::time::Instant::from_std(deadline);
+            let worker = match tokio::time::timeout_at(tokio_deadline, sh.workers.clone().acquire_owned()).await {
+                Ok(Ok(w)) => w,
+                _ => {
+                    let e = ServiceError::Estimate(EstimateError::DeadlineExceeded);
+                    let _ = tx.send(Err(to_status(&e, None))).await;
+                    return;
+                }
+            };
+            let progress_tx = tx.clone();
+            let progress_id = id.clone();
+            let shared = sh.clone();
+            let job = tokio::task::spawn_blocking(move || {
+                let last = std::sync::atomic::AtomicU64::new(u64::MAX);
+                let progress = |p: crate::evaluate::Progress| {
+                    let pct = (100 * p.done / p.total.max(1)) as u64;
+                    if last.swap(pct, Ordering::Relaxed) != pct {
+                        let msg = proto::RunBacktestResponse {
+                            event: Some(proto::run_backtest_response::Event::Progress(proto::BacktestProgress {
+                                fits_done: p.done as u64,
+                                fits_total: p.total as u64,
+                            })),
+                            request_id: progress_id.clone(),
+                        };
+                        // Progress is best effort: a slow reader loses updates, never stalls the work.
+                        let _ = progress_tx.try_send(Ok(msg));
+                    }
+                };
+                let r = crate::evaluate::run(&panel, &settings, &spec, &progress, &stop);
+                if matches!(r, Err(crate::evaluate::BacktestError::Stopped(_))) {
+                    shared.stopped_early.fetch_add(1, Ordering::Relaxed);
+                }
+                drop(worker);
+                r
+            });
+            let outcome = match job.await {
+                Ok(Ok(r)) => Ok(proto::RunBacktestResponse {
+                    event: Some(proto::run_backtest_response::Event::Result(
+                        crate::convert::backtest_result_to_proto(&r, &id),
+                    )),
+                    request_id: id.clone(),
+                }),
+                Ok(Err(e)) => Err(to_status(&ServiceError::Backtest(e), None)),
+                Err(join) => Err(to_status(&ServiceError::Internal(format!("worker failed: {join}")), None)),
+            };
+            let code = outcome.as_ref().map_or_else(|s| s.code(), |_| tonic::Code::Ok);
+            tracing::info!(
+                target: "keelson::request",
+                method = "RunBacktest",
+                request_id = %id,
+                code = ?code,
+                latency_ms = started.elapsed().as_secs_f64() * 1e3,
+                "backtest finished"
+            );
+            let _ = tx.send(outcome).await;
+        });
+        Ok(BacktestStream { rx, _cancel: CancelOnDrop(flag) })
+    }
+
     async fn compute(
         &self,
         req: proto::ComputeWeightsRequest,
@@ -125,25 +258,7 @@ impl WeightsApi {
             .clone()
             .try_acquire_owned()
             .map_err(|_| ServiceError::Overloaded { limit: limits.max_in_flight })?;
-        let (rows, cols, values) =
-            req.returns.as_ref().map_or((0, 0, 0), |m| (m.rows as u64, m.cols as u64, m.values.len() as u64));
-        if cols > limits.max_factors as u64 || req.factor_names.len() > limits.max_factors {
-            return Err(ServiceError::TooLarge {
-                field: "returns.cols",
-                value: cols.max(req.factor_names.len() as u64),
-                limit: limits.max_factors as u64,
-                what: "factors",
-            });
-        }
-        let cells = rows.saturating_mul(cols).max(values);
-        if cells > limits.max_cells as u64 {
-            return Err(ServiceError::TooLarge {
-                field: "returns",
-                value: cells,
-                limit: limits.max_cells as u64,
-                what: "periods × factors",
-            });
-        }
+        self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, request_id) = request_into_parts(req);
         let settings = settings_from_proto(&proto_settings, &sh.config.defaults)
             .and_then(|s| s.check())
@@ -237,6 +352,18 @@ impl WeightsService for WeightsApi {
                 Err(status)
             }
         }
+    }
+
+    type RunBacktestStream = BacktestStream;
+
+    async fn run_backtest(
+        &self,
+        request: Request<proto::RunBacktestRequest>,
+    ) -> Result<Response<Self::RunBacktestStream>, Status> {
+        let timeout = grpc_timeout(request.metadata());
+        let req = request.into_inner();
+        let cols = req.returns.as_ref().map(|m| m.cols as usize);
+        self.start_backtest(req, timeout).await.map(Response::new).map_err(|e| to_status(&e, cols))
     }
 
     async fn get_service_info(

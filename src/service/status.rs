@@ -20,6 +20,9 @@ pub enum ServiceError {
     /// The estimator rejected the window or failed on it.
     #[error(transparent)]
     Estimate(#[from] EstimateError),
+    /// A backtest failed.
+    #[error(transparent)]
+    Backtest(#[from] crate::evaluate::BacktestError),
     /// The request exceeds a configured size limit.
     #[error("field `{field}`: {value} exceeds the server limit of {limit} ({what})")]
     TooLarge {
@@ -175,6 +178,28 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
             EstimateError::Numerical { .. } => with_info(Code::Internal, "NUMERICAL_FAILURE", e.to_string()),
             EstimateError::Cancelled => with_info(Code::Cancelled, "CANCELLED", e.to_string()),
             EstimateError::DeadlineExceeded => with_info(Code::DeadlineExceeded, "DEADLINE_EXCEEDED", e.to_string()),
+        },
+        ServiceError::Backtest(b) => match b {
+            crate::evaluate::BacktestError::Spec { field, .. } => invalid(
+                "INVALID_BACKTEST",
+                (*field).to_owned(),
+                b.to_string(),
+                HashMap::from([("field".to_owned(), (*field).to_owned())]),
+            ),
+            crate::evaluate::BacktestError::Window { source, strategy, period } => {
+                let mut st = to_status(&ServiceError::Estimate(source.clone()), cols);
+                st = Status::with_error_details(
+                    st.code(),
+                    b.to_string(),
+                    ErrorDetails::with_error_info(
+                        "BACKTEST_WINDOW_FAILED",
+                        ERROR_DOMAIN,
+                        HashMap::from([("strategy".to_owned(), strategy.clone()), ("period".to_owned(), period.clone())]),
+                    ),
+                );
+                st
+            }
+            crate::evaluate::BacktestError::Stopped(e) => to_status(&ServiceError::Estimate(e.clone()), cols),
         },
         ServiceError::TooLarge { field, .. } => Status::with_error_details(Code::InvalidArgument, err.to_string(), {
             let mut d = ErrorDetails::with_bad_request(vec![FieldViolation::new(*field, err.to_string())]);
