@@ -7,8 +7,10 @@
 
 use crate::estimator::ReturnPanel;
 
-/// Months in the demo window.
+/// Months in the demo's estimation window.
 pub const DEMO_PERIODS: usize = 120;
+/// Months of invented history behind the demo's backtest.
+pub const DEMO_HISTORY: usize = 300;
 
 const NAMES: [&str; 36] = [
     "harrow_value",
@@ -117,7 +119,14 @@ pub fn synthetic_panel(seed: u64, periods: usize, factors: usize) -> ReturnPanel
     let factor_names = (0..factors)
         .map(|i| NAMES.get(i).map_or_else(|| format!("factor_{:04}", i + 1), |n| (*n).to_owned()))
         .collect();
-    let period_labels = (0..periods).map(|t| format!("{:04}-{:02}", 2016 + t / 12, t % 12 + 1)).collect();
+    // Monthly labels ending in 2025-12.
+    let last = 2025 * 12 + 11;
+    let period_labels = (0..periods)
+        .map(|t| {
+            let m = (last + t) as i64 - (periods as i64 - 1);
+            format!("{:04}-{:02}", m.div_euclid(12), m.rem_euclid(12) + 1)
+        })
+        .collect();
     ReturnPanel {
         factor_names,
         period_labels,
@@ -129,9 +138,24 @@ pub fn synthetic_panel(seed: u64, periods: usize, factors: usize) -> ReturnPanel
     }
 }
 
-/// The demo window: the Tessaly Exchange, 120 months, 36 factors.
+/// The demo's whole invented history: 300 months of the Tessaly Exchange.
+pub fn demo_history() -> ReturnPanel {
+    synthetic_panel(0x7E55_A1E5, DEMO_HISTORY, NAMES.len())
+}
+
+/// The demo window: the latest 120 months of [`demo_history`], 36 factors.
 pub fn demo_panel() -> ReturnPanel {
-    synthetic_panel(0x7E55_A1E5, DEMO_PERIODS, NAMES.len())
+    let h = demo_history();
+    let start = DEMO_HISTORY - DEMO_PERIODS;
+    ReturnPanel {
+        factor_names: h.factor_names,
+        period_labels: h.period_labels[start..].to_vec(),
+        returns: h.returns[start * h.cols..].to_vec(),
+        rows: DEMO_PERIODS,
+        cols: h.cols,
+        market: h.market.map(|m| m[start..].to_vec()),
+        previous_weights: Vec::new(),
+    }
 }
 
 /// Writes a panel as CSV in the format `keelson fit` reads (market column `MKT`).

@@ -130,6 +130,12 @@ struct DemoArgs {
     /// Also write the demo window as CSV to this file.
     #[arg(long, value_name = "FILE.csv")]
     write_csv: Option<PathBuf>,
+    /// Folder for the report of the demo's closing backtest.
+    #[arg(long, value_name = "DIR", default_value = "keelson-demo-report")]
+    report_dir: PathBuf,
+    /// Skip the closing backtest.
+    #[arg(long)]
+    skip_backtest: bool,
 }
 
 #[derive(clap::Args, Debug)]
@@ -430,8 +436,11 @@ async fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
             text.push_str(&cli::output::table(&resp, "Tessaly Exchange (invented)", &panel.period_labels));
             text.push('\n');
             text.push_str(&cli::demo_explanation(&resp, plain.as_ref()));
-            text.push_str(cli::CAUTION);
             print(&text)?;
+            if !a.skip_backtest {
+                demo_backtest(&checked, &a.report_dir)?;
+            }
+            print(cli::CAUTION)?;
         }
     }
     Ok(ExitCode::SUCCESS)
@@ -515,6 +524,29 @@ fn backtest_footer(r: &keelson::evaluate::BacktestResult) -> String {
         r.psr, r.trials, r.dsr
     ));
     out
+}
+
+/// The demo's closing backtest: the whole invented history, 120-month
+/// rolling windows refitted every 3 months, every baseline beside the method.
+fn demo_backtest(settings: &estimator::ValidSettings, dir: &std::path::Path) -> anyhow::Result<()> {
+    let history = demo::demo_history();
+    let spec = keelson::evaluate::BacktestSpec {
+        step: 3,
+        threads: std::thread::available_parallelism().map_or(1, |n| n.get()),
+        ..keelson::evaluate::BacktestSpec::default()
+    };
+    print(&format!(
+        "Backtest: {} months of invented history, {}-month rolling windows refitted every {} months, \
+         the method beside its baselines (net of {} bp costs)…\n",
+        history.rows, spec.window, spec.step, spec.cost_bps
+    ))?;
+    let r = keelson::evaluate::run(&history, settings, &spec, &|_| {}, &estimator::Stop::never())
+        .context("backtesting the demo history")?;
+    keelson::report::write(dir, &r, "Keelson demo backtest: the Tessaly Exchange (invented data)")?;
+    let mut text = keelson::report::summary_table(&r);
+    text.push_str(&backtest_footer(&r));
+    text.push_str(&format!("Report: {}\n\n", dir.join("report.html").display()));
+    print(&text)
 }
 
 fn print(text: &str) -> anyhow::Result<()> {

@@ -142,7 +142,7 @@ fn previous_weights_give_turnover() {
 fn bad_data_gives_clear_errors_with_exit_code_1() {
     let good = window(60, 5);
     // Header: period,MKT,f1..f5 → factor columns 3..7; data rows start at line 2.
-    let ragged = good.replacen("\n2016-03,", "\n2016-03,0.1,", 1);
+    let ragged = edit_cell(&good, 4, 1, &format!("{},0.1", good.lines().nth(3).unwrap().split(',').next().unwrap()));
     assert_data_error("ragged.csv", &ragged, &[], &["line 4", "fields"]);
     assert_data_error("text.csv", &edit_cell(&good, 5, 4, "abc"), &[], &["line 5, column 4", "not a number"]);
     assert_data_error("pinf.csv", &edit_cell(&good, 6, 3, "inf"), &[], &["line 6, column 3", "not a finite number"]);
@@ -215,10 +215,14 @@ fn bad_usage_exits_2() {
 #[test]
 fn demo_runs_and_matches_fit_on_its_own_csv() {
     let csv = std::env::temp_dir().join(format!("keelson-demo-{}.csv", std::process::id()));
-    let o = keelson(&["demo", "--write-csv", csv.to_str().unwrap()]);
+    let report = std::env::temp_dir().join(format!("keelson-demo-report-{}", std::process::id()));
+    let o = keelson(&["demo", "--write-csv", csv.to_str().unwrap(), "--report-dir", report.to_str().unwrap()]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let out = stdout(&o);
     assert!(out.contains("Tessaly Exchange") && out.contains("Caution:") && out.contains("past performance"));
+    assert!(out.contains("deflated Sharpe ratio") && out.contains("KNS ridge, all factors"), "{out}");
+    let html = std::fs::read_to_string(report.join("report.html")).unwrap();
+    assert!(html.contains("<svg") && html.contains("Cumulative out-of-sample return"));
     let demo: Value = serde_json::from_slice(&keelson(&["demo", "--format", "json"]).stdout).unwrap();
     let fit: Value = serde_json::from_slice(
         &keelson(&["fit", "--returns", csv.to_str().unwrap(), "--market", "MKT", "--format", "json"]).stdout,

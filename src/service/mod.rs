@@ -130,8 +130,7 @@ impl WeightsApi {
     /// Rejects windows above the configured size limits.
     fn check_size(&self, returns: Option<&proto::Matrix>, names: usize) -> Result<(), ServiceError> {
         let limits = &self.shared.config.raw.server;
-        let (rows, cols, values) =
-            returns.map_or((0, 0, 0), |m| (m.rows as u64, m.cols as u64, m.values.len() as u64));
+        let (rows, cols, values) = returns.map_or((0, 0, 0), |m| (m.rows as u64, m.cols as u64, m.values.len() as u64));
         if cols > limits.max_factors as u64 || names > limits.max_factors {
             return Err(ServiceError::TooLarge {
                 field: "returns.cols",
@@ -221,9 +220,9 @@ impl WeightsApi {
             });
             let outcome = match job.await {
                 Ok(Ok(r)) => Ok(proto::RunBacktestResponse {
-                    event: Some(proto::run_backtest_response::Event::Result(
-                        crate::convert::backtest_result_to_proto(&r, &id),
-                    )),
+                    event: Some(proto::run_backtest_response::Event::Result(crate::convert::backtest_result_to_proto(
+                        &r, &id,
+                    ))),
                     request_id: id.clone(),
                 }),
                 Ok(Err(e)) => Err(to_status(&ServiceError::Backtest(e), None)),

@@ -194,7 +194,10 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
                     ErrorDetails::with_error_info(
                         "BACKTEST_WINDOW_FAILED",
                         ERROR_DOMAIN,
-                        HashMap::from([("strategy".to_owned(), strategy.clone()), ("period".to_owned(), period.clone())]),
+                        HashMap::from([
+                            ("strategy".to_owned(), strategy.clone()),
+                            ("period".to_owned(), period.clone()),
+                        ]),
                     ),
                 );
                 st
