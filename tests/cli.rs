@@ -231,3 +231,69 @@ fn demo_runs_and_matches_fit_on_its_own_csv() {
     assert_eq!(demo["weights"], fit["weights"]);
     assert_eq!(demo["fingerprint"], fit["fingerprint"]);
 }
+
+#[test]
+fn backtest_writes_report_summary_and_returns() {
+    let csv = file("bt.csv", &window(100, 8));
+    let out = std::env::temp_dir().join(format!("keelson-bt-{}", std::process::id()));
+    let o = keelson(&[
+        "backtest",
+        "--returns",
+        csv.to_str().unwrap(),
+        "--market",
+        "MKT",
+        "--window",
+        "60",
+        "--step",
+        "2",
+        "--benchmarks",
+        "MKT,harrow_value",
+        "--sweep-max-k",
+        "3",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    assert!(stdout(&o).contains("deflated Sharpe ratio"));
+    let returns = std::fs::read_to_string(out.join("returns.csv")).unwrap();
+    let mut lines = returns.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(&header[..2], &["period", "configured"]);
+    assert!(header.contains(&"market") && header.contains(&"equal weight"));
+    assert_eq!(lines.count(), 40, "one row per out-of-sample period");
+    let summary: Value = serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
+    assert_eq!(summary["refits"], 20);
+    assert_eq!(summary["sweep"].as_array().unwrap().len(), 15);
+    let sets: Vec<&Value> = summary["alphas"].as_array().unwrap().iter().map(|a| &a["benchmarks"]).collect();
+    assert!(sets.iter().any(|b| b.as_array().unwrap().len() == 2), "the user's benchmark set is tested");
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert_eq!(html.matches("<svg").count(), 7, "seven charts");
+    assert!(html.contains("Caution"));
+
+    let bad = keelson(&[
+        "backtest",
+        "--returns",
+        csv.to_str().unwrap(),
+        "--market",
+        "MKT",
+        "--window",
+        "200",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(bad.status.code(), Some(1));
+    assert!(stderr(&bad).contains("`window`"), "{}", stderr(&bad));
+    let bad = keelson(&[
+        "backtest",
+        "--returns",
+        csv.to_str().unwrap(),
+        "--window",
+        "60",
+        "--benchmarks",
+        "nope",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(bad.status.code(), Some(1));
+    assert!(stderr(&bad).contains("nope"));
+}

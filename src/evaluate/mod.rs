@@ -637,7 +637,8 @@ pub fn run(
 /// Time-series regressions of every factor observed throughout the
 /// out-of-sample span on the out-of-sample returns of the configured
 /// scaling's first K components (and the market, when there is one); K is
-/// the one the configured method chose most often.
+/// the one the configured method chose most often, at most the sweep's
+/// largest K when the configured fits do not all have that many.
 #[allow(clippy::too_many_arguments)]
 fn pricing_test(
     panel: &ReturnPanel,
@@ -656,11 +657,16 @@ fn pricing_test(
     for h in held {
         *counts.entry(h[0].k).or_insert(0usize) += 1;
     }
-    let k = counts.iter().max_by_key(|(k, c)| (**c, std::cmp::Reverse(**k))).map(|(k, _)| *k)?;
+    let mut k = counts.iter().max_by_key(|(k, c)| (**c, std::cmp::Reverse(**k))).map(|(k, _)| *k)?;
     let fits: Vec<&Held> = if held.iter().all(|h| h[0].components.len() >= k) {
         held.iter().map(|h| &h[0]).collect()
     } else {
+        // The sweep holds fixed-K fits up to its largest K.
         let si = sweep_index?;
+        k = k.min(sweep.first().and_then(|d| d.get(si)).map_or(0, Vec::len));
+        if k == 0 {
+            return None;
+        }
         sweep.iter().map(|d| d.get(si).and_then(|ks| ks.get(k - 1)).and_then(Option::as_ref)).collect::<Option<_>>()?
     };
     let cols = panel.cols;
