@@ -127,6 +127,32 @@ impl WeightsApi {
         self.shared.config.raw.server.max_in_flight - self.shared.admission.available_permits()
     }
 
+    /// Admits a request unless the server is draining or at its in-flight
+    /// limit; the permit is held until the request's work ends.
+    fn admit(&self) -> Result<tokio::sync::OwnedSemaphorePermit, ServiceError> {
+        if self.shared.draining.load(Ordering::SeqCst) {
+            return Err(ServiceError::Draining);
+        }
+        self.shared
+            .admission
+            .clone()
+            .try_acquire_owned()
+            .map_err(|_| ServiceError::Overloaded { limit: self.shared.config.raw.server.max_in_flight })
+    }
+
+    /// The request's settings over the server's defaults, validated.
+    fn settings(&self, p: &proto::Settings) -> Result<estimator::ValidSettings, ServiceError> {
+        Ok(settings_from_proto(p, &self.shared.config.defaults).and_then(|s| s.check()).map_err(EstimateError::from)?)
+    }
+
+    /// The earlier of the client's deadline and the server's own limit, and
+    /// whether the client's is the binding one.
+    fn deadline(&self, client_timeout: Option<Duration>) -> (Instant, bool) {
+        let server_limit = Duration::from_millis(self.shared.config.raw.server.request_timeout_ms);
+        let client_binds = client_timeout.is_some_and(|c| c < server_limit);
+        (Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit)), client_binds)
+    }
+
     /// Rejects windows above the configured size limits.
     fn check_size(&self, returns: Option<&proto::Matrix>, names: usize) -> Result<(), ServiceError> {
         let limits = &self.shared.config.raw.server;
@@ -160,22 +186,11 @@ impl WeightsApi {
         client_timeout: Option<Duration>,
     ) -> Result<BacktestStream, ServiceError> {
         let sh = self.shared.clone();
-        let limits = sh.config.raw.server.clone();
-        if sh.draining.load(Ordering::SeqCst) {
-            return Err(ServiceError::Draining);
-        }
-        let admitted = sh
-            .admission
-            .clone()
-            .try_acquire_owned()
-            .map_err(|_| ServiceError::Overloaded { limit: limits.max_in_flight })?;
+        let admitted = self.admit()?;
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, spec, request_id) = crate::convert::backtest_request_into_parts(req);
-        let settings = settings_from_proto(&proto_settings, &sh.config.defaults)
-            .and_then(|s| s.check())
-            .map_err(EstimateError::from)?;
-        let server_limit = Duration::from_millis(limits.request_timeout_ms);
-        let deadline = Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit));
+        let settings = self.settings(&proto_settings)?;
+        let (deadline, _) = self.deadline(client_timeout);
         let flag = Arc::new(AtomicBool::new(false));
         let stop = Stop::never().with_deadline(deadline).with_flag(flag.clone());
         let (tx, rx) = tokio::sync::mpsc::channel::<Result<proto::RunBacktestResponse, Status>>(32);
@@ -249,24 +264,11 @@ impl WeightsApi {
     ) -> Result<proto::ComputeWeightsResponse, ServiceError> {
         let sh = &self.shared;
         let limits = &sh.config.raw.server;
-        if sh.draining.load(Ordering::SeqCst) {
-            return Err(ServiceError::Draining);
-        }
-        let _admitted = sh
-            .admission
-            .clone()
-            .try_acquire_owned()
-            .map_err(|_| ServiceError::Overloaded { limit: limits.max_in_flight })?;
+        let _admitted = self.admit()?;
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, request_id) = request_into_parts(req);
-        let settings = settings_from_proto(&proto_settings, &sh.config.defaults)
-            .and_then(|s| s.check())
-            .map_err(EstimateError::from)?;
-
-        // The earlier of the client's deadline and the server's own limit.
-        let server_limit = Duration::from_millis(limits.request_timeout_ms);
-        let client_binds = client_timeout.is_some_and(|c| c < server_limit);
-        let deadline = Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit));
+        let settings = self.settings(&proto_settings)?;
+        let (deadline, client_binds) = self.deadline(client_timeout);
         let timed_out = || {
             if client_binds {
                 ServiceError::Estimate(EstimateError::DeadlineExceeded)
