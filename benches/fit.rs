@@ -1,0 +1,94 @@
+//! Fit time over a grid of factors × periods, beside one 50×50 symmetric
+//! eigendecomposition (faer, sequential) timed in the same run as the unit
+//! of cost.
+//!
+//! ```sh
+//! cargo bench --bench fit                       # the default subset
+//! KEELSON_BENCH_GRID=full cargo bench --bench fit   # N ∈ {25..2000} × T ∈ {60..600}, every scaling
+//! ```
+//! Panels are seeded and built outside the timed loop.
+
+use std::hint::black_box;
+use std::time::Duration;
+
+use criterion::{BenchmarkId, Criterion, criterion_group, criterion_main};
+use faer::Mat;
+use keelson::demo::synthetic_panel;
+use keelson::estimator::{self, Choice, EigenPath, FitOptions, Scaling, Settings, ValidSettings};
+use keelson::evaluate::{self, BacktestSpec};
+
+fn settings(scaling: Scaling, fixed: bool) -> ValidSettings {
+    let mut s = Settings { scaling, ..Settings::default() };
+    if fixed {
+        s.components = Choice::Fixed(5);
+        s.kappa = Choice::Fixed(1.0);
+    }
+    s.check().expect("valid bench settings")
+}
+
+fn eigensolve(c: &mut Criterion) {
+    // The unit of cost: a 50×50 symmetric eigendecomposition with eigenvectors.
+    let a = Mat::from_fn(50, 50, |i, j| 1.0 / (1.0 + (i as f64 - j as f64).abs()) + if i == j { 2.0 } else { 0.0 });
+    c.bench_function("eigensolve 50x50", |b| {
+        b.iter(|| black_box(a.self_adjoint_eigen(faer::Side::Lower).expect("converges")))
+    });
+}
+
+fn grid() -> (Vec<usize>, Vec<usize>, Vec<Scaling>) {
+    if std::env::var("KEELSON_BENCH_GRID").as_deref() == Ok("full") {
+        (vec![25, 50, 100, 250, 1000, 2000], vec![60, 120, 240, 600], Scaling::ALL.to_vec())
+    } else {
+        (vec![25, 50, 100, 250, 1000, 2000], vec![120, 600], vec![Scaling::Sharpe])
+    }
+}
+
+fn fits(c: &mut Criterion) {
+    let (ns, ts, scalings) = grid();
+    for (kind, fixed) in [("fixed", true), ("cv", false)] {
+        let mut group = c.benchmark_group(format!("fit {kind}"));
+        group.sample_size(10).warm_up_time(Duration::from_millis(300)).measurement_time(Duration::from_secs(2));
+        for &scaling in &scalings {
+            let s = settings(scaling, fixed);
+            for &t in &ts {
+                for &n in &ns {
+                    let panel = synthetic_panel(n as u64 * 7919 + t as u64, t, n);
+                    let id = BenchmarkId::new(format!("{scaling:?}/T{t}"), n);
+                    group.bench_with_input(id, &panel, |b, p| {
+                        b.iter(|| black_box(estimator::fit(p, &s).expect("fits")))
+                    });
+                }
+            }
+        }
+        group.finish();
+    }
+}
+
+fn gram_versus_factors(c: &mut Criterion) {
+    let mut group = c.benchmark_group("fixed fit 2000x120 by eigen path");
+    group.sample_size(10).measurement_time(Duration::from_secs(4));
+    let panel = synthetic_panel(2000, 120, 2000);
+    let s = settings(Scaling::Sharpe, true);
+    for path in [EigenPath::Gram, EigenPath::Factors] {
+        let o = FitOptions { eigen_path: path, ..FitOptions::default() };
+        group.bench_function(format!("{path:?}"), |b| {
+            b.iter(|| black_box(estimator::fit_with(&panel, &s, &o).expect("fits")))
+        });
+    }
+    group.finish();
+}
+
+fn backtest(c: &mut Criterion) {
+    let mut group = c.benchmark_group("backtest 50x540 rolling 120 monthly CV");
+    group.sample_size(10).measurement_time(Duration::from_secs(10));
+    let panel = synthetic_panel(540, 540, 50);
+    let s = ValidSettings::default();
+    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let spec = BacktestSpec { baselines: false, sweep_max_k: 0, threads, ..BacktestSpec::default() };
+    group.bench_function("configured", |b| {
+        b.iter(|| black_box(evaluate::run(&panel, &s, &spec, &|_| {}, &estimator::Stop::never()).expect("runs")))
+    });
+    group.finish();
+}
+
+criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest);
+criterion_main!(benches);

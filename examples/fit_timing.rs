@@ -1,0 +1,59 @@
+//! Times the library's fixed and cross-validated fits on windows read from
+//! CSV files; `benches/compare_numpy.py` runs it beside a numpy
+//! implementation on the same files.
+//!
+//! ```sh
+//! cargo run --release --example fit_timing -- REPS FILE.csv [FILE.csv...]
+//! ```
+//! Prints one JSON object per file: median seconds of the fixed (K = 5,
+//! κ = 1) and the cross-validated (defaults) fit, and of one 50×50
+//! eigendecomposition.
+
+use std::time::Instant;
+
+use faer::Mat;
+use keelson::estimator::{self, Choice, Settings};
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+fn time(reps: usize, mut f: impl FnMut()) -> f64 {
+    f();
+    median(
+        (0..reps)
+            .map(|_| {
+                let s = Instant::now();
+                f();
+                s.elapsed().as_secs_f64()
+            })
+            .collect(),
+    )
+}
+
+fn main() -> anyhow::Result<()> {
+    let mut args = std::env::args().skip(1);
+    let reps: usize = args.next().unwrap_or_else(|| "21".into()).parse()?;
+    let a = Mat::from_fn(50, 50, |i, j| 1.0 / (1.0 + (i as f64 - j as f64).abs()) + if i == j { 2.0 } else { 0.0 });
+    let eig = time(reps.max(51), || {
+        std::hint::black_box(a.self_adjoint_eigen(faer::Side::Lower).expect("converges"));
+    });
+    let fixed = Settings { components: Choice::Fixed(5), kappa: Choice::Fixed(1.0), ..Settings::default() }.check()?;
+    let cv = Settings::default().check()?;
+    for path in args {
+        let text = std::fs::read_to_string(&path)?;
+        let panel = keelson::panel_csv::parse_returns(&text, &path, Some("MKT"))?.panel;
+        let tf = time(reps, || {
+            std::hint::black_box(estimator::fit(&panel, &fixed).expect("fits"));
+        });
+        let tc = time(reps, || {
+            std::hint::black_box(estimator::fit(&panel, &cv).expect("fits"));
+        });
+        println!(
+            "{{\"file\":{path:?},\"factors\":{},\"periods\":{},\"fixed_s\":{tf:e},\"cv_s\":{tc:e},\"eigensolve_s\":{eig:e}}}",
+            panel.cols, panel.rows
+        );
+    }
+    Ok(())
+}
