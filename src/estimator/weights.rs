@@ -258,6 +258,8 @@ pub(crate) fn assemble(
     let turnover = turnover(panel, &factors, &mut warnings)?;
 
     let covariance_condition_number = match singular_values {
+        // With T ≤ N the sample covariance is singular: no decomposition needed.
+        _ if t <= n => f64::INFINITY,
         Some(s) => condition_from_singular(&s, t, n),
         None => {
             let a = 1.0 / (t as f64 - 1.0).sqrt();
