@@ -440,3 +440,29 @@ fn run_backtest_rejects_bad_specifications_and_stops_when_cancelled() {
         server.shutdown().await;
     });
 }
+
+#[test]
+fn run_backtest_honours_the_server_time_limit() {
+    run(async {
+        let server = Server::start(|c| {
+            c.server.workers = 1;
+            c.server.backtest_timeout_ms = 200;
+        })
+        .await;
+        let mut c = server.client().await;
+        let mut long = backtest_request(&synthetic_panel(15, 700, 60));
+        long.step = 1;
+        let mut stream = c.run_backtest(long).await.unwrap().into_inner();
+        let e = loop {
+            match stream.message().await {
+                Ok(Some(_)) => continue,
+                Ok(None) => panic!("the backtest finished within 200 ms"),
+                Err(e) => break e,
+            }
+        };
+        assert_eq!(e.code(), Code::DeadlineExceeded, "{}", e.message());
+        assert!(eventually(1000, || server.api.computing() == 0).await);
+        assert_eq!(server.api.stopped_early(), 1);
+        server.shutdown().await;
+    });
+}

@@ -38,8 +38,10 @@ pub struct ServerSection {
     pub max_in_flight: usize,
     /// Requests computed in parallel on the blocking pool; 0 = number of CPUs.
     pub workers: usize,
-    /// Longest a request may run on the server, milliseconds.
+    /// Longest a `ComputeWeights` call may run on the server, milliseconds.
     pub request_timeout_ms: u64,
+    /// Longest a `RunBacktest` call may run on the server, milliseconds.
+    pub backtest_timeout_ms: u64,
     /// How long a shutdown waits for in-flight requests, milliseconds.
     pub drain_timeout_ms: u64,
     /// Serve gRPC server reflection (v1 and v1alpha).
@@ -56,6 +58,7 @@ impl Default for ServerSection {
             max_in_flight: 64,
             workers: 0,
             request_timeout_ms: 30_000,
+            backtest_timeout_ms: 600_000,
             drain_timeout_ms: 25_000,
             reflection: true,
         }
@@ -168,6 +171,7 @@ impl ServerConfig {
         positive("server.max_factors", s.max_factors as u64)?;
         positive("server.max_in_flight", s.max_in_flight as u64)?;
         positive("server.request_timeout_ms", s.request_timeout_ms)?;
+        positive("server.backtest_timeout_ms", s.backtest_timeout_ms)?;
         if s.max_message_bytes > u32::MAX as usize {
             return Err(ConfigError::Invalid { key: "server.max_message_bytes", reason: "must be below 4 GiB".into() });
         }

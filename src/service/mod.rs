@@ -145,10 +145,10 @@ impl WeightsApi {
         Ok(settings_from_proto(p, &self.shared.config.defaults).and_then(|s| s.check()).map_err(EstimateError::from)?)
     }
 
-    /// The earlier of the client's deadline and the server's own limit, and
-    /// whether the client's is the binding one.
-    fn deadline(&self, client_timeout: Option<Duration>) -> (Instant, bool) {
-        let server_limit = Duration::from_millis(self.shared.config.raw.server.request_timeout_ms);
+    /// The earlier of the client's deadline and the server's own limit
+    /// (`limit_ms`), and whether the client's is the binding one.
+    fn deadline(&self, client_timeout: Option<Duration>, limit_ms: u64) -> (Instant, bool) {
+        let server_limit = Duration::from_millis(limit_ms);
         let client_binds = client_timeout.is_some_and(|c| c < server_limit);
         (Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit)), client_binds)
     }
@@ -190,7 +190,7 @@ impl WeightsApi {
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, spec, request_id) = crate::convert::backtest_request_into_parts(req);
         let settings = self.settings(&proto_settings)?;
-        let (deadline, _) = self.deadline(client_timeout);
+        let (deadline, _) = self.deadline(client_timeout, self.shared.config.raw.server.backtest_timeout_ms);
         let flag = Arc::new(AtomicBool::new(false));
         let stop = Stop::never().with_deadline(deadline).with_flag(flag.clone());
         let (tx, rx) = tokio::sync::mpsc::channel::<Result<proto::RunBacktestResponse, Status>>(32);
@@ -268,7 +268,7 @@ impl WeightsApi {
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, request_id) = request_into_parts(req);
         let settings = self.settings(&proto_settings)?;
-        let (deadline, client_binds) = self.deadline(client_timeout);
+        let (deadline, client_binds) = self.deadline(client_timeout, limits.request_timeout_ms);
         let timed_out = || {
             if client_binds {
                 ServiceError::Estimate(EstimateError::DeadlineExceeded)
@@ -384,6 +384,7 @@ impl WeightsService for WeightsApi {
                 max_in_flight: s.max_in_flight as u32,
                 workers: c.workers as u32,
                 request_timeout_ms: s.request_timeout_ms,
+                backtest_timeout_ms: s.backtest_timeout_ms,
             }),
         }))
     }
