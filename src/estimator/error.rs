@@ -86,6 +86,11 @@ pub enum InputError {
     /// ±inf, or NaN where NaN is not a missing-value marker.
     #[error("{at}: value {value} is not a finite number")]
     NonFinite { at: Location, value: f64 },
+    /// A value too large to be a decimal return.
+    #[error(
+        "{at}: value {value:e} is not a plausible decimal return (|value| must be at most {limit:e}; 0.01 means 1%)"
+    )]
+    OutOfRange { at: Location, value: f64, limit: f64 },
     /// A missing value where the policy (or the field) does not allow one.
     #[error("{at}: value is missing ({rule})")]
     Missing { at: Location, rule: &'static str },
@@ -129,6 +134,7 @@ impl InputError {
         match self {
             InputError::Shape { at, .. }
             | InputError::NonFinite { at, .. }
+            | InputError::OutOfRange { at, .. }
             | InputError::Missing { at, .. }
             | InputError::AllMissing { at, .. }
             | InputError::DuplicateName { at, .. }

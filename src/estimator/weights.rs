@@ -239,6 +239,25 @@ pub(crate) fn assemble(
             message: format!("{} of {} factors were excluded; see `excluded`", excluded.len(), window.names.len()),
         });
     }
+    // Units: decimal returns have per-period volatilities far inside (1e-6, 1).
+    let mut sds = mom.sd.clone();
+    sds.sort_by(f64::total_cmp);
+    let median_sd = sds[sds.len() / 2];
+    if median_sd > 1.0 {
+        warnings.push(Warning {
+            code: "return-scale",
+            message: format!(
+                "the median factor volatility is {median_sd:.3} per period: returns look like percent, not decimals (0.01 = 1%)"
+            ),
+        });
+    } else if median_sd < 1e-6 {
+        warnings.push(Warning {
+            code: "return-scale",
+            message: format!(
+                "the median factor volatility is {median_sd:.3e} per period: check the units of the returns"
+            ),
+        });
+    }
     if t < 2 * n {
         warnings.push(Warning {
             code: "short-window",

@@ -9,6 +9,10 @@ use super::settings::{Method, MissingPolicy, ValidSettings};
 
 /// Longest factor name accepted, in bytes.
 pub const MAX_NAME_BYTES: usize = 256;
+/// Largest absolute return accepted: returns are decimals (0.01 = 1%), so a
+/// larger value is a unit or data error, and its square would overflow the
+/// moments long before 1e308.
+pub const MAX_ABS_RETURN: f64 = 1e6;
 /// Periods per CV fold below which a window is too short (SPEC §1).
 pub const MIN_PERIODS_PER_FOLD: usize = 8;
 
@@ -150,6 +154,13 @@ impl ReturnWindow {
                         value: v,
                     });
                 }
+                if v.abs() > MAX_ABS_RETURN {
+                    return Err(InputError::OutOfRange {
+                        at: Location::field("market_returns").row(r, label(r)),
+                        value: v,
+                        limit: MAX_ABS_RETURN,
+                    });
+                }
             }
         }
         for (i, &(ref n, w)) in panel.previous_weights.iter().enumerate() {
@@ -195,6 +206,12 @@ impl ReturnWindow {
                     return Err(InputError::NonFinite {
                         at: Location::field("returns").row(r, label(r)).column(c, name(c)),
                         value: v,
+                    });
+                } else if v.abs() > MAX_ABS_RETURN {
+                    return Err(InputError::OutOfRange {
+                        at: Location::field("returns").row(r, label(r)).column(c, name(c)),
+                        value: v,
+                        limit: MAX_ABS_RETURN,
                     });
                 }
             }

@@ -101,6 +101,7 @@ fn input_reason(e: &InputError) -> &'static str {
     match e {
         InputError::Shape { .. } => "SHAPE_MISMATCH",
         InputError::NonFinite { .. } => "NON_FINITE_VALUE",
+        InputError::OutOfRange { .. } => "VALUE_OUT_OF_RANGE",
         InputError::Missing { .. } => "MISSING_VALUE",
         InputError::AllMissing { .. } => "ALL_MISSING",
         InputError::DuplicateName { .. } => "DUPLICATE_FACTOR_NAME",
@@ -140,6 +141,7 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
                             | InputError::NoUsableFactors { .. }
                             | InputError::Shape { .. }
                             | InputError::NonFinite { .. }
+                            | InputError::OutOfRange { .. }
                             | InputError::Missing { .. }
                             | InputError::AllMissing { .. }
                             | InputError::BadPeriodLabel { .. }
