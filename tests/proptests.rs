@@ -1,0 +1,117 @@
+//! Property tests on random windows, settings and wire bytes: the estimator
+//! returns an error or finite weights whose diagnostics agree with each
+//! other, and nothing reachable from a request panics.
+
+use keelson::convert::{request_into_parts, settings_from_proto};
+use keelson::estimator::{self, Normalization, ReturnPanel, Settings};
+use keelson::proto;
+use proptest::prelude::*;
+use prost::Message as _;
+
+/// A pathological value to plant in an otherwise ordinary window.
+fn oddity() -> impl Strategy<Value = f64> {
+    prop_oneof![Just(f64::NAN), Just(f64::INFINITY), Just(0.0), Just(1e308), Just(1e-320), Just(-5e5), Just(3.0)]
+}
+
+fn window() -> impl Strategy<Value = ReturnPanel> {
+    (1usize..140, 1usize..12, any::<bool>(), prop::bool::weighted(0.1)).prop_flat_map(
+        |(rows, cols, market, odd_names)| {
+            (
+                proptest::collection::vec(-0.2f64..0.2, rows * cols),
+                proptest::collection::vec(-0.1f64..0.1, if market { rows } else { 0 }),
+                proptest::collection::vec("[a-c]{0,2}", cols),
+                proptest::option::weighted(0.4, (0..rows * cols, oddity())),
+            )
+                .prop_map(move |(mut returns, m, names, odd)| {
+                    if let Some((i, v)) = odd {
+                        returns[i] = v;
+                    }
+                    ReturnPanel {
+                        // Mostly valid unique names, sometimes empty or repeated ones.
+                        factor_names: if odd_names { names } else { (0..cols).map(|i| format!("f{i}")).collect() },
+                        period_labels: Vec::new(),
+                        returns,
+                        rows,
+                        cols,
+                        market: market.then_some(m),
+                        previous_weights: Vec::new(),
+                    }
+                })
+        },
+    )
+}
+
+fn settings() -> impl Strategy<Value = proto::Settings> {
+    (
+        0i32..6,
+        proptest::option::of(0u32..40),
+        proptest::option::of(prop_oneof![Just(-1.0), Just(f64::NAN), 0.001f64..20.0]),
+        0i32..4,
+        0i32..4,
+        proptest::option::of(1u32..6),
+        proptest::option::of(prop_oneof![Just(0.0), 0.0f64..0.01]),
+        0i32..6,
+    )
+        .prop_map(|(scaling, components, kappa, cv, norm, folds, l1, method)| proto::Settings {
+            scaling,
+            components,
+            kappa,
+            cv_criterion: cv,
+            normalization: norm,
+            folds,
+            l1_penalty: l1,
+            method,
+            min_periods: Some(6),
+            ..Default::default()
+        })
+}
+
+/// The random windows must produce real fits, not only errors.
+#[test]
+fn random_windows_do_produce_fits() {
+    let mut runner = proptest::test_runner::TestRunner::new(ProptestConfig { cases: 200, ..ProptestConfig::default() });
+    let ok = std::sync::atomic::AtomicU64::new(0);
+    runner
+        .run(&(window(), settings()), |(panel, ps)| {
+            if let Ok(s) = settings_from_proto(&ps, &Settings::default()).and_then(|s| s.check())
+                && estimator::fit(&panel, &s).is_ok()
+            {
+                ok.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+            }
+            Ok(())
+        })
+        .unwrap();
+    let ok = ok.into_inner();
+    println!("{ok} of 200 random windows fitted");
+    assert!(ok >= 20, "only {ok} of 200 random windows fitted");
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+
+    #[test]
+    fn fit_errors_or_returns_consistent_finite_weights(panel in window(), ps in settings()) {
+        let Ok(s) = settings_from_proto(&ps, &Settings::default()).and_then(|s| s.check()) else { return Ok(()) };
+        if let Ok(ws) = estimator::fit(&panel, &s) {
+            prop_assert!(ws.factors.iter().all(|f| f.weight.is_finite() && f.risk_contribution.is_finite()));
+            prop_assert!(ws.market_weight.is_finite());
+            let rc: f64 = ws.factors.iter().map(|f| f.risk_contribution).sum();
+            prop_assert!((rc - 1.0).abs() < 1e-8, "risk contributions sum to {}", rc);
+            prop_assert!(ws.factors.iter().filter(|f| f.excluded.is_some()).all(|f| f.weight == 0.0));
+            if s.normalization == Normalization::TargetVolatility {
+                prop_assert!((ws.diagnostics.ex_ante_volatility - s.target_volatility).abs() < 1e-9 * s.target_volatility.max(1.0));
+            }
+        }
+    }
+
+    #[test]
+    fn arbitrary_wire_bytes_never_panic(bytes in proptest::collection::vec(any::<u8>(), 0..400)) {
+        if let Ok(req) = proto::ComputeWeightsRequest::decode(bytes.as_slice()) {
+            let (panel, ps, _) = request_into_parts(req);
+            if panel.returns.len() <= 10_000
+                && let Ok(s) = settings_from_proto(&ps, &Settings::default()).and_then(|s| s.check()) {
+                    let _ = estimator::fit(&panel, &s);
+                }
+        }
+    }
+}
