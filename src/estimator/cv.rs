@@ -162,14 +162,6 @@ impl Fold {
         Ok(Fold { train_periods: train_rows.len(), basis, f_mean, f_cov, pricing })
     }
 
-    /// Held-out annualised Sharpe ratio of F₂[:, :k] b (NaN when its variance is 0).
-    fn sharpe(&self, b: &[f64], annualise: f64) -> f64 {
-        let k = b.len();
-        let mean: f64 = (0..k).map(|j| self.f_mean[j] * b[j]).sum();
-        let var = quad_form(&self.f_cov, b);
-        if var > 0.0 { annualise * mean / var.sqrt() } else { f64::NAN }
-    }
-
     /// Scores of several coefficient vectors (the columns of `b`, K rows) at
     /// once: the held-out Sharpe ratio of F₂b, or the pricing R²
     /// 1 − ‖μ₂ − C₂b‖²/‖μ₂‖² expanded in the precomputed forms (KNS).
@@ -216,19 +208,6 @@ fn scale_in_place(m: &mut Mat<f64>, a: f64) {
             m[(i, j)] *= a;
         }
     }
-}
-
-fn quad_form(m: &Mat<f64>, b: &[f64]) -> f64 {
-    let k = b.len();
-    let mut s = 0.0;
-    for a in 0..k {
-        let mut row = 0.0;
-        for c in 0..k {
-            row += m[(a, c)] * b[c];
-        }
-        s += b[a] * row;
-    }
-    s
 }
 
 /// Scores within this relative distance of the best are ties. Some scores are
@@ -333,7 +312,10 @@ pub(crate) fn cross_validate(
         let mut b = vec![0.0; fold.basis.len()];
         let gamma = kns_gamma(fold.basis.trace_f(k), kappa_p[bc], fold.train_periods);
         path.solve(k, gamma, &mut b);
-        sharpe_sum += fold.sharpe(&b[..k], annualise);
+        let mut sharpe = [f64::NAN];
+        let column = Mat::from_fn(k, 1, |j, _| b[j]);
+        fold.score_batch(CvCriterion::Sharpe, column.as_ref(), annualise, &mut sharpe);
+        sharpe_sum += sharpe[0];
     }
 
     Ok(CrossValidation {
