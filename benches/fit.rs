@@ -17,11 +17,14 @@ use keelson::demo::synthetic_panel;
 use keelson::estimator::{self, Choice, EigenPath, FitOptions, Scaling, Settings, ValidSettings};
 use keelson::evaluate::{self, BacktestSpec};
 
-fn settings(scaling: Scaling, fixed: bool) -> ValidSettings {
+/// The three kinds of fit: `fixed` (K = 5, κ = 1, with the held-out check
+/// on the folds), `bare` (the same without the folds) and `cv` (defaults).
+fn settings(scaling: Scaling, kind: &str) -> ValidSettings {
     let mut s = Settings { scaling, ..Settings::default() };
-    if fixed {
+    if kind != "cv" {
         s.components = Choice::Fixed(5);
         s.kappa = Choice::Fixed(1.0);
+        s.held_out_check = kind == "fixed";
     }
     s.check().expect("valid bench settings")
 }
@@ -44,11 +47,11 @@ fn grid() -> (Vec<usize>, Vec<usize>, Vec<Scaling>) {
 
 fn fits(c: &mut Criterion) {
     let (ns, ts, scalings) = grid();
-    for (kind, fixed) in [("fixed", true), ("cv", false)] {
+    for kind in ["fixed", "bare", "cv"] {
         let mut group = c.benchmark_group(format!("fit {kind}"));
         group.sample_size(10).warm_up_time(Duration::from_millis(300)).measurement_time(Duration::from_secs(2));
         for &scaling in &scalings {
-            let s = settings(scaling, fixed);
+            let s = settings(scaling, kind);
             for &t in &ts {
                 for &n in &ns {
                     let panel = synthetic_panel(n as u64 * 7919 + t as u64, t, n);
@@ -67,7 +70,7 @@ fn gram_versus_factors(c: &mut Criterion) {
     let mut group = c.benchmark_group("fixed fit 2000x120 by eigen path");
     group.sample_size(10).measurement_time(Duration::from_secs(4));
     let panel = synthetic_panel(2000, 120, 2000);
-    let s = settings(Scaling::Sharpe, true);
+    let s = settings(Scaling::Sharpe, "fixed");
     for path in [EigenPath::Gram, EigenPath::Factors] {
         let o = FitOptions { eigen_path: path, ..FitOptions::default() };
         group.bench_function(format!("{path:?}"), |b| {

@@ -51,6 +51,7 @@ async fn main() -> anyhow::Result<()> {
 
     let mut config = ServerConfig::default();
     config.server.address = "127.0.0.1:0".into();
+    config.metrics.address = String::new();
     let config = config.check()?;
     let listener = tokio::net::TcpListener::bind(config.address).await?;
     let addr = listener.local_addr()?;

@@ -6,6 +6,10 @@
 //! cargo run --release --example loadgen -- --serve target/release/keelson --duration 20
 //! # or against a running server at a fixed arrival rate:
 //! cargo run --release --example loadgen -- --addr http://127.0.0.1:50051 --rate 200 --duration 10
+//! # soak: a fixed rate for up to an hour against its own server, sampling the
+//! # server's resident memory every second; fails on any error or on memory
+//! # growth of 10% or more between the end of warm-up (10% of the run) and the end:
+//! cargo run --release --example loadgen -- --serve target/release/keelson --soak --rate 100 --duration 600
 //! ```
 //!
 //! Open loop: request i is due at start + i/rate whatever the server does, and
@@ -32,10 +36,12 @@ struct Args {
     factors: usize,
     periods: usize,
     closed: usize,
+    soak: bool,
 }
 
 fn parse() -> anyhow::Result<Args> {
-    let mut a = Args { addr: None, serve: None, rate: None, duration: 10.0, factors: 50, periods: 120, closed: 0 };
+    let mut a =
+        Args { addr: None, serve: None, rate: None, duration: 10.0, factors: 50, periods: 120, closed: 0, soak: false };
     let mut it = std::env::args().skip(1);
     while let Some(flag) = it.next() {
         let mut val = || it.next().with_context(|| format!("{flag} needs a value"));
@@ -47,11 +53,16 @@ fn parse() -> anyhow::Result<Args> {
             "--factors" => a.factors = val()?.parse()?,
             "--periods" => a.periods = val()?.parse()?,
             "--closed" => a.closed = val()?.parse()?,
+            "--soak" => a.soak = true,
             other => bail!("unknown flag {other}"),
         }
     }
-    if !(a.duration > 0.0 && a.duration <= 600.0) {
-        bail!("--duration must be in (0, 600] seconds");
+    let limit = if a.soak { 3600.0 } else { 600.0 };
+    if !(a.duration > 0.0 && a.duration <= limit) {
+        bail!("--duration must be in (0, {limit}] seconds");
+    }
+    if a.soak && (a.serve.is_none() || a.rate.is_none()) {
+        bail!("--soak needs --serve (to read the server's memory) and --rate");
     }
     Ok(a)
 }
@@ -107,7 +118,10 @@ async fn open_loop(
             r.set_timeout(Duration::from_secs(30));
             let code = match client.compute_weights(r).await {
                 Ok(_) => "OK".to_owned(),
-                Err(s) => format!("{:?}", s.code()),
+                Err(s) => {
+                    eprintln!("error at {:.1} s: {:?}: {}", start.elapsed().as_secs_f64(), s.code(), s.message());
+                    format!("{:?}", s.code())
+                }
             };
             // Latency from the intended send time, not the actual one.
             let us = due.elapsed().as_micros().max(1) as u64;
@@ -182,6 +196,7 @@ async fn main() -> anyhow::Result<()> {
             let c = std::process::Command::new(bin)
                 .args(["serve", "--addr", &format!("127.0.0.1:{port}")])
                 .env("KEELSON__LOG__LEVEL", "warn")
+                .env("KEELSON__METRICS__ADDRESS", "127.0.0.1:0")
                 .spawn()
                 .with_context(|| format!("cannot start {bin}"))?;
             child = Some(c);
@@ -222,8 +237,55 @@ async fn main() -> anyhow::Result<()> {
     if !(rate > 0.0 && rate <= 100_000.0) {
         bail!("--rate must be in (0, 100000]");
     }
+    // Resident memory of the spawned server, once a second, for the soak verdict.
+    let samples: Arc<Mutex<Vec<(f64, u64)>>> = Arc::default();
+    let sampler = pid.map(|pid| {
+        let samples = samples.clone();
+        tokio::spawn(async move {
+            let start = Instant::now();
+            loop {
+                if let Some((_, rss)) = memory_kib(pid) {
+                    samples
+                        .lock()
+                        .unwrap_or_else(std::sync::PoisonError::into_inner)
+                        .push((start.elapsed().as_secs_f64(), rss));
+                }
+                tokio::time::sleep(Duration::from_secs(1)).await;
+            }
+        })
+    });
     let out = open_loop(channel, req, rate, a.duration).await?;
     report("open loop", &out, rate);
+    if let Some(t) = sampler {
+        t.abort();
+    }
+    let mut soak_failed = false;
+    if a.soak {
+        let samples = samples.lock().unwrap_or_else(std::sync::PoisonError::into_inner).clone();
+        let warm = samples.iter().find(|(t, _)| *t >= 0.1 * a.duration).copied();
+        let end = samples.last().copied();
+        let errors: u64 = out.codes.iter().filter(|(c, _)| c.as_str() != "OK").map(|(_, n)| n).sum();
+        if let (Some((tw, rw)), Some((te, re))) = (warm, end) {
+            let growth = (re as f64 - rw as f64) / rw as f64;
+            let peak = samples.iter().map(|s| s.1).max().unwrap_or(re);
+            println!(
+                "soak: resident {:.1} MiB after warm-up (t = {tw:.0} s), {:.1} MiB at the end (t = {te:.0} s), growth {:+.1}%, peak {:.1} MiB; {errors} errors",
+                rw as f64 / 1024.0,
+                re as f64 / 1024.0,
+                100.0 * growth,
+                peak as f64 / 1024.0
+            );
+            let trace: Vec<String> = (0..=10)
+                .filter_map(|i| samples.iter().find(|(t, _)| *t >= a.duration * f64::from(i) / 10.0))
+                .map(|(t, r)| format!("{t:.0}s {:.1}", *r as f64 / 1024.0))
+                .collect();
+            println!("soak: resident MiB over the run: {}", trace.join(", "));
+            soak_failed = growth >= 0.10 || errors > 0;
+        } else {
+            println!("soak: too few memory samples");
+            soak_failed = true;
+        }
+    }
     if let (Some(pid), Some(mut c)) = (pid, child) {
         if let (Some((_, rss0)), Some((hwm, rss1))) = (mem0, memory_kib(pid)) {
             println!(
@@ -235,6 +297,9 @@ async fn main() -> anyhow::Result<()> {
         }
         let _ = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status();
         let _ = c.wait();
+    }
+    if soak_failed {
+        bail!("soak failed: errors, or memory growth of 10% or more");
     }
     Ok(())
 }

@@ -74,6 +74,7 @@ pub fn settings_to_proto(s: &Settings) -> proto::Settings {
         missing_policy,
         rp_gamma,
         min_periods,
+        held_out_check,
     } = s.clone();
     proto::Settings {
         scaling: scaling_to_proto(scaling).into(),
@@ -95,6 +96,7 @@ pub fn settings_to_proto(s: &Settings) -> proto::Settings {
         rp_gamma: Some(rp_gamma),
         min_periods: Some(min_periods),
         method: method_to_proto(method).into(),
+        held_out_check: Some(held_out_check),
     }
 }
 
@@ -127,6 +129,7 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
         rp_gamma,
         min_periods,
         method,
+        held_out_check,
     } = *p;
     let mut s = base.clone();
     s.scaling = match proto::Scaling::try_from(scaling).map_err(|_| unknown_enum("scaling", scaling))? {
@@ -181,6 +184,7 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
     s.demarket = demarket.unwrap_or(base.demarket);
     s.rp_gamma = rp_gamma.unwrap_or(base.rp_gamma);
     s.min_periods = min_periods.unwrap_or(base.min_periods);
+    s.held_out_check = held_out_check.unwrap_or(base.held_out_check);
     Ok(s)
 }
 
@@ -344,6 +348,7 @@ pub fn settings_to_proto_only(s: &Settings, keys: &[&str]) -> proto::Settings {
             "missing_policy" => out.missing_policy = full.missing_policy,
             "rp_gamma" => out.rp_gamma = full.rp_gamma,
             "min_periods" => out.min_periods = full.min_periods,
+            "held_out_check" => out.held_out_check = full.held_out_check,
             _ => {}
         }
     }

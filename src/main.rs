@@ -148,11 +148,34 @@ struct ServeArgs {
     addr: Option<String>,
 }
 
+/// How a client reaches the server: address, TLS material, token.
+#[derive(clap::Args, Debug)]
+struct ConnectArgs {
+    /// Server address, e.g. http://127.0.0.1:50051 (https:// with TLS). Default: the port of
+    /// KEELSON__SERVER__ADDRESS on 127.0.0.1 when that is set, else 127.0.0.1:50051.
+    #[arg(long, value_name = "URL")]
+    addr: Option<String>,
+    /// PEM CA bundle that signed the server certificate; turns TLS on.
+    #[arg(long, value_name = "FILE.pem")]
+    ca_cert: Option<PathBuf>,
+    /// PEM client certificate, for servers that require mutual TLS.
+    #[arg(long, value_name = "FILE.pem", requires = "client_key")]
+    client_cert: Option<PathBuf>,
+    /// PEM private key of the client certificate.
+    #[arg(long, value_name = "FILE.pem", requires = "client_cert")]
+    client_key: Option<PathBuf>,
+    /// Name to verify in the server certificate, when it differs from the address host.
+    #[arg(long, value_name = "NAME")]
+    server_name: Option<String>,
+}
+
 #[derive(clap::Args, Debug)]
 struct CallArgs {
-    /// Server address, e.g. http://127.0.0.1:50051.
-    #[arg(long, value_name = "URL")]
-    addr: String,
+    #[command(flatten)]
+    connect: ConnectArgs,
+    /// File whose first line is the bearer token (the KEELSON_TOKEN environment variable also works).
+    #[arg(long, value_name = "FILE")]
+    token_file: Option<PathBuf>,
     #[command(flatten)]
     window: WindowArgs,
     /// Set one setting in the request, e.g. `--set components=5`; unset ones take the server's defaults.
@@ -171,9 +194,8 @@ struct CallArgs {
 
 #[derive(clap::Args, Debug)]
 struct HealthArgs {
-    /// Server address, e.g. http://127.0.0.1:50051.
-    #[arg(long, value_name = "URL")]
-    addr: String,
+    #[command(flatten)]
+    connect: ConnectArgs,
     /// Health-check name: empty for the whole server, or liveness, readiness, keelson.v1.WeightsService.
     #[arg(long, default_value = "")]
     service: String,
@@ -308,7 +330,7 @@ fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     }
     let config = raw.check()?;
     init_logging(&config.raw.log);
-    tracing::info!(config = %serde_json::to_string(&config.raw).unwrap_or_default(), "effective configuration");
+    tracing::info!(config = %config.redacted_json(), "effective configuration");
     let rt = runtime()?;
     rt.block_on(async move {
         let listener = tokio::net::TcpListener::bind(config.address)
@@ -330,18 +352,81 @@ fn init_logging(log: &service::config::LogSection) {
     };
 }
 
-fn endpoint(addr: &str) -> anyhow::Result<tonic::transport::Endpoint> {
-    let url = if addr.contains("://") { addr.to_owned() } else { format!("http://{addr}") };
-    tonic::transport::Endpoint::from_shared(url).map_err(|e| UsageError(format!("--addr {addr}: {e}")).into())
+impl ConnectArgs {
+    /// `--addr`, or the local port of the server's own configured address (so that a
+    /// container's healthcheck follows `KEELSON__SERVER__ADDRESS`).
+    fn address(&self) -> String {
+        if let Some(a) = &self.addr {
+            return a.clone();
+        }
+        let port = std::env::var("KEELSON__SERVER__ADDRESS")
+            .ok()
+            .and_then(|a| a.parse::<std::net::SocketAddr>().ok())
+            .map_or(50051, |a| a.port());
+        format!("127.0.0.1:{port}")
+    }
 }
 
-async fn client(addr: &str) -> anyhow::Result<WeightsServiceClient<tonic::transport::Channel>> {
-    let channel = endpoint(addr)?
+fn endpoint(c: &ConnectArgs) -> anyhow::Result<tonic::transport::Endpoint> {
+    let addr = &c.address();
+    let tls = c.ca_cert.is_some();
+    let url = if addr.contains("://") {
+        addr.clone()
+    } else if tls {
+        format!("https://{addr}")
+    } else {
+        format!("http://{addr}")
+    };
+    let mut ep = tonic::transport::Endpoint::from_shared(url).map_err(|e| UsageError(format!("--addr {addr}: {e}")))?;
+    if let Some(ca) = &c.ca_cert {
+        let read = |p: &PathBuf| std::fs::read(p).with_context(|| format!("cannot read {}", p.display()));
+        let mut t =
+            tonic::transport::ClientTlsConfig::new().ca_certificate(tonic::transport::Certificate::from_pem(read(ca)?));
+        if let (Some(cert), Some(key)) = (&c.client_cert, &c.client_key) {
+            t = t.identity(tonic::transport::Identity::from_pem(read(cert)?, read(key)?));
+        }
+        if let Some(name) = &c.server_name {
+            t = t.domain_name(name.clone());
+        }
+        ep = ep.tls_config(t).map_err(|e| UsageError(format!("TLS settings: {e}")))?;
+    } else if c.client_cert.is_some() || c.server_name.is_some() {
+        return Err(UsageError("--client-cert and --server-name need --ca-cert (TLS)".into()).into());
+    }
+    Ok(ep)
+}
+
+async fn client(c: &ConnectArgs) -> anyhow::Result<WeightsServiceClient<tonic::transport::Channel>> {
+    let channel = endpoint(c)?
         .connect_timeout(Duration::from_secs(5))
         .connect()
         .await
-        .with_context(|| format!("cannot connect to {addr}"))?;
+        .with_context(|| format!("cannot connect to {}", c.address()))?;
     Ok(WeightsServiceClient::new(channel).max_decoding_message_size(256 << 20).max_encoding_message_size(256 << 20))
+}
+
+/// The bearer token from `--token-file` or `KEELSON_TOKEN`, if any.
+fn bearer_token(
+    file: Option<&PathBuf>,
+) -> anyhow::Result<Option<tonic::metadata::MetadataValue<tonic::metadata::Ascii>>> {
+    let token = match file {
+        Some(p) => Some(
+            std::fs::read_to_string(p)
+                .with_context(|| format!("cannot read {}", p.display()))?
+                .lines()
+                .next()
+                .unwrap_or("")
+                .trim()
+                .to_owned(),
+        ),
+        None => std::env::var("KEELSON_TOKEN").ok().map(|t| t.trim().to_owned()),
+    };
+    match token {
+        None => Ok(None),
+        Some(t) if t.is_empty() => Err(UsageError("the bearer token is empty".into()).into()),
+        Some(t) => Ok(Some(
+            format!("Bearer {t}").parse().map_err(|_| UsageError("the bearer token is not printable ASCII".into()))?,
+        )),
+    }
 }
 
 /// Describes a failed call: code, message and field violations.
@@ -365,7 +450,10 @@ async fn call(a: CallArgs) -> anyhow::Result<ExitCode> {
     let csv = read_window(&a.window)?;
     let mut request = tonic::Request::new(request_from_panel(&csv.panel, settings_msg, &a.request_id));
     request.set_timeout(Duration::from_millis(a.timeout_ms));
-    let mut c = client(&a.addr).await?;
+    if let Some(token) = bearer_token(a.token_file.as_ref())? {
+        request.metadata_mut().insert("authorization", token);
+    }
+    let mut c = client(&a.connect).await?;
     let resp = c.compute_weights(request).await.map_err(|s| anyhow::anyhow!(describe_status(&s)))?.into_inner();
     render(&resp, a.format, &csv.file, &csv.panel.period_labels)?;
     Ok(ExitCode::SUCCESS)
@@ -373,12 +461,12 @@ async fn call(a: CallArgs) -> anyhow::Result<ExitCode> {
 
 async fn healthcheck(a: HealthArgs) -> anyhow::Result<ExitCode> {
     use tonic_health::pb::{HealthCheckRequest, health_check_response::ServingStatus, health_client::HealthClient};
-    let channel = endpoint(&a.addr)?
+    let channel = endpoint(&a.connect)?
         .connect_timeout(Duration::from_millis(a.timeout_ms))
         .timeout(Duration::from_millis(a.timeout_ms))
         .connect()
         .await
-        .with_context(|| format!("cannot connect to {}", a.addr))?;
+        .with_context(|| format!("cannot connect to {}", a.connect.address()))?;
     let resp = HealthClient::new(channel)
         .check(HealthCheckRequest { service: a.service.clone() })
         .await
@@ -400,6 +488,7 @@ async fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
     }
     let mut config = ServerConfig::default();
     config.server.address = "127.0.0.1:0".to_owned();
+    config.metrics.address = String::new();
     config.estimator = checked.settings().clone();
     let config = config.check()?;
     let listener = tokio::net::TcpListener::bind(config.address).await.context("cannot bind a loopback port")?;
@@ -409,7 +498,14 @@ async fn demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
         let _ = stop_rx.await;
     }));
     let run = async {
-        let mut c = client(&format!("http://{addr}")).await?;
+        let local = ConnectArgs {
+            addr: Some(format!("http://{addr}")),
+            ca_cert: None,
+            client_cert: None,
+            client_key: None,
+            server_name: None,
+        };
+        let mut c = client(&local).await?;
         let sent = settings_to_proto_only(&settings, &keys);
         let req = request_from_panel(&panel, sent, "demo");
         let resp = c.compute_weights(req).await.map_err(|s| anyhow::anyhow!(describe_status(&s)))?.into_inner();

@@ -416,6 +416,7 @@ fn corpus_over_grpc() {
     rt.block_on(async {
         let mut c = ServerConfig::default();
         c.server.address = "127.0.0.1:0".into();
+        c.metrics.address = String::new();
         let config = c.check().unwrap();
         let listener = tokio::net::TcpListener::bind(config.address).await.unwrap();
         let addr = listener.local_addr().unwrap();

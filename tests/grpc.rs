@@ -3,69 +3,19 @@
 //! field violations, size limits, deadlines, load shedding and drain.
 
 use std::future::Future;
-use std::net::SocketAddr;
 use std::time::Duration;
 
 use keelson::convert::{request_from_panel, weight_set_to_proto};
 use keelson::demo::synthetic_panel;
 use keelson::estimator::{self, ReturnPanel, Settings};
 use keelson::proto::{self, weights_service_client::WeightsServiceClient};
-use keelson::service::{self, WeightsApi, config::ServerConfig};
 use prost::Message as _;
-use tokio::sync::oneshot;
 use tonic::Code;
 use tonic::transport::Channel;
 use tonic_types::StatusExt as _;
 
-struct Server {
-    addr: SocketAddr,
-    api: WeightsApi,
-    stop: Option<oneshot::Sender<()>>,
-    task: tokio::task::JoinHandle<Result<(), tonic::transport::Error>>,
-}
-
-impl Server {
-    async fn start(edit: impl FnOnce(&mut ServerConfig)) -> Server {
-        let mut c = ServerConfig::default();
-        c.server.address = "127.0.0.1:0".into();
-        edit(&mut c);
-        let config = c.check().unwrap();
-        let listener = tokio::net::TcpListener::bind(config.address).await.unwrap();
-        let addr = listener.local_addr().unwrap();
-        let api = WeightsApi::new(config);
-        let (tx, rx) = oneshot::channel::<()>();
-        let task = tokio::spawn(service::serve_api(api.clone(), listener, async {
-            let _ = rx.await;
-        }));
-        Server { addr, api, stop: Some(tx), task }
-    }
-
-    async fn channel(&self) -> Channel {
-        Channel::from_shared(format!("http://{}", self.addr)).unwrap().connect().await.unwrap()
-    }
-
-    async fn client(&self) -> WeightsServiceClient<Channel> {
-        WeightsServiceClient::new(self.channel().await)
-            .max_encoding_message_size(1 << 30)
-            .max_decoding_message_size(1 << 30)
-    }
-
-    async fn shutdown(mut self) {
-        let _ = self.stop.take().unwrap().send(());
-        self.task.await.unwrap().unwrap();
-    }
-}
-
-/// Polls `cond` every 10 ms, at most `limit` times; true when it held.
-async fn eventually(limit: usize, cond: impl Fn() -> bool) -> bool {
-    for _ in 0..limit {
-        if cond() {
-            return true;
-        }
-        tokio::time::sleep(Duration::from_millis(10)).await;
-    }
-    cond()
-}
+mod common;
+use common::{Server, eventually};
 
 fn request(panel: &ReturnPanel, settings: proto::Settings, id: &str) -> proto::ComputeWeightsRequest {
     request_from_panel(panel, settings, id)
@@ -353,8 +303,9 @@ fn shutdown_drains_an_in_flight_request() {
         let mut h = HealthClient::new(server.channel().await);
         let slow = tokio::spawn(async move { c.compute_weights(slow_request()).await });
         assert!(eventually(2000, || server.api.computing() == 1).await);
-        let Server { addr, api, mut stop, task } = server;
-        let _ = stop.take().unwrap().send(());
+        let mut server = server;
+        let (addr, api) = (server.addr, server.api.clone());
+        server.begin_shutdown();
         // Readiness flips while the in-flight request still runs (or the health call is refused).
         let mut flipped = false;
         for _ in 0..200 {
@@ -371,7 +322,7 @@ fn shutdown_drains_an_in_flight_request() {
         assert!(flipped, "readiness still SERVING during the drain");
         let resp = slow.await.unwrap().expect("the in-flight request completes during the drain");
         assert_eq!(resp.into_inner().request_id, "slow");
-        task.await.unwrap().unwrap();
+        server.finished().await;
         assert_eq!(api.in_flight(), 0);
         assert!(Channel::from_shared(format!("http://{addr}")).unwrap().connect().await.is_err(), "still accepting");
     });

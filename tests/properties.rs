@@ -214,3 +214,47 @@ fn diagnostics_are_internally_consistent() {
         assert!(ws.diagnostics.warnings.iter().any(|w| w.code == "factors-excluded"));
     }
 }
+
+#[test]
+fn skipping_the_held_out_check_changes_only_the_held_out_diagnostics() {
+    // With K and κ fixed, the folds feed only the held-out Sharpe ratio: switching
+    // them off must leave every weight bit-for-bit unchanged, for every scaling.
+    let p = synthetic_panel(12, 120, 30);
+    for scaling in Scaling::ALL {
+        let with = settings(|s| {
+            s.scaling = scaling;
+            s.components = Choice::Fixed(4);
+            s.kappa = Choice::Fixed(0.7);
+        });
+        let without = settings(|s| {
+            s.scaling = scaling;
+            s.components = Choice::Fixed(4);
+            s.kappa = Choice::Fixed(0.7);
+            s.held_out_check = false;
+        });
+        let a = estimator::fit(&p, &with).unwrap();
+        let b = estimator::fit(&p, &without).unwrap();
+        assert_eq!(weights(&a), weights(&b), "{scaling:?}");
+        assert_eq!(a.market_weight, b.market_weight, "{scaling:?}");
+        assert_eq!(a.diagnostics.covariance_condition_number, b.diagnostics.covariance_condition_number);
+        assert!(a.diagnostics.cv_sharpe.is_finite() && a.diagnostics.cv_surface.is_some(), "{scaling:?}");
+        assert!(b.diagnostics.cv_sharpe.is_nan() && b.diagnostics.cv_surface.is_none(), "{scaling:?}");
+        // The same K limit applies either way (K ≤ T_train − 2 and the numerical rank).
+        let too_many = settings(|s| {
+            s.scaling = scaling;
+            s.components = Choice::Fixed(79);
+            s.kappa = Choice::Fixed(0.7);
+            s.held_out_check = false;
+        });
+        assert!(matches!(
+            estimator::fit(&p, &too_many),
+            Err(estimator::EstimateError::TooManyComponents { allowed: 30, .. })
+        ));
+    }
+    // With κ cross-validated the switch has no effect: the folds are needed.
+    let auto = settings(|s| {
+        s.components = Choice::Fixed(4);
+        s.held_out_check = false;
+    });
+    assert!(estimator::fit(&p, &auto).unwrap().diagnostics.cv_sharpe.is_finite());
+}

@@ -61,6 +61,76 @@ pub(crate) fn sym_eigen_desc(a: MatRef<'_, f64>, stage: &'static str) -> Result<
     Ok((sorted_vals, sorted_vecs))
 }
 
+/// Largest and smallest eigenvalue of a symmetric matrix (lower triangle
+/// read): Householder tridiagonalisation, then Sturm-sequence bisection for
+/// the two ends of the spectrum only (Golub & Van Loan, §8.4.1). Both are
+/// accurate to about ε·‖A‖ in absolute terms, like a full eigensolve, at a
+/// fraction of its cost when only the condition number is wanted.
+pub(crate) fn sym_extreme_eigenvalues(a: MatRef<'_, f64>, stage: &'static str) -> Result<(f64, f64), EstimateError> {
+    let n = a.nrows();
+    if n == 0 {
+        return Err(EstimateError::Numerical { stage, detail: "empty matrix".into() });
+    }
+    let mut t = Mat::<f64>::zeros(n, n);
+    t.copy_from_triangular_lower(a);
+    if n > 1 {
+        let bs = faer::linalg::qr::no_pivoting::factor::recommended_block_size::<f64>(n, n);
+        let mut householder = Mat::<f64>::zeros(bs, n - 1);
+        let req = evd::tridiag::tridiag_in_place_scratch::<f64>(n, PAR, Default::default());
+        let mut buf = MemBuffer::new(req);
+        evd::tridiag::tridiag_in_place(
+            t.as_mut(),
+            householder.as_mut(),
+            PAR,
+            MemStack::new(&mut buf),
+            Default::default(),
+        );
+    }
+    let d: Vec<f64> = (0..n).map(|i| t[(i, i)]).collect();
+    let e2: Vec<f64> = (0..n.saturating_sub(1)).map(|i| t[(i + 1, i)] * t[(i + 1, i)]).collect();
+    check_finite(&d, stage)?;
+    check_finite(&e2, stage)?;
+    // Gershgorin bounds on the spectrum.
+    let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
+    for i in 0..n {
+        let r = if i > 0 { e2[i - 1].sqrt() } else { 0.0 } + if i + 1 < n { e2[i].sqrt() } else { 0.0 };
+        lo = lo.min(d[i] - r);
+        hi = hi.max(d[i] + r);
+    }
+    let norm = lo.abs().max(hi.abs());
+    let pivmin = f64::MIN_POSITIVE.max(norm * norm * f64::EPSILON * f64::EPSILON);
+    // Number of eigenvalues strictly below x (the LDLᵀ inertia of T − xI).
+    let below = |x: f64| -> usize {
+        let mut count = 0;
+        let mut q = d[0] - x;
+        for i in 0..n {
+            if i > 0 {
+                q = d[i] - x - e2[i - 1] / q;
+            }
+            if q.abs() < pivmin {
+                q = -pivmin;
+            }
+            if q < 0.0 {
+                count += 1;
+            }
+        }
+        count
+    };
+    // The j-th smallest eigenvalue (0-based) by bisection of [lo, hi].
+    let nth = |j: usize| -> f64 {
+        let (mut a, mut b) = (lo - pivmin, hi + pivmin);
+        for _ in 0..256 {
+            let mid = 0.5 * (a + b);
+            if mid <= a || mid >= b || b - a <= 2.0 * f64::EPSILON * a.abs().max(b.abs()) {
+                break;
+            }
+            if below(mid) > j { b = mid } else { a = mid }
+        }
+        0.5 * (a + b)
+    };
+    Ok((nth(n - 1), nth(0)))
+}
+
 /// Singular values (descending), U and V of a thin SVD.
 pub(crate) type Svd = (Vec<f64>, Mat<f64>, Mat<f64>);
 
@@ -78,20 +148,6 @@ pub(crate) fn thin_svd(a: MatRef<'_, f64>, stage: &'static str) -> Result<Svd, E
     let vals: Vec<f64> = (0..k).map(|i| s[i]).collect();
     check_finite(&vals, stage)?;
     Ok((vals, u, v))
-}
-
-/// Singular values only, descending.
-pub(crate) fn singular_values(a: MatRef<'_, f64>, stage: &'static str) -> Result<Vec<f64>, EstimateError> {
-    let (m, n) = a.shape();
-    let k = m.min(n);
-    let mut s = Diag::<f64>::zeros(k);
-    let req = svd::svd_scratch::<f64>(m, n, ComputeSvdVectors::No, ComputeSvdVectors::No, PAR, Default::default());
-    let mut buf = MemBuffer::new(req);
-    svd::svd(a, s.as_mut(), None, None, PAR, MemStack::new(&mut buf), Default::default())
-        .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
-    let vals: Vec<f64> = (0..k).map(|i| s[i]).collect();
-    check_finite(&vals, stage)?;
-    Ok(vals)
 }
 
 fn check_finite(vals: &[f64], stage: &'static str) -> Result<(), EstimateError> {
@@ -165,6 +221,27 @@ mod tests {
                 assert!((r - a[(i, j)]).abs() < 1e-13);
             }
         }
+    }
+
+    #[test]
+    fn extreme_eigenvalues_match_the_full_eigensolve() {
+        for n in [1usize, 2, 3, 7, 40, 90] {
+            let a = Mat::from_fn(n, n, |i, j| {
+                let (x, y) = (i as f64, j as f64);
+                (0.3 * (x + 1.0) * (y + 2.0)).sin()
+                    + (0.3 * (y + 1.0) * (x + 2.0)).sin()
+                    + if i == j { 0.5 } else { 0.0 }
+            });
+            let (vals, _) = sym_eigen_desc(a.as_ref(), "test").unwrap();
+            let (hi, lo) = sym_extreme_eigenvalues(a.as_ref(), "test").unwrap();
+            let scale = vals[0].abs().max(vals[n - 1].abs());
+            assert!((hi - vals[0]).abs() <= 1e-13 * scale, "n={n} max {hi} vs {}", vals[0]);
+            assert!((lo - vals[n - 1]).abs() <= 1e-13 * scale, "n={n} min {lo} vs {}", vals[n - 1]);
+        }
+        // A double eigenvalue at both ends: diag(3, 3, 1, 1).
+        let a = Mat::from_fn(4, 4, |i, j| if i == j { if i < 2 { 3.0 } else { 1.0 } } else { 0.0 });
+        let (hi, lo) = sym_extreme_eigenvalues(a.as_ref(), "test").unwrap();
+        assert!((hi - 3.0).abs() < 1e-14 && (lo - 1.0).abs() < 1e-14);
     }
 
     #[test]

@@ -29,6 +29,8 @@ pub use stop::Stop;
 pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, Warning, WeightSet};
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
 
+use std::time::{Duration, Instant};
+
 use cv::{Fold, fold_bounds, min_training_periods};
 use weights::ComponentModel;
 
@@ -49,6 +51,36 @@ pub struct FitOptions {
 impl Default for FitOptions {
     fn default() -> Self {
         FitOptions { threads: 1, stop: Stop::never(), eigen_path: EigenPath::Auto }
+    }
+}
+
+/// Wall-clock time spent in each phase of one fit (for operational metrics;
+/// the results never depend on it).
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct PhaseTimes {
+    /// Validating the window (shapes, values, exclusions).
+    pub validate: Duration,
+    /// Demarketing and moments.
+    pub moments: Duration,
+    /// Eigendecompositions of the window and of every fold's training block.
+    pub components: Duration,
+    /// Scoring the (K, κ) grid and solving at the chosen point (components
+    /// methods), or the plug-in solve (baselines).
+    pub solve: Duration,
+    /// Weights, normalisation and diagnostics.
+    pub assemble: Duration,
+}
+
+impl PhaseTimes {
+    /// Phase names and times, in order.
+    pub fn named(&self) -> [(&'static str, Duration); 5] {
+        [
+            ("validate", self.validate),
+            ("moments", self.moments),
+            ("components", self.components),
+            ("solve", self.solve),
+            ("assemble", self.assemble),
+        ]
     }
 }
 
@@ -73,10 +105,41 @@ pub fn fit_with(
     settings: &ValidSettings,
     options: &FitOptions,
 ) -> Result<WeightSet, EstimateError> {
+    fit_with_phases(panel, settings, options).0
+}
+
+/// [`fit_with`], also reporting the time spent in each phase (as far as the
+/// fit got when it fails).
+pub fn fit_with_phases(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    options: &FitOptions,
+) -> (Result<WeightSet, EstimateError>, PhaseTimes) {
+    let mut phases = PhaseTimes::default();
+    let r = fit_phased(panel, settings, options, &mut phases);
+    (r, phases)
+}
+
+/// Adds the time since `*mark` to `slot` and moves the mark.
+fn lap(mark: &mut Instant, slot: &mut Duration) {
+    let now = Instant::now();
+    *slot += now - *mark;
+    *mark = now;
+}
+
+fn fit_phased(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    options: &FitOptions,
+    ph: &mut PhaseTimes,
+) -> Result<WeightSet, EstimateError> {
     options.stop.check()?;
+    let mut mark = Instant::now();
     let window = ReturnWindow::new(panel, settings)?;
+    lap(&mut mark, &mut ph.validate);
     let market = if settings.demarket { window.market.as_deref() } else { None };
     let mom = Moments::compute(window.returns.as_ref(), market);
+    lap(&mut mark, &mut ph.moments);
     let mut warnings = Vec::new();
     match settings.method {
         Method::Components | Method::KnsRidge => {
@@ -86,9 +149,13 @@ pub fn fit_with(
                 (_, None) => KPolicy::Grid,
             };
             let prepared = ComponentFit::prepare(&window, &mom, settings, policy, options)?;
+            lap(&mut mark, &mut ph.components);
             let model = prepared.solve(settings, policy, options, &mut warnings)?;
             let direction = direction_of(&model);
-            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), None, warnings)
+            lap(&mut mark, &mut ph.solve);
+            let r = weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings);
+            lap(&mut mark, &mut ph.assemble);
+            r
         }
         Method::PlugIn | Method::PlugInLedoitWolf => {
             let plug = if settings.method == Method::PlugIn {
@@ -106,12 +173,17 @@ pub fn fit_with(
                     ),
                 });
             }
-            weights::assemble(panel, &window, &mom, settings, &plug.weights, None, None, warnings)
+            lap(&mut mark, &mut ph.solve);
+            let r = weights::assemble(panel, &window, &mom, settings, &plug.weights, None, warnings);
+            lap(&mut mark, &mut ph.assemble);
+            r
         }
         Method::EqualWeight => {
             let n = window.factors_used();
             let direction = vec![1.0 / n as f64; n];
-            weights::assemble(panel, &window, &mom, settings, &direction, None, None, warnings)
+            let r = weights::assemble(panel, &window, &mom, settings, &direction, None, warnings);
+            lap(&mut mark, &mut ph.assemble);
+            r
         }
     }
 }
@@ -141,7 +213,7 @@ pub fn fit_component_sweep(
         let mut warnings = Vec::new();
         let r = prepared.solve(settings, KPolicy::Fixed(k), options, &mut warnings).and_then(|model| {
             let direction = direction_of(&model);
-            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), None, warnings)
+            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings)
         });
         out.push(r);
     }
@@ -200,8 +272,13 @@ impl ComponentFit {
         .clamp(1, n);
         let full = ComponentBasis::compute(mom, scaling, settings.rp_gamma, k_need, options.eigen_path)?;
         let market = if settings.demarket { window.market.as_deref() } else { None };
-        let mut fold_data = Vec::with_capacity(folds);
-        for (i, &bounds) in fold_bounds(t, folds).iter().enumerate() {
+        // With K and κ both fixed the folds only feed the held-out Sharpe diagnostic.
+        let fold_count = match policy {
+            KPolicy::Fixed(_) if settings.kappa.fixed().is_some() && !settings.held_out_check => 0,
+            _ => folds,
+        };
+        let mut fold_data = Vec::with_capacity(fold_count);
+        for (i, &bounds) in fold_bounds(t, folds).iter().take(fold_count).enumerate() {
             options.stop.check()?;
             fold_data.push(Fold::prepare(
                 window.returns.as_ref(),
@@ -214,20 +291,23 @@ impl ComponentFit {
                 options.eigen_path,
             )?);
         }
-        let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(0);
+        let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(full.rank);
         let allowed = data_cap.min(full.rank).min(fold_rank);
         Ok(ComponentFit { full, folds: fold_data, periods: t, factors: n, data_cap, allowed, train_min, scaling })
     }
 
     fn reason(&self) -> String {
-        let fold_rank = self.folds.iter().map(|f| f.basis.rank).min().unwrap_or(0);
-        format!(
-            "{} usable factors, {} periods in the shortest training sample (K ≤ T_train − 2 = {}), numerical rank {} in the window and {fold_rank} in the folds",
+        let head = format!(
+            "{} usable factors, {} periods in the shortest training sample (K ≤ T_train − 2 = {}), numerical rank {} in the window",
             self.factors,
             self.train_min,
             self.train_min.saturating_sub(2),
             self.full.rank
-        )
+        );
+        match self.folds.iter().map(|f| f.basis.rank).min() {
+            Some(fold_rank) => format!("{head} and {fold_rank} in the folds"),
+            None => head,
+        }
     }
 
     fn solve(
@@ -237,7 +317,7 @@ impl ComponentFit {
         options: &FitOptions,
         warnings: &mut Vec<Warning>,
     ) -> Result<ComponentModel, EstimateError> {
-        let (t, n, allowed) = (self.periods, self.factors, self.allowed);
+        let (n, allowed) = (self.factors, self.allowed);
         if let KPolicy::Fixed(k) = policy
             && k > allowed
         {
@@ -269,6 +349,15 @@ impl ComponentFit {
             });
         }
         let diagonal = self.scaling.has_diagonal_components();
+        if self.folds.is_empty() {
+            // K and κ fixed and the held-out check switched off: no cross-validation at all.
+            let (KPolicy::Fixed(k), Some(kappa)) = (policy, settings.kappa.fixed()) else {
+                return Err(EstimateError::DegeneratePortfolio {
+                    reason: "cross-validation needs folds (internal: folds skipped for a non-fixed fit)".into(),
+                });
+            };
+            return self.final_model(settings, k, kappa, None, f64::NAN, f64::NAN, warnings);
+        }
         let kappas = settings.kappa_grid();
         let cv = cv::cross_validate(settings, diagonal, &ks, &kappas, &self.folds, &options.stop, options.threads)?;
         if cv.solver_limit_hit {
@@ -298,25 +387,32 @@ impl ComponentFit {
             });
         }
 
-        let gamma = kns_gamma(self.full.trace_f(cv.k), settings.kappa_per_period(cv.kappa), t);
+        self.final_model(settings, cv.k, cv.kappa, Some(cv.surface), cv.best_score, cv.held_out_sharpe, warnings)
+    }
+
+    /// Solves the shrunk problem on the full window at the chosen (K, κ).
+    #[allow(clippy::too_many_arguments)]
+    fn final_model(
+        &self,
+        settings: &ValidSettings,
+        k: usize,
+        kappa: f64,
+        surface: Option<CvSurface>,
+        best_score: f64,
+        held_out_sharpe: f64,
+        warnings: &mut Vec<Warning>,
+    ) -> Result<ComponentModel, EstimateError> {
+        let diagonal = self.scaling.has_diagonal_components();
+        let gamma = kns_gamma(self.full.trace_f(k), settings.kappa_per_period(kappa), self.periods);
         let mut b = vec![0.0; self.full.len()];
-        let info = ShrinkagePath::new(&self.full, diagonal, settings.l1_penalty).solve(cv.k, gamma, &mut b);
+        let info = ShrinkagePath::new(&self.full, diagonal, settings.l1_penalty).solve(k, gamma, &mut b);
         if !info.converged {
             warnings.push(Warning {
                 code: "solver-not-converged",
                 message: format!("coordinate descent on the final fit reached {} sweeps", shrinkage::MAX_SWEEPS),
             });
         }
-        b.truncate(cv.k);
-        Ok(ComponentModel {
-            basis: self.full.clone(),
-            k: cv.k,
-            kappa: cv.kappa,
-            gamma,
-            b,
-            best_score: cv.best_score,
-            held_out_sharpe: cv.held_out_sharpe,
-            surface: cv.surface,
-        })
+        b.truncate(k);
+        Ok(ComponentModel { basis: self.full.clone(), k, kappa, gamma, b, best_score, held_out_sharpe, surface })
     }
 }

@@ -34,13 +34,27 @@ pub struct ShrinkagePath<'a> {
     diagonal: bool,
     l1: f64,
     scratch: Vec<f64>,
+    /// Diagonal case: the soft-thresholded means and the component variances,
+    /// computed once for the whole grid.
+    shrunk_mu: Vec<f64>,
+    variances: Vec<f64>,
 }
 
 impl<'a> ShrinkagePath<'a> {
     /// A path over `basis` with elastic-net L1 penalty `l1` (0 for ridge).
     pub fn new(basis: &'a ComponentBasis, diagonal: bool, l1: f64) -> Self {
         let k = basis.len();
-        ShrinkagePath { basis, diagonal, l1, scratch: vec![0.0; k * k] }
+        let (shrunk_mu, variances) = if diagonal {
+            let h = l1 / 2.0;
+            (
+                basis.mu_f.iter().map(|&m| soft_threshold(m, h)).collect(),
+                (0..k).map(|j| basis.sigma_f[(j, j)]).collect(),
+            )
+        } else {
+            (Vec::new(), Vec::new())
+        };
+        let scratch = if diagonal { Vec::new() } else { vec![0.0; k * k] };
+        ShrinkagePath { basis, diagonal, l1, scratch, shrunk_mu, variances }
     }
 
     /// Coefficients on the first `k` components with ridge penalty `gamma`,
@@ -54,9 +68,8 @@ impl<'a> ShrinkagePath<'a> {
         let s = &self.basis.sigma_f;
         let b = &mut b[..k];
         if self.diagonal {
-            let h = self.l1 / 2.0;
-            for j in 0..k {
-                b[j] = soft_threshold(mu[j], h) / (s[(j, j)] + gamma);
+            for ((bj, m), v) in b.iter_mut().zip(&self.shrunk_mu[..k]).zip(&self.variances[..k]) {
+                *bj = m / (v + gamma);
             }
             return SolveInfo { converged: true, sweeps: 0 };
         }

@@ -141,10 +141,18 @@ pub(crate) struct ComponentModel {
     pub kappa: f64,
     pub gamma: f64,
     pub b: Vec<f64>,
-    pub surface: CvSurface,
+    pub surface: Option<CvSurface>,
     pub best_score: f64,
     pub held_out_sharpe: f64,
 }
+
+/// Condition number of Σ above which a fit carries the `ill-conditioned-covariance` warning
+/// (the same bound as the GLS pricing criterion's).
+pub const ILL_CONDITIONED: f64 = super::cv::GLS_MAX_CONDITION;
+
+/// Eigenvalues K and K+1 closer than this times the largest make the K-component
+/// subspace numerically arbitrary (`components-not-separated`).
+pub const EIGEN_TIE_RELATIVE: f64 = 1e-8;
 
 /// Builds the weight set from a direction w̃ over the usable demarketed factors.
 #[allow(clippy::too_many_arguments)]
@@ -155,7 +163,6 @@ pub(crate) fn assemble(
     settings: &ValidSettings,
     direction: &[f64],
     model: Option<ComponentModel>,
-    singular_values: Option<Vec<f64>>,
     mut warnings: Vec<Warning>,
 ) -> Result<WeightSet, EstimateError> {
     let n = window.factors_used();
@@ -276,16 +283,45 @@ pub(crate) fn assemble(
 
     let turnover = turnover(panel, &factors, &mut warnings)?;
 
-    let covariance_condition_number = match singular_values {
+    let covariance_condition_number = if t <= n {
         // With T ≤ N the sample covariance is singular: no decomposition needed.
-        _ if t <= n => f64::INFINITY,
-        Some(s) => condition_from_singular(&s, t, n),
-        None => {
-            let a = 1.0 / (t as f64 - 1.0).sqrt();
-            let x = faer::Mat::from_fn(t, n, |i, j| mom.centered[(i, j)] * a);
-            condition_from_singular(&dense::singular_values(x.as_ref(), "covariance condition number")?, t, n)
-        }
+        f64::INFINITY
+    } else {
+        // The extreme eigenvalues of X'X (the ratio is the same for
+        // Σ = X'X/(T−1)), accurate to about ε·cond relative, so a ratio
+        // beyond N/ε is reported as numerically singular.
+        let gram = dense::gram_tn(mom.centered.as_ref());
+        let (hi, lo) = dense::sym_extreme_eigenvalues(gram.as_ref(), "covariance condition number")?;
+        if lo > hi * n as f64 * f64::EPSILON { hi / lo } else { f64::INFINITY }
     };
+
+    if t > n && covariance_condition_number > ILL_CONDITIONED {
+        warnings.push(Warning {
+            code: "ill-conditioned-covariance",
+            message: format!(
+                "the factor covariance has condition number {covariance_condition_number:.2e} (above {ILL_CONDITIONED:.0e}): some factors are nearly collinear, and weights along the weakest directions are unreliable"
+            ),
+        });
+    }
+    if let Some(m) = &model
+        && let (Some(&lk), Some(&lnext), Some(&l1)) = (
+            m.k.checked_sub(1).and_then(|i| m.basis.eigenvalues.get(i)),
+            m.basis.eigenvalues.get(m.k),
+            m.basis.eigenvalues.first(),
+        )
+        && lnext > 0.0
+        && lk - lnext <= EIGEN_TIE_RELATIVE * l1
+    {
+        warnings.push(Warning {
+            code: "components-not-separated",
+            message: format!(
+                "eigenvalues {} and {} are equal to within {EIGEN_TIE_RELATIVE:.0e} of the largest ({lk:.6e} vs {lnext:.6e}): the first {} components are not uniquely determined; choose a K at a gap in the spectrum",
+                m.k,
+                m.k + 1,
+                m.k
+            ),
+        });
+    }
 
     let mut components = Vec::new();
     let mut diag = Diagnostics {
@@ -334,7 +370,7 @@ pub(crate) fn assemble(
         diag.kappa_cross_validated = settings.kappa.fixed().is_none();
         diag.cv_best_score = m.best_score;
         diag.cv_sharpe = m.held_out_sharpe;
-        diag.cv_surface = Some(m.surface);
+        diag.cv_surface = m.surface;
     }
     diag.warnings = warnings;
 
@@ -347,11 +383,6 @@ pub(crate) fn assemble(
         estimator_version: super::ESTIMATOR_VERSION,
         settings: settings.settings().clone(),
     })
-}
-
-fn condition_from_singular(s: &[f64], t: usize, n: usize) -> f64 {
-    let (Some(&hi), Some(&lo)) = (s.first(), s.last()) else { return f64::INFINITY };
-    if t <= n || !(lo > 0.0) { f64::INFINITY } else { (hi / lo).powi(2) }
 }
 
 fn turnover(

@@ -20,6 +20,12 @@ pub struct ServerConfig {
     pub estimator: Settings,
     /// Logging.
     pub log: LogSection,
+    /// TLS and mutual TLS.
+    pub tls: TlsSection,
+    /// Bearer-token authentication of the API methods.
+    pub auth: AuthSection,
+    /// The Prometheus metrics endpoint.
+    pub metrics: MetricsSection,
 }
 
 /// The `[server]` section.
@@ -46,6 +52,14 @@ pub struct ServerSection {
     pub drain_timeout_ms: u64,
     /// Serve gRPC server reflection (v1 and v1alpha).
     pub reflection: bool,
+    /// Connections older than this are closed gracefully (GOAWAY), so that
+    /// clients reconnect and spread over replicas, milliseconds; 0 = never.
+    pub max_connection_age_ms: u64,
+    /// Time calls on an aged connection get to finish, milliseconds.
+    pub max_connection_age_grace_ms: u64,
+    /// A second, plaintext listener serving only `grpc.health.v1.Health`
+    /// (for probes that cannot speak TLS); empty = off.
+    pub health_address: String,
 }
 
 impl Default for ServerSection {
@@ -61,7 +75,74 @@ impl Default for ServerSection {
             backtest_timeout_ms: 600_000,
             drain_timeout_ms: 25_000,
             reflection: true,
+            max_connection_age_ms: 300_000,
+            max_connection_age_grace_ms: 30_000,
+            health_address: String::new(),
         }
+    }
+}
+
+/// The `[tls]` section: TLS when `cert_file` and `key_file` are set, mutual
+/// TLS when `client_ca_file` is set too.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct TlsSection {
+    /// PEM server certificate chain.
+    pub cert_file: String,
+    /// PEM private key of the server certificate.
+    pub key_file: String,
+    /// PEM bundle of the CAs whose client certificates are accepted; set = mTLS required.
+    pub client_ca_file: String,
+}
+
+/// The `[auth]` section: when any token is configured, the API methods need
+/// `authorization: Bearer <token>`; health checks stay open.
+#[derive(Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct AuthSection {
+    /// File with one accepted token per line (`#` comments and blank lines ignored).
+    pub tokens_file: String,
+    /// Accepted tokens, usually from `KEELSON__AUTH__TOKENS` (comma-separated).
+    pub tokens: Vec<String>,
+}
+
+impl std::fmt::Debug for AuthSection {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("AuthSection")
+            .field("tokens_file", &self.tokens_file)
+            .field("tokens", &format_args!("[{} redacted]", self.tokens.len()))
+            .finish()
+    }
+}
+
+/// The `[metrics]` section.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct MetricsSection {
+    /// Listen address of the Prometheus endpoint (`GET /metrics`); empty = off.
+    pub address: String,
+}
+
+impl Default for MetricsSection {
+    fn default() -> Self {
+        MetricsSection { address: "0.0.0.0:9090".to_owned() }
+    }
+}
+
+/// TLS material read and parsed at start-up.
+#[derive(Clone)]
+pub struct TlsMaterial {
+    /// PEM certificate chain.
+    pub cert: Vec<u8>,
+    /// PEM private key.
+    pub key: Vec<u8>,
+    /// PEM client CA bundle, for mutual TLS.
+    pub client_ca: Option<Vec<u8>>,
+}
+
+impl std::fmt::Debug for TlsMaterial {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("TlsMaterial").field("mutual", &self.client_ca.is_some()).finish_non_exhaustive()
     }
 }
 
@@ -122,6 +203,24 @@ pub struct ValidConfig {
     pub defaults: ValidSettings,
     /// Worker count with 0 resolved.
     pub workers: usize,
+    /// TLS material, when TLS is on.
+    pub tls: Option<TlsMaterial>,
+    /// Accepted bearer tokens (SHA-256 digests); empty = authentication off.
+    pub tokens: super::auth::TokenSet,
+    /// Metrics endpoint address, when on.
+    pub metrics_address: Option<SocketAddr>,
+    /// Plaintext health-only address, when on.
+    pub health_address: Option<SocketAddr>,
+}
+
+impl ValidConfig {
+    /// The configuration as JSON with every secret replaced by a count, for the start-up log.
+    pub fn redacted_json(&self) -> String {
+        let mut raw = self.raw.clone();
+        let n = raw.auth.tokens.len();
+        raw.auth.tokens = if n == 0 { Vec::new() } else { vec![format!("<{n} redacted>")] };
+        serde_json::to_string(&raw).unwrap_or_default()
+    }
 }
 
 impl ServerConfig {
@@ -148,6 +247,8 @@ impl ServerConfig {
                 .prefix_separator("__")
                 .separator("__")
                 .try_parsing(true)
+                .list_separator(",")
+                .with_list_parse_key("auth.tokens")
                 .source(Some(vars)),
         );
         builder.build().map_err(load)?.try_deserialize().map_err(load)
@@ -183,7 +284,108 @@ impl ServerConfig {
         tracing_subscriber::EnvFilter::try_new(&self.log.level)
             .map_err(|e| ConfigError::Invalid { key: "log.level", reason: e.to_string() })?;
         let defaults = self.estimator.clone().check()?;
-        Ok(ValidConfig { raw: self, address, defaults, workers })
+        let tls = self.tls.load()?;
+        let tokens = self.auth.load()?;
+        let optional_address = |key: &'static str, v: &str| -> Result<Option<SocketAddr>, ConfigError> {
+            if v.is_empty() {
+                return Ok(None);
+            }
+            let a: SocketAddr = v.parse().map_err(|e| ConfigError::Invalid {
+                key,
+                reason: format!("\"{v}\" is not HOST:PORT with a numeric host ({e})"),
+            })?;
+            if a.port() != 0 && a.port() == address.port() && (a.ip() == address.ip() || a.ip().is_unspecified()) {
+                return Err(ConfigError::Invalid { key, reason: "must differ from server.address".into() });
+            }
+            Ok(Some(a))
+        };
+        let metrics_address = optional_address("metrics.address", &self.metrics.address)?;
+        let health_address = optional_address("server.health_address", &self.server.health_address)?;
+        if let (Some(m), Some(h)) = (metrics_address, health_address)
+            && m.port() != 0
+            && m.port() == h.port()
+        {
+            return Err(ConfigError::Invalid {
+                key: "server.health_address",
+                reason: "must differ from metrics.address".into(),
+            });
+        }
+        Ok(ValidConfig { raw: self, address, defaults, workers, tls, tokens, metrics_address, health_address })
+    }
+}
+
+fn read_file(key: &'static str, path: &str) -> Result<Vec<u8>, ConfigError> {
+    std::fs::read(path).map_err(|e| ConfigError::Invalid { key, reason: format!("cannot read {path}: {e}") })
+}
+
+impl TlsSection {
+    fn load(&self) -> Result<Option<TlsMaterial>, ConfigError> {
+        match (self.cert_file.is_empty(), self.key_file.is_empty()) {
+            (true, true) if self.client_ca_file.is_empty() => return Ok(None),
+            (true, true) => {
+                return Err(ConfigError::Invalid {
+                    key: "tls.client_ca_file",
+                    reason: "mutual TLS needs tls.cert_file and tls.key_file too".into(),
+                });
+            }
+            (true, false) => {
+                return Err(ConfigError::Invalid { key: "tls.cert_file", reason: "needed with tls.key_file".into() });
+            }
+            (false, true) => {
+                return Err(ConfigError::Invalid { key: "tls.key_file", reason: "needed with tls.cert_file".into() });
+            }
+            (false, false) => {}
+        }
+        let cert = read_file("tls.cert_file", &self.cert_file)?;
+        let key = read_file("tls.key_file", &self.key_file)?;
+        let pem_check = |key: &'static str, bytes: &[u8], marker: &str| {
+            if String::from_utf8_lossy(bytes).contains(marker) {
+                Ok(())
+            } else {
+                Err(ConfigError::Invalid { key, reason: format!("no PEM block `{marker}` found") })
+            }
+        };
+        pem_check("tls.cert_file", &cert, "-----BEGIN CERTIFICATE-----")?;
+        pem_check("tls.key_file", &key, "PRIVATE KEY-----")?;
+        let client_ca = if self.client_ca_file.is_empty() {
+            None
+        } else {
+            let ca = read_file("tls.client_ca_file", &self.client_ca_file)?;
+            pem_check("tls.client_ca_file", &ca, "-----BEGIN CERTIFICATE-----")?;
+            Some(ca)
+        };
+        Ok(Some(TlsMaterial { cert, key, client_ca }))
+    }
+}
+
+impl AuthSection {
+    fn load(&self) -> Result<super::auth::TokenSet, ConfigError> {
+        let mut tokens: Vec<String> =
+            self.tokens.iter().map(|t| t.trim().to_owned()).filter(|t| !t.is_empty()).collect();
+        if !self.tokens_file.is_empty() {
+            let bytes = read_file("auth.tokens_file", &self.tokens_file)?;
+            let text = String::from_utf8(bytes)
+                .map_err(|_| ConfigError::Invalid { key: "auth.tokens_file", reason: "not UTF-8 text".into() })?;
+            tokens.extend(
+                text.lines().map(str::trim).filter(|l| !l.is_empty() && !l.starts_with('#')).map(str::to_owned),
+            );
+            if tokens.is_empty() {
+                return Err(ConfigError::Invalid {
+                    key: "auth.tokens_file",
+                    reason: "the file holds no token; remove the key to turn authentication off".into(),
+                });
+            }
+        }
+        for t in &tokens {
+            if t.len() < 16 || !t.bytes().all(|b| b.is_ascii_graphic()) {
+                // Never echo the token itself.
+                return Err(ConfigError::Invalid {
+                    key: "auth.tokens",
+                    reason: "every token needs at least 16 printable ASCII characters without spaces".into(),
+                });
+            }
+        }
+        Ok(super::auth::TokenSet::new(&tokens))
     }
 }
 

@@ -3,7 +3,9 @@
 //! Handlers only validate → convert → compute (on the blocking pool) →
 //! convert; every error becomes a status in [`status::to_status`].
 
+pub mod auth;
 pub mod config;
+pub mod metrics;
 pub mod status;
 
 use std::future::Future;
@@ -26,6 +28,9 @@ use status::{ServiceError, to_status};
 /// The encoded descriptor set of the `keelson.v1` API, for reflection.
 pub const FILE_DESCRIPTOR_SET: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "/keelson_descriptor.bin"));
 
+/// How long a finished backtest waits for its client to take the result.
+const RESULT_HANDOFF: Duration = Duration::from_secs(60);
+
 /// Full gRPC name of the weights service, also its health-check name.
 pub const SERVICE_NAME: &str = "keelson.v1.WeightsService";
 
@@ -40,6 +45,7 @@ struct Shared {
     draining: AtomicBool,
     /// Computations that stopped early on a deadline or a cancellation.
     stopped_early: AtomicU64,
+    metrics: Arc<metrics::Metrics>,
 }
 
 /// The `WeightsService` implementation.
@@ -103,7 +109,19 @@ impl WeightsApi {
         let workers = Arc::new(Semaphore::new(config.workers));
         let draining = AtomicBool::new(false);
         let stopped_early = AtomicU64::new(0);
-        WeightsApi { shared: Arc::new(Shared { config, admission, workers, draining, stopped_early }) }
+        let metrics = Arc::new(metrics::Metrics::default());
+        WeightsApi { shared: Arc::new(Shared { config, admission, workers, draining, stopped_early, metrics }) }
+    }
+
+    /// The Prometheus exposition text of this server's metrics.
+    pub fn metrics_text(&self) -> String {
+        self.shared.metrics.render(metrics::Gauges {
+            in_flight: self.in_flight(),
+            computing: self.computing(),
+            max_in_flight: self.shared.config.raw.server.max_in_flight,
+            stopped_early: self.stopped_early(),
+            draining: self.shared.draining.load(Ordering::Relaxed),
+        })
     }
 
     /// Computations running on the blocking pool right now.
@@ -131,13 +149,13 @@ impl WeightsApi {
     /// limit; the permit is held until the request's work ends.
     fn admit(&self) -> Result<tokio::sync::OwnedSemaphorePermit, ServiceError> {
         if self.shared.draining.load(Ordering::SeqCst) {
+            self.shared.metrics.shed(metrics::ShedReason::Draining);
             return Err(ServiceError::Draining);
         }
-        self.shared
-            .admission
-            .clone()
-            .try_acquire_owned()
-            .map_err(|_| ServiceError::Overloaded { limit: self.shared.config.raw.server.max_in_flight })
+        self.shared.admission.clone().try_acquire_owned().map_err(|_| {
+            self.shared.metrics.shed(metrics::ShedReason::Overloaded);
+            ServiceError::Overloaded { limit: self.shared.config.raw.server.max_in_flight }
+        })
     }
 
     /// The request's settings over the server's defaults, validated.
@@ -196,7 +214,7 @@ impl WeightsApi {
         let (tx, rx) = tokio::sync::mpsc::channel::<Result<proto::RunBacktestResponse, Status>>(32);
         let id = request_id.clone();
         tokio::spawn(async move {
-            let _admitted = admitted;
+            let admitted = admitted;
             let started = Instant::now();
             let tokio_deadline = tokio::time::Instant::from_std(deadline);
             let worker = match tokio::time::timeout_at(tokio_deadline, sh.workers.clone().acquire_owned()).await {
@@ -252,7 +270,18 @@ impl WeightsApi {
                 latency_ms = started.elapsed().as_secs_f64() * 1e3,
                 "backtest finished"
             );
-            let _ = tx.send(outcome).await;
+            // The work is done: a reader that is slow to take the result must not hold an
+            // admission slot, and one that never takes it must not hold the result forever.
+            drop(admitted);
+            if tokio::time::timeout(RESULT_HANDOFF, tx.send(outcome)).await.is_err() {
+                tracing::warn!(
+                    target: "keelson::request",
+                    method = "RunBacktest",
+                    request_id = %id,
+                    "the client did not read the backtest result within {} s; dropped",
+                    RESULT_HANDOFF.as_secs()
+                );
+            }
         });
         Ok(BacktestStream { rx, _cancel: CancelOnDrop(flag) })
     }
@@ -268,6 +297,7 @@ impl WeightsApi {
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, request_id) = request_into_parts(req);
         let settings = self.settings(&proto_settings)?;
+        sh.metrics.problem_size(panel.rows, panel.cols);
         let (deadline, client_binds) = self.deadline(client_timeout, limits.request_timeout_ms);
         let timed_out = || {
             if client_binds {
@@ -286,8 +316,12 @@ impl WeightsApi {
             .map_err(|_| ServiceError::Internal("worker pool closed".into()))?;
         let shared = self.shared.clone();
         let job = tokio::task::spawn_blocking(move || {
-            let result =
-                estimator::fit_with(&panel, &settings, &FitOptions { threads: 1, stop, ..FitOptions::default() });
+            let (result, phases) = estimator::fit_with_phases(
+                &panel,
+                &settings,
+                &FitOptions { threads: 1, stop, ..FitOptions::default() },
+            );
+            shared.metrics.phases(&phases);
             if matches!(result, Err(EstimateError::Cancelled | EstimateError::DeadlineExceeded)) {
                 shared.stopped_early.fetch_add(1, Ordering::Relaxed);
             }
@@ -396,55 +430,133 @@ pub const HEALTH_NAMES: [&str; 2] = ["liveness", "readiness"];
 
 /// Serves on `listener` until `shutdown` resolves, then drains: readiness
 /// goes NOT_SERVING, new requests get UNAVAILABLE, in-flight requests finish,
-/// all within `server.drain_timeout_ms`.
+/// all within `server.drain_timeout_ms`. The metrics endpoint, when
+/// `metrics.address` is set, is bound here and served until the drain ends.
 ///
 /// # Errors
-/// A transport error from tonic.
+/// A transport error from tonic, or the metrics address cannot be bound.
 pub async fn serve(
     config: ValidConfig,
     listener: TcpListener,
     shutdown: impl Future<Output = ()>,
-) -> Result<(), tonic::transport::Error> {
-    serve_api(WeightsApi::new(config), listener, shutdown).await
+) -> Result<(), ServeError> {
+    let bind = |key: &'static str, addr: Option<std::net::SocketAddr>| async move {
+        match addr {
+            Some(a) => TcpListener::bind(a).await.map(Some).map_err(|e| ServeError::Bind(key, a, e)),
+            None => Ok(None),
+        }
+    };
+    let metrics = bind("metrics.address", config.metrics_address).await?;
+    let health = bind("server.health_address", config.health_address).await?;
+    serve_api(WeightsApi::new(config), Listeners { grpc: listener, metrics, health }, shutdown).await
+}
+
+/// The sockets a server answers on.
+#[derive(Debug)]
+pub struct Listeners {
+    /// The gRPC API (with TLS when configured).
+    pub grpc: TcpListener,
+    /// The Prometheus endpoint.
+    pub metrics: Option<TcpListener>,
+    /// Plaintext health checks only.
+    pub health: Option<TcpListener>,
+}
+
+impl Listeners {
+    /// Only the gRPC listener.
+    pub fn grpc_only(grpc: TcpListener) -> Listeners {
+        Listeners { grpc, metrics: None, health: None }
+    }
+}
+
+/// Why the server stopped with an error.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ServeError {
+    /// The gRPC transport failed (including unusable TLS material).
+    #[error("gRPC transport: {0}")]
+    Transport(#[from] tonic::transport::Error),
+    /// A configured address could not be bound.
+    #[error("cannot listen on {0} {1}: {2}")]
+    Bind(&'static str, std::net::SocketAddr, std::io::Error),
 }
 
 /// [`serve`] with a service built by the caller, who keeps a handle to it
-/// (tests read [`WeightsApi::computing`] and [`WeightsApi::stopped_early`]).
+/// (tests read [`WeightsApi::computing`] and [`WeightsApi::stopped_early`]),
+/// and an already-bound metrics listener (or none).
 ///
 /// # Errors
 /// A transport error from tonic.
 pub async fn serve_api(
     api: WeightsApi,
-    listener: TcpListener,
+    listeners: Listeners,
     shutdown: impl Future<Output = ()>,
-) -> Result<(), tonic::transport::Error> {
-    let s = api.shared.config.raw.server.clone();
+) -> Result<(), ServeError> {
+    let Listeners { grpc: listener, metrics: metrics_listener, health: health_listener } = listeners;
+    let config = &api.shared.config;
+    let s = config.raw.server.clone();
     let (reporter, health) = tonic_health::server::health_reporter();
     for name in ["", SERVICE_NAME, HEALTH_NAMES[0], HEALTH_NAMES[1]] {
         reporter.set_service_status(name, ServingStatus::Serving).await;
     }
+    let guard = auth::RequireToken::new(config.tokens.clone());
     let (v1, v1alpha) = if s.reflection {
         let v1 = tonic_reflection::server::Builder::configure()
             .register_encoded_file_descriptor_set(FILE_DESCRIPTOR_SET)
             .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
             .build_v1()
-            .ok();
+            .ok()
+            .map(|svc| tonic::service::interceptor::InterceptedService::new(svc, guard.clone()));
         let v1alpha = tonic_reflection::server::Builder::configure()
             .register_encoded_file_descriptor_set(FILE_DESCRIPTOR_SET)
             .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
             .build_v1alpha()
-            .ok();
+            .ok()
+            .map(|svc| tonic::service::interceptor::InterceptedService::new(svc, guard.clone()));
         (v1, v1alpha)
     } else {
         (None, None)
     };
-    let service = WeightsServiceServer::new(api.clone())
-        .max_decoding_message_size(s.max_message_bytes)
-        .max_encoding_message_size(s.max_message_bytes);
+    let service = tonic::service::interceptor::InterceptedService::new(
+        WeightsServiceServer::new(api.clone())
+            .max_decoding_message_size(s.max_message_bytes)
+            .max_encoding_message_size(s.max_message_bytes),
+        guard,
+    );
+    let metrics_task = metrics_listener.map(|l| {
+        let scrape_api = api.clone();
+        tokio::spawn(metrics::serve_http(l, Arc::new(move || scrape_api.metrics_text())))
+    });
+    let health_task = health_listener.map(|l| {
+        let health = health.clone();
+        tokio::spawn(async move {
+            let incoming = tonic::transport::server::TcpIncoming::from(l).with_nodelay(Some(true));
+            if let Err(e) = tonic::transport::Server::builder().add_service(health).serve_with_incoming(incoming).await
+            {
+                tracing::error!(error = %e, "health listener failed");
+            }
+        })
+    });
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let mut builder = tonic::transport::Server::builder();
+    if let Some(tls) = &config.tls {
+        let mut t = tonic::transport::ServerTlsConfig::new()
+            .identity(tonic::transport::Identity::from_pem(&tls.cert, &tls.key))
+            .timeout(Duration::from_secs(10));
+        if let Some(ca) = &tls.client_ca {
+            t = t.client_ca_root(tonic::transport::Certificate::from_pem(ca)).client_auth_optional(false);
+        }
+        builder = builder.tls_config(t)?;
+    }
+    if s.max_connection_age_ms > 0 {
+        builder = builder
+            .max_connection_age(Duration::from_millis(s.max_connection_age_ms))
+            .max_connection_age_grace(Duration::from_millis(s.max_connection_age_grace_ms));
+    }
     // Nagle's algorithm with delayed ACKs adds ~40 ms to small responses;
     // with a caller-supplied listener tonic leaves TCP_NODELAY to the incoming stream.
-    let server = tonic::transport::Server::builder()
+    let server = builder
+        .layer(metrics::MetricsLayer::new(api.shared.metrics.clone()))
         .add_service(health)
         .add_optional_service(v1)
         .add_optional_service(v1alpha)
@@ -456,26 +568,39 @@ pub async fn serve_api(
             },
         );
     tokio::pin!(server);
-    tokio::select! {
-        r = &mut server => return r,
-        () = shutdown => {}
-    }
-    tracing::info!(in_flight = api.in_flight(), "shutdown requested: draining");
-    reporter.set_service_status("readiness", ServingStatus::NotServing).await;
-    reporter.set_service_status("", ServingStatus::NotServing).await;
-    reporter.set_service_status(SERVICE_NAME, ServingStatus::NotServing).await;
-    api.start_draining();
-    let _ = stop_tx.send(());
-    match tokio::time::timeout(Duration::from_millis(s.drain_timeout_ms), &mut server).await {
-        Ok(r) => {
-            tracing::info!("drained");
-            r
+    let outcome = tokio::select! {
+        r = &mut server => Some(r),
+        () = shutdown => None,
+    };
+    let result = match outcome {
+        Some(r) => r.map_err(ServeError::from),
+        None => {
+            tracing::info!(in_flight = api.in_flight(), "shutdown requested: draining");
+            reporter.set_service_status("readiness", ServingStatus::NotServing).await;
+            reporter.set_service_status("", ServingStatus::NotServing).await;
+            reporter.set_service_status(SERVICE_NAME, ServingStatus::NotServing).await;
+            api.start_draining();
+            let _ = stop_tx.send(());
+            match tokio::time::timeout(Duration::from_millis(s.drain_timeout_ms), &mut server).await {
+                Ok(r) => {
+                    tracing::info!("drained");
+                    r.map_err(ServeError::from)
+                }
+                Err(_) => {
+                    tracing::warn!(
+                        in_flight = api.in_flight(),
+                        budget_ms = s.drain_timeout_ms,
+                        "drain budget exceeded"
+                    );
+                    Ok(())
+                }
+            }
         }
-        Err(_) => {
-            tracing::warn!(in_flight = api.in_flight(), budget_ms = s.drain_timeout_ms, "drain budget exceeded");
-            Ok(())
-        }
+    };
+    for t in [metrics_task, health_task].into_iter().flatten() {
+        t.abort();
     }
+    result
 }
 
 /// Resolves on SIGTERM or SIGINT.

@@ -50,6 +50,12 @@ pub enum ServiceError {
         /// The configured limit.
         limit_ms: u64,
     },
+    /// The call carries no accepted bearer token.
+    #[error("unauthenticated: {reason}")]
+    Unauthenticated {
+        /// What is wrong with the credentials (never the token itself).
+        reason: &'static str,
+    },
     /// A bug: a worker task failed.
     #[error("internal error: {0}")]
     Internal(String),
@@ -214,6 +220,7 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
         ServiceError::Overloaded { .. } => with_info(Code::ResourceExhausted, "OVERLOADED", err.to_string()),
         ServiceError::Draining => with_info(Code::Unavailable, "DRAINING", err.to_string()),
         ServiceError::ServerTimeout { .. } => with_info(Code::DeadlineExceeded, "SERVER_TIMEOUT", err.to_string()),
+        ServiceError::Unauthenticated { .. } => with_info(Code::Unauthenticated, "UNAUTHENTICATED", err.to_string()),
         ServiceError::Internal(_) => with_info(Code::Internal, "INTERNAL", err.to_string()),
     }
 }

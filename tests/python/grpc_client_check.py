@@ -83,7 +83,8 @@ def main():
     from keelson.v1 import weights_pb2, weights_pb2_grpc
 
     port = free_port()
-    env = dict(os.environ, KEELSON__LOG__LEVEL="warn")
+    metrics_port = free_port()
+    env = dict(os.environ, KEELSON__LOG__LEVEL="warn", KEELSON__METRICS__ADDRESS=f"127.0.0.1:{metrics_port}")
     server = subprocess.Popen([args.keelson, "serve", "--addr", f"127.0.0.1:{port}"], env=env)
     try:
         channel = grpc.insecure_channel(f"127.0.0.1:{port}")
@@ -138,6 +139,16 @@ def main():
         except grpc.RpcError as e:
             check("infinite value rejected with INVALID_ARGUMENT", e.code() == grpc.StatusCode.INVALID_ARGUMENT, e.code())
             check("error names row and column", "row 0" in e.details() and "column 5" in e.details(), e.details())
+
+        # The Prometheus endpoint, read with the standard library's HTTP client.
+        import urllib.request
+        text = urllib.request.urlopen(f"http://127.0.0.1:{metrics_port}/metrics", timeout=10).read().decode()
+        ok_line = ('grpc_server_handled_total{grpc_service="keelson.v1.WeightsService",'
+                   'grpc_method="ComputeWeights",grpc_type="unary",grpc_code="OK"} 1')
+        bad_line = ('grpc_server_handled_total{grpc_service="keelson.v1.WeightsService",'
+                    'grpc_method="ComputeWeights",grpc_type="unary",grpc_code="InvalidArgument"} 1')
+        check("metrics count the successful call", ok_line in text, ok_line)
+        check("metrics count the rejected call", bad_line in text, bad_line)
     finally:
         server.send_signal(signal.SIGTERM)
         try:

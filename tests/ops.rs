@@ -1,0 +1,292 @@
+//! Operations: TLS, mutual TLS, bearer tokens and the Prometheus endpoint of
+//! a real server on loopback. Certificates are generated here with rcgen,
+//! one throw-away CA for servers and one for clients.
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use keelson::convert::request_from_panel;
+use keelson::demo::synthetic_panel;
+use keelson::proto::weights_service_client::WeightsServiceClient;
+use keelson::proto::{self, ComputeWeightsRequest};
+use keelson::service::config::ServerConfig;
+use rcgen::{BasicConstraints, CertificateParams, CertifiedIssuer, ExtendedKeyUsagePurpose, IsCa, KeyPair};
+use tokio::io::{AsyncReadExt as _, AsyncWriteExt as _};
+use tonic::Code;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint, Identity};
+use tonic_health::pb::{HealthCheckRequest, health_client::HealthClient};
+
+const TOKEN: &str = "ops-test-token-0123456789abcdef";
+
+struct Pki {
+    dir: PathBuf,
+    server_ca: String,
+    client_ca: String,
+    client_cert: String,
+    client_key: String,
+    stranger_cert: String,
+    stranger_key: String,
+}
+
+fn ca(name: &str) -> CertifiedIssuer<'static, KeyPair> {
+    let mut p = CertificateParams::new(Vec::<String>::new()).unwrap();
+    p.is_ca = IsCa::Ca(BasicConstraints::Unconstrained);
+    p.distinguished_name.push(rcgen::DnType::CommonName, name);
+    CertifiedIssuer::self_signed(p, KeyPair::generate().unwrap()).unwrap()
+}
+
+fn leaf(
+    issuer: &CertifiedIssuer<'static, KeyPair>,
+    names: &[&str],
+    usage: ExtendedKeyUsagePurpose,
+) -> (String, String) {
+    let key = KeyPair::generate().unwrap();
+    let mut p = CertificateParams::new(names.iter().map(|s| (*s).to_owned()).collect::<Vec<_>>()).unwrap();
+    p.extended_key_usages = vec![usage];
+    let cert = p.signed_by(&key, issuer).unwrap();
+    (cert.pem(), key.serialize_pem())
+}
+
+fn pki(tag: &str) -> Pki {
+    let dir = std::env::temp_dir().join(format!("keelson-ops-{tag}-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let server_ca = ca("keelson test server CA");
+    let client_ca = ca("keelson test client CA");
+    let other_ca = ca("an unrelated CA");
+    let (server_cert, server_key) = leaf(&server_ca, &["localhost", "127.0.0.1"], ExtendedKeyUsagePurpose::ServerAuth);
+    let (client_cert, client_key) = leaf(&client_ca, &["rebalancer"], ExtendedKeyUsagePurpose::ClientAuth);
+    let (stranger_cert, stranger_key) = leaf(&other_ca, &["stranger"], ExtendedKeyUsagePurpose::ClientAuth);
+    std::fs::write(dir.join("server.pem"), server_cert).unwrap();
+    std::fs::write(dir.join("server.key"), server_key).unwrap();
+    std::fs::write(dir.join("client-ca.pem"), client_ca.pem()).unwrap();
+    std::fs::write(dir.join("tokens"), format!("# accepted tokens\n\n{TOKEN}\n")).unwrap();
+    Pki {
+        dir,
+        server_ca: server_ca.pem(),
+        client_ca: client_ca.pem(),
+        client_cert,
+        client_key,
+        stranger_cert,
+        stranger_key,
+    }
+}
+
+fn path(dir: &Path, f: &str) -> String {
+    dir.join(f).to_string_lossy().into_owned()
+}
+
+mod common;
+use common::Server;
+
+fn request() -> ComputeWeightsRequest {
+    let panel = synthetic_panel(3, 96, 12);
+    let settings = proto::Settings { components: Some(3), kappa: Some(1.0), ..Default::default() };
+    request_from_panel(&panel, settings, "ops")
+}
+
+async fn channel(url: String, tls: Option<ClientTlsConfig>) -> Result<Channel, tonic::transport::Error> {
+    let mut ep = Endpoint::from_shared(url).unwrap().connect_timeout(Duration::from_secs(5));
+    if let Some(t) = tls {
+        ep = ep.tls_config(t)?;
+    }
+    ep.connect().await
+}
+
+async fn compute(ch: Channel, token: Option<&str>) -> Result<proto::ComputeWeightsResponse, tonic::Status> {
+    let mut req = tonic::Request::new(request());
+    req.set_timeout(Duration::from_secs(30));
+    if let Some(t) = token {
+        req.metadata_mut().insert("authorization", format!("Bearer {t}").parse().unwrap());
+    }
+    WeightsServiceClient::new(ch).compute_weights(req).await.map(tonic::Response::into_inner)
+}
+
+fn tls_to(p: &Pki) -> ClientTlsConfig {
+    ClientTlsConfig::new().ca_certificate(Certificate::from_pem(&p.server_ca)).domain_name("localhost")
+}
+
+/// Points the server at the generated certificate and key.
+fn serve_tls(c: &mut ServerConfig, p: &Pki) {
+    c.tls.cert_file = path(&p.dir, "server.pem");
+    c.tls.key_file = path(&p.dir, "server.key");
+}
+
+/// The failure of one call made on a new connection, whether the connection
+/// or the call fails (UNAVAILABLE standing for a refused connection); None when it succeeds.
+async fn call_failure(url: String, tls: Option<ClientTlsConfig>) -> Option<tonic::Status> {
+    match channel(url, tls).await {
+        Ok(ch) => compute(ch, None).await.err(),
+        Err(e) => Some(tonic::Status::unavailable(e.to_string())),
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn tls_serves_encrypted_and_refuses_plaintext() {
+    let p = pki("tls");
+    let s = Server::start(|c| serve_tls(c, &p)).await;
+    let ch = channel(format!("https://{}", s.addr), Some(tls_to(&p))).await.unwrap();
+    let resp = compute(ch.clone(), None).await.unwrap();
+    assert_eq!(resp.weights.len(), 12);
+    let health = HealthClient::new(ch).check(HealthCheckRequest { service: "readiness".into() }).await.unwrap();
+    assert_eq!(health.into_inner().status, 1, "SERVING over TLS");
+
+    // A plaintext HTTP/2 client gets no gRPC answer from a TLS port.
+    let plain = call_failure(format!("http://{}", s.addr), None).await.map(|st| st.code());
+    // The exact code depends on where the HTTP/2 exchange breaks (UNAVAILABLE, UNKNOWN, INTERNAL, CANCELLED).
+    assert!(plain.is_some_and(|c| c != Code::Ok), "a plaintext call must fail: {plain:?}");
+    // A client that does not trust the server's CA refuses the handshake.
+    let untrusting =
+        ClientTlsConfig::new().ca_certificate(Certificate::from_pem(&p.client_ca)).domain_name("localhost");
+    let r = call_failure(format!("https://{}", s.addr), Some(untrusting)).await;
+    assert!(r.is_some(), "an untrusted server certificate must not be accepted");
+    s.shutdown().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn mutual_tls_admits_only_clients_of_the_configured_ca() {
+    let p = pki("mtls");
+    let s = Server::start(|c| {
+        serve_tls(c, &p);
+        c.tls.client_ca_file = path(&p.dir, "client-ca.pem");
+        c.server.health_address = "127.0.0.1:0".into();
+    })
+    .await;
+    // Probes that cannot present a certificate use the plaintext health-only port.
+    let probe = channel(format!("http://{}", s.health.unwrap()), None).await.unwrap();
+    for name in ["liveness", "readiness"] {
+        let h = HealthClient::new(probe.clone()).check(HealthCheckRequest { service: name.into() }).await.unwrap();
+        assert_eq!(h.into_inner().status, 1, "{name} over the plaintext health port");
+    }
+    let api_on_probe_port = compute(probe, None).await.unwrap_err();
+    assert_eq!(api_on_probe_port.code(), Code::Unimplemented, "the health port serves nothing else");
+    let url = format!("https://{}", s.addr);
+    let good = tls_to(&p).identity(Identity::from_pem(&p.client_cert, &p.client_key));
+    let resp = compute(channel(url.clone(), Some(good)).await.unwrap(), None).await.unwrap();
+    assert_eq!(resp.weights.len(), 12);
+
+    for (what, cfg) in [
+        ("no client certificate", tls_to(&p)),
+        ("a certificate from another CA", tls_to(&p).identity(Identity::from_pem(&p.stranger_cert, &p.stranger_key))),
+    ] {
+        let refused = call_failure(url.clone(), Some(cfg)).await;
+        assert!(refused.is_some(), "{what}: the server must refuse the connection");
+    }
+    s.shutdown().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn bearer_tokens_guard_the_api_but_not_health() {
+    let p = pki("token");
+    let s = Server::start(|c| c.auth.tokens_file = path(&p.dir, "tokens")).await;
+    let url = format!("http://{}", s.addr);
+    let ch = channel(url, None).await.unwrap();
+
+    let missing = compute(ch.clone(), None).await.unwrap_err();
+    assert_eq!(missing.code(), Code::Unauthenticated, "{missing:?}");
+    assert!(!missing.message().contains(TOKEN));
+    let wrong = compute(ch.clone(), Some("ops-test-token-0123456789abcdeX")).await.unwrap_err();
+    assert_eq!(wrong.code(), Code::Unauthenticated);
+    assert!(!wrong.message().contains("0123456789abcdeX"), "the presented token is never echoed");
+    let info = WeightsServiceClient::new(ch.clone()).get_service_info(proto::GetServiceInfoRequest {}).await;
+    assert_eq!(info.unwrap_err().code(), Code::Unauthenticated, "every API method is guarded");
+
+    let ok = compute(ch.clone(), Some(TOKEN)).await.unwrap();
+    assert_eq!(ok.weights.len(), 12);
+    for name in ["", "liveness", "readiness"] {
+        let h = HealthClient::new(ch.clone()).check(HealthCheckRequest { service: name.into() }).await;
+        assert_eq!(h.unwrap().into_inner().status, 1, "health `{name}` answers without a token");
+    }
+    s.shutdown().await;
+}
+
+async fn http_get(addr: SocketAddr, path: &str) -> String {
+    let mut stream = tokio::net::TcpStream::connect(addr).await.unwrap();
+    stream
+        .write_all(format!("GET {path} HTTP/1.1\r\nHost: metrics\r\nConnection: close\r\n\r\n").as_bytes())
+        .await
+        .unwrap();
+    let mut out = String::new();
+    tokio::time::timeout(Duration::from_secs(10), stream.read_to_string(&mut out)).await.unwrap().unwrap();
+    out
+}
+
+fn value(text: &str, series: &str) -> Option<f64> {
+    text.lines().find_map(|l| l.strip_prefix(series).and_then(|rest| rest.trim().parse().ok()))
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn metrics_endpoint_counts_calls_by_code() {
+    let s = Server::start(|c| {
+        c.auth.tokens = vec![TOKEN.to_owned()];
+        c.metrics.address = "127.0.0.1:0".into();
+    })
+    .await;
+    let ch = channel(format!("http://{}", s.addr), None).await.unwrap();
+    for _ in 0..3 {
+        compute(ch.clone(), Some(TOKEN)).await.unwrap();
+    }
+    let mut bad = request();
+    bad.returns.as_mut().unwrap().values[7] = f64::NAN;
+    bad.settings = Some(proto::Settings { missing_policy: proto::MissingPolicy::Reject.into(), ..Default::default() });
+    let mut req = tonic::Request::new(bad);
+    req.metadata_mut().insert("authorization", format!("Bearer {TOKEN}").parse().unwrap());
+    let e = WeightsServiceClient::new(ch.clone()).compute_weights(req).await.unwrap_err();
+    assert_eq!(e.code(), Code::InvalidArgument);
+    compute(ch.clone(), None).await.unwrap_err();
+
+    let resp = http_get(s.metrics.unwrap(), "/metrics").await;
+    assert!(resp.starts_with("HTTP/1.1 200"), "{resp}");
+    assert!(resp.contains("text/plain; version=0.0.4"), "{resp}");
+    let cw = r#"grpc_service="keelson.v1.WeightsService",grpc_method="ComputeWeights",grpc_type="unary""#;
+    assert_eq!(value(&resp, &format!("grpc_server_started_total{{{cw}}}")), Some(5.0), "{resp}");
+    assert_eq!(value(&resp, &format!("grpc_server_handled_total{{{cw},grpc_code=\"OK\"}}")), Some(3.0), "{resp}");
+    assert_eq!(value(&resp, &format!("grpc_server_handled_total{{{cw},grpc_code=\"InvalidArgument\"}}")), Some(1.0));
+    assert_eq!(value(&resp, &format!("grpc_server_handled_total{{{cw},grpc_code=\"Unauthenticated\"}}")), Some(1.0));
+    assert_eq!(value(&resp, &format!("grpc_server_handling_seconds_count{{{cw}}}")), Some(5.0));
+    assert_eq!(value(&resp, &format!("grpc_server_handling_seconds_bucket{{{cw},le=\"+Inf\"}}")), Some(5.0));
+    // Admitted problems: the three good ones and the one rejected during validation, 96 × 12 cells each.
+    assert_eq!(value(&resp, "keelson_problem_cells_count"), Some(4.0), "{resp}");
+    assert_eq!(value(&resp, "keelson_problem_cells_bucket{le=\"3000\"}"), Some(4.0), "{resp}");
+    assert_eq!(value(&resp, "keelson_estimator_phase_seconds_count{phase=\"components\"}"), Some(3.0), "{resp}");
+    assert_eq!(value(&resp, "keelson_requests_in_flight"), Some(0.0));
+    assert_eq!(value(&resp, "keelson_requests_shed_total{reason=\"overloaded\"}"), Some(0.0));
+    assert!(value(&resp, "process_resident_memory_bytes").is_some_and(|v| v > 1e6), "{resp}");
+
+    let missing = http_get(s.metrics.unwrap(), "/other").await;
+    assert!(missing.starts_with("HTTP/1.1 404"), "{missing}");
+    s.shutdown().await;
+}
+
+#[test]
+fn security_settings_are_validated_and_never_logged() {
+    let mut c = ServerConfig::default();
+    c.tls.key_file = "/nonexistent/server.key".into();
+    let e = c.clone().check().unwrap_err().to_string();
+    assert!(e.contains("tls.cert_file"), "{e}");
+    c.tls.cert_file = "/nonexistent/server.pem".into();
+    let e = c.check().unwrap_err().to_string();
+    assert!(e.contains("tls.cert_file") && e.contains("/nonexistent/server.pem"), "{e}");
+
+    let mut c = ServerConfig::default();
+    c.auth.tokens = vec!["short-secret".into()];
+    let e = c.check().unwrap_err().to_string();
+    assert!(e.contains("auth.tokens") && !e.contains("short-secret"), "{e}");
+
+    let mut c = ServerConfig::default();
+    c.auth.tokens = vec![TOKEN.to_owned()];
+    let valid = c.clone().check().unwrap();
+    assert!(!valid.redacted_json().contains(TOKEN), "{}", valid.redacted_json());
+    assert!(!format!("{:?}", c.auth).contains(TOKEN));
+
+    // Tokens from the environment: comma-separated.
+    let env =
+        vec![("KEELSON__AUTH__TOKENS".to_owned(), "first-token-aaaaaaaaaaaa,second-token-bbbbbbbbbbb".to_owned())];
+    let c = ServerConfig::load(None, env).unwrap();
+    assert_eq!(c.auth.tokens.len(), 2);
+    assert_eq!(c.check().unwrap().tokens.len(), 2);
+
+    let mut c = ServerConfig::default();
+    c.metrics.address = c.server.address.clone();
+    assert!(c.check().unwrap_err().to_string().contains("metrics.address"));
+}
