@@ -290,3 +290,129 @@ fn security_settings_are_validated_and_never_logged() {
     c.metrics.address = c.server.address.clone();
     assert!(c.check().unwrap_err().to_string().contains("metrics.address"));
 }
+
+/// A stand-in OpenTelemetry collector: an OTLP/gRPC trace service that keeps
+/// every span it receives.
+#[derive(Clone, Default)]
+struct Collector(std::sync::Arc<std::sync::Mutex<Vec<opentelemetry_proto::tonic::trace::v1::ResourceSpans>>>);
+
+#[tonic::async_trait]
+impl opentelemetry_proto::tonic::collector::trace::v1::trace_service_server::TraceService for Collector {
+    async fn export(
+        &self,
+        request: tonic::Request<opentelemetry_proto::tonic::collector::trace::v1::ExportTraceServiceRequest>,
+    ) -> Result<
+        tonic::Response<opentelemetry_proto::tonic::collector::trace::v1::ExportTraceServiceResponse>,
+        tonic::Status,
+    > {
+        self.0.lock().unwrap().extend(request.into_inner().resource_spans);
+        Ok(tonic::Response::new(Default::default()))
+    }
+}
+
+fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+fn attribute(attrs: &[opentelemetry_proto::tonic::common::v1::KeyValue], key: &str) -> Option<String> {
+    use opentelemetry_proto::tonic::common::v1::any_value::Value;
+    attrs.iter().find(|kv| kv.key == key).and_then(|kv| kv.value.as_ref()?.value.as_ref()).map(|v| match v {
+        Value::StringValue(s) => s.clone(),
+        Value::IntValue(i) => i.to_string(),
+        Value::DoubleValue(d) => d.to_string(),
+        Value::BoolValue(b) => b.to_string(),
+        other => format!("{other:?}"),
+    })
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn traces_reach_an_otlp_collector_under_the_callers_trace() {
+    use opentelemetry_proto::tonic::collector::trace::v1::trace_service_server::TraceServiceServer;
+    let collector = Collector::default();
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let collector_addr = listener.local_addr().unwrap();
+    let collector_task = tokio::spawn(
+        tonic::transport::Server::builder()
+            .add_service(TraceServiceServer::new(collector.clone()))
+            .serve_with_incoming(tonic::transport::server::TcpIncoming::from(listener)),
+    );
+    let s = Server::start(|c| {
+        c.tracing.otlp_endpoint = format!("http://{collector_addr}");
+        c.tracing.export_interval_ms = 100;
+    })
+    .await;
+    let mut client = WeightsServiceClient::new(channel(format!("http://{}", s.addr), None).await.unwrap());
+
+    // The `traceparent` example of the W3C Trace Context recommendation (recalled from memory;
+    // any well-formed value would do).
+    let trace_id = "4bf92f3577b34da6a3ce929d0e0e4736";
+    let parent_id = "00f067aa0ba902b7";
+    let mut good = tonic::Request::new(request());
+    good.metadata_mut().insert("traceparent", format!("00-{trace_id}-{parent_id}-01").parse().unwrap());
+    let ok = client.compute_weights(good).await.unwrap().into_inner();
+    let mut bad = request();
+    bad.returns.as_mut().unwrap().values[7] = f64::INFINITY;
+    assert_eq!(client.compute_weights(bad).await.unwrap_err().code(), Code::InvalidArgument);
+    // Shutdown flushes what is queued.
+    s.shutdown().await;
+
+    let resource_spans = collector.0.lock().unwrap().clone();
+    collector_task.abort();
+    let resource = resource_spans.first().and_then(|r| r.resource.as_ref()).expect("spans arrived");
+    assert_eq!(attribute(&resource.attributes, "service.name").as_deref(), Some("keelson"));
+    let spans: Vec<_> = resource_spans.iter().flat_map(|r| &r.scope_spans).flat_map(|s| &s.spans).collect();
+    let calls: Vec<_> = spans.iter().filter(|s| s.name == "keelson.v1.WeightsService/ComputeWeights").collect();
+    assert_eq!(calls.len(), 2, "{:?}", spans.iter().map(|s| &s.name).collect::<Vec<_>>());
+
+    let traced = calls.iter().find(|s| hex(&s.trace_id) == trace_id).expect("the caller's trace id is kept");
+    assert_eq!(hex(&traced.parent_span_id), parent_id, "parented on the caller's span");
+    assert_eq!(traced.kind, 2, "SPAN_KIND_SERVER");
+    let a = &traced.attributes;
+    assert_eq!(attribute(a, "rpc.system").as_deref(), Some("grpc"));
+    assert_eq!(attribute(a, "rpc.method").as_deref(), Some("ComputeWeights"));
+    assert_eq!(attribute(a, "rpc.grpc.status_code").as_deref(), Some("0"));
+    assert_eq!(attribute(a, "keelson.periods").as_deref(), Some("96"));
+    assert_eq!(attribute(a, "keelson.factors").as_deref(), Some("12"));
+    assert_eq!(attribute(a, "keelson.fingerprint"), Some(ok.fingerprint.clone()));
+    let phases: Vec<_> = spans.iter().filter(|s| s.parent_span_id == traced.span_id).collect();
+    let names: Vec<&str> = phases.iter().map(|s| s.name.as_str()).collect();
+    for phase in ["estimator.validate", "estimator.moments", "estimator.components", "estimator.solve"] {
+        assert!(names.contains(&phase), "{names:?}");
+    }
+    for p in &phases {
+        assert_eq!(p.trace_id, traced.trace_id);
+        assert!(
+            p.start_time_unix_nano >= traced.start_time_unix_nano && p.end_time_unix_nano <= traced.end_time_unix_nano
+        );
+    }
+
+    let failed = calls.iter().find(|s| hex(&s.trace_id) != trace_id).unwrap();
+    assert!(failed.parent_span_id.is_empty(), "no caller context: a new trace");
+    assert_eq!(attribute(&failed.attributes, "rpc.grpc.status_code").as_deref(), Some("3"));
+    assert_eq!(failed.status.as_ref().map_or(0, |s| s.code), 0, "a caller's bad input is not a server error");
+}
+
+#[test]
+fn tracing_settings_are_validated() {
+    for (edit, key) in [
+        ((|c: &mut ServerConfig| c.tracing.sample_ratio = 1.5) as fn(&mut ServerConfig), "tracing.sample_ratio"),
+        (|c| c.tracing.otlp_endpoint = "collector:4317".into(), "tracing.otlp_endpoint"),
+        (|c| c.tracing.otlp_endpoint = "https://collector:4317".into(), "tracing.otlp_endpoint"),
+        (
+            |c| {
+                c.tracing.otlp_endpoint = "http://127.0.0.1:4317".into();
+                c.tracing.export_interval_ms = 0;
+            },
+            "tracing.export_interval_ms",
+        ),
+    ] {
+        let mut c = ServerConfig::default();
+        edit(&mut c);
+        let e = c.check().unwrap_err().to_string();
+        assert!(e.contains(key), "{e}");
+    }
+    let env = vec![("KEELSON__TRACING__OTLP_ENDPOINT".to_owned(), "http://127.0.0.1:4317".to_owned())];
+    let c = ServerConfig::load(None, env).unwrap();
+    assert_eq!(c.tracing.otlp_endpoint, "http://127.0.0.1:4317");
+    assert!(c.check().is_ok());
+}

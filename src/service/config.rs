@@ -26,6 +26,8 @@ pub struct ServerConfig {
     pub auth: AuthSection,
     /// The Prometheus metrics endpoint.
     pub metrics: MetricsSection,
+    /// OpenTelemetry trace export.
+    pub tracing: TracingSection,
 }
 
 /// The `[server]` section.
@@ -126,6 +128,75 @@ pub struct MetricsSection {
 impl Default for MetricsSection {
     fn default() -> Self {
         MetricsSection { address: "0.0.0.0:9090".to_owned() }
+    }
+}
+
+/// The `[tracing]` section: OpenTelemetry trace export over OTLP/gRPC.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct TracingSection {
+    /// Collector address, `http://HOST:PORT` (OTLP/gRPC, usually port 4317); empty = off.
+    pub otlp_endpoint: String,
+    /// Share of new traces sampled, 0 to 1; a caller's sampling decision is always followed.
+    pub sample_ratio: f64,
+    /// The `service.name` resource attribute.
+    pub service_name: String,
+    /// How often queued spans are sent.
+    pub export_interval_ms: u64,
+    /// Time limit of one export call.
+    pub export_timeout_ms: u64,
+    /// Spans held for export at most; more are dropped, never waited for.
+    pub max_queued_spans: usize,
+}
+
+impl Default for TracingSection {
+    fn default() -> Self {
+        TracingSection {
+            otlp_endpoint: String::new(),
+            sample_ratio: 1.0,
+            service_name: "keelson".to_owned(),
+            export_interval_ms: 5_000,
+            export_timeout_ms: 10_000,
+            max_queued_spans: 2_048,
+        }
+    }
+}
+
+impl TracingSection {
+    fn check(&self) -> Result<(), ConfigError> {
+        let invalid = |key: &'static str, reason: &str| ConfigError::Invalid { key, reason: reason.to_owned() };
+        if !(0.0..=1.0).contains(&self.sample_ratio) {
+            return Err(invalid("tracing.sample_ratio", "must be between 0 and 1"));
+        }
+        if self.otlp_endpoint.is_empty() {
+            return Ok(());
+        }
+        let uri: http::Uri = self.otlp_endpoint.parse().map_err(|e| ConfigError::Invalid {
+            key: "tracing.otlp_endpoint",
+            reason: format!("\"{}\" is not a URL ({e})", self.otlp_endpoint),
+        })?;
+        if uri.scheme_str() != Some("http") || uri.host().is_none() {
+            return Err(invalid(
+                "tracing.otlp_endpoint",
+                "must be http://HOST:PORT (plaintext OTLP/gRPC to a sidecar or node-local collector, which forwards \
+                 with TLS)",
+            ));
+        }
+        if self.service_name.trim().is_empty() {
+            return Err(invalid("tracing.service_name", "must not be empty"));
+        }
+        for (key, v) in [
+            ("tracing.export_interval_ms", self.export_interval_ms),
+            ("tracing.export_timeout_ms", self.export_timeout_ms),
+        ] {
+            if v == 0 || v > 600_000 {
+                return Err(invalid(key, "must be between 1 and 600000"));
+            }
+        }
+        if self.max_queued_spans == 0 || self.max_queued_spans > 1_000_000 {
+            return Err(invalid("tracing.max_queued_spans", "must be between 1 and 1000000"));
+        }
+        Ok(())
     }
 }
 
@@ -286,6 +357,7 @@ impl ServerConfig {
         let defaults = self.estimator.clone().check()?;
         let tls = self.tls.load()?;
         let tokens = self.auth.load()?;
+        self.tracing.check()?;
         let optional_address = |key: &'static str, v: &str| -> Result<Option<SocketAddr>, ConfigError> {
             if v.is_empty() {
                 return Ok(None);

@@ -7,11 +7,12 @@ pub mod auth;
 pub mod config;
 pub mod metrics;
 pub mod status;
+pub mod telemetry;
 
 use std::future::Future;
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
-use std::time::{Duration, Instant};
+use std::time::{Duration, Instant, SystemTime};
 
 use tokio::net::TcpListener;
 use tokio::sync::Semaphore;
@@ -24,6 +25,7 @@ use crate::proto;
 use crate::proto::weights_service_server::{WeightsService, WeightsServiceServer};
 use config::ValidConfig;
 use status::{ServiceError, to_status};
+use telemetry::CallSpan;
 
 /// The encoded descriptor set of the `keelson.v1` API, for reflection.
 pub const FILE_DESCRIPTOR_SET: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "/keelson_descriptor.bin"));
@@ -46,6 +48,8 @@ struct Shared {
     /// Computations that stopped early on a deadline or a cancellation.
     stopped_early: AtomicU64,
     metrics: Arc<metrics::Metrics>,
+    /// Trace export, set when serving starts (it needs the runtime).
+    telemetry: std::sync::OnceLock<telemetry::Telemetry>,
 }
 
 /// The `WeightsService` implementation.
@@ -110,7 +114,10 @@ impl WeightsApi {
         let draining = AtomicBool::new(false);
         let stopped_early = AtomicU64::new(0);
         let metrics = Arc::new(metrics::Metrics::default());
-        WeightsApi { shared: Arc::new(Shared { config, admission, workers, draining, stopped_early, metrics }) }
+        let telemetry = std::sync::OnceLock::new();
+        WeightsApi {
+            shared: Arc::new(Shared { config, admission, workers, draining, stopped_early, metrics, telemetry }),
+        }
     }
 
     /// The Prometheus exposition text of this server's metrics.
@@ -133,6 +140,14 @@ impl WeightsApi {
     /// caller went away, since start.
     pub fn stopped_early(&self) -> u64 {
         self.shared.stopped_early.load(Ordering::Relaxed)
+    }
+
+    /// A span for one call of `method` (a no-op when trace export is off).
+    fn call_span(&self, method: &'static str, meta: &tonic::metadata::MetadataMap) -> CallSpan {
+        match self.shared.telemetry.get() {
+            Some(t) if t.is_enabled() => t.call_span(method, meta, SystemTime::now()),
+            _ => CallSpan::none(),
+        }
     }
 
     /// Refuses new requests from now on (in-flight ones continue).
@@ -202,12 +217,18 @@ impl WeightsApi {
         &self,
         req: proto::RunBacktestRequest,
         client_timeout: Option<Duration>,
+        span: CallSpan,
     ) -> Result<BacktestStream, ServiceError> {
         let sh = self.shared.clone();
         let admitted = self.admit()?;
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, spec, request_id) = crate::convert::backtest_request_into_parts(req);
         let settings = self.settings(&proto_settings)?;
+        span.record([
+            opentelemetry::KeyValue::new("keelson.request_id", request_id.clone()),
+            opentelemetry::KeyValue::new("keelson.periods", panel.rows as i64),
+            opentelemetry::KeyValue::new("keelson.factors", panel.cols as i64),
+        ]);
         let (deadline, _) = self.deadline(client_timeout, self.shared.config.raw.server.backtest_timeout_ms);
         let flag = Arc::new(AtomicBool::new(false));
         let stop = Stop::never().with_deadline(deadline).with_flag(flag.clone());
@@ -262,6 +283,7 @@ impl WeightsApi {
                 Err(join) => Err(to_status(&ServiceError::Internal(format!("worker failed: {join}")), None)),
             };
             let code = outcome.as_ref().map_or_else(|s| s.code(), |_| tonic::Code::Ok);
+            span.finish(code, outcome.as_ref().err().map_or("", |s| s.message()));
             tracing::info!(
                 target: "keelson::request",
                 method = "RunBacktest",
@@ -290,6 +312,7 @@ impl WeightsApi {
         &self,
         req: proto::ComputeWeightsRequest,
         client_timeout: Option<Duration>,
+        span: &CallSpan,
     ) -> Result<proto::ComputeWeightsResponse, ServiceError> {
         let sh = &self.shared;
         let limits = &sh.config.raw.server;
@@ -315,13 +338,16 @@ impl WeightsApi {
             .map_err(|_| timed_out())?
             .map_err(|_| ServiceError::Internal("worker pool closed".into()))?;
         let shared = self.shared.clone();
+        let span = span.clone();
         let job = tokio::task::spawn_blocking(move || {
+            let fit_start = SystemTime::now();
             let (result, phases) = estimator::fit_with_phases(
                 &panel,
                 &settings,
                 &FitOptions { threads: 1, stop, ..FitOptions::default() },
             );
             shared.metrics.phases(&phases);
+            span.phases(fit_start, &phases);
             if matches!(result, Err(EstimateError::Cancelled | EstimateError::DeadlineExceeded)) {
                 shared.stopped_early.fetch_add(1, Ordering::Relaxed);
             }
@@ -346,12 +372,18 @@ impl WeightsService for WeightsApi {
         request: Request<proto::ComputeWeightsRequest>,
     ) -> Result<Response<proto::ComputeWeightsResponse>, Status> {
         let started = Instant::now();
+        let span = self.call_span("ComputeWeights", request.metadata());
         let timeout = grpc_timeout(request.metadata());
         let req = request.into_inner();
         let (periods, factors) = req.returns.as_ref().map_or((0, 0), |m| (m.rows, m.cols));
         let cols = req.returns.as_ref().map(|m| m.cols as usize);
         let request_id = req.request_id.clone();
-        let result = self.compute(req, timeout).await;
+        span.record([
+            opentelemetry::KeyValue::new("keelson.request_id", request_id.clone()),
+            opentelemetry::KeyValue::new("keelson.periods", i64::from(periods)),
+            opentelemetry::KeyValue::new("keelson.factors", i64::from(factors)),
+        ]);
+        let result = self.compute(req, timeout, &span).await;
         let latency_ms = started.elapsed().as_secs_f64() * 1e3;
         match result {
             Ok(resp) => {
@@ -369,6 +401,12 @@ impl WeightsService for WeightsApi {
                     latency_ms,
                     "request served"
                 );
+                span.record([
+                    opentelemetry::KeyValue::new("keelson.components", i64::from(d.map_or(0, |d| d.num_components))),
+                    opentelemetry::KeyValue::new("keelson.kappa", d.map_or(0.0, |d| d.kappa)),
+                    opentelemetry::KeyValue::new("keelson.fingerprint", resp.fingerprint.clone()),
+                ]);
+                span.finish(tonic::Code::Ok, "");
                 Ok(Response::new(resp))
             }
             Err(e) => {
@@ -384,6 +422,7 @@ impl WeightsService for WeightsApi {
                     latency_ms,
                     "request failed"
                 );
+                span.finish(status.code(), status.message());
                 Err(status)
             }
         }
@@ -395,16 +434,25 @@ impl WeightsService for WeightsApi {
         &self,
         request: Request<proto::RunBacktestRequest>,
     ) -> Result<Response<Self::RunBacktestStream>, Status> {
+        let span = self.call_span("RunBacktest", request.metadata());
         let timeout = grpc_timeout(request.metadata());
         let req = request.into_inner();
         let cols = req.returns.as_ref().map(|m| m.cols as usize);
-        self.start_backtest(req, timeout).await.map(Response::new).map_err(|e| to_status(&e, cols))
+        match self.start_backtest(req, timeout, span.clone()).await {
+            Ok(stream) => Ok(Response::new(stream)),
+            Err(e) => {
+                let status = to_status(&e, cols);
+                span.finish(status.code(), status.message());
+                Err(status)
+            }
+        }
     }
 
     async fn get_service_info(
         &self,
-        _request: Request<proto::GetServiceInfoRequest>,
+        request: Request<proto::GetServiceInfoRequest>,
     ) -> Result<Response<proto::GetServiceInfoResponse>, Status> {
+        self.call_span("GetServiceInfo", request.metadata()).finish(tonic::Code::Ok, "");
         let c = &self.shared.config;
         let s = &c.raw.server;
         Ok(Response::new(proto::GetServiceInfoResponse {
@@ -479,6 +527,9 @@ pub enum ServeError {
     /// A configured address could not be bound.
     #[error("cannot listen on {0} {1}: {2}")]
     Bind(&'static str, std::net::SocketAddr, std::io::Error),
+    /// Trace export could not start.
+    #[error(transparent)]
+    Telemetry(#[from] telemetry::TelemetryError),
 }
 
 /// [`serve`] with a service built by the caller, who keeps a handle to it
@@ -495,6 +546,13 @@ pub async fn serve_api(
     let Listeners { grpc: listener, metrics: metrics_listener, health: health_listener } = listeners;
     let config = &api.shared.config;
     let s = config.raw.server.clone();
+    let telemetry = telemetry::Telemetry::start(&config.raw.tracing)?;
+    if telemetry.is_enabled() {
+        tracing::info!(endpoint = %config.raw.tracing.otlp_endpoint, "exporting traces over OTLP/gRPC");
+    }
+    if api.shared.telemetry.set(telemetry).is_err() {
+        tracing::warn!("this service was served before; its first trace exporter stays");
+    }
     let (reporter, health) = tonic_health::server::health_reporter();
     for name in ["", SERVICE_NAME, HEALTH_NAMES[0], HEALTH_NAMES[1]] {
         reporter.set_service_status(name, ServingStatus::Serving).await;
@@ -600,6 +658,13 @@ pub async fn serve_api(
     for t in [metrics_task, health_task].into_iter().flatten() {
         t.abort();
     }
+    let shared = api.shared.clone();
+    let _ = tokio::task::spawn_blocking(move || {
+        if let Some(t) = shared.telemetry.get() {
+            t.shutdown();
+        }
+    })
+    .await;
     result
 }
 
