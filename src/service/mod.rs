@@ -144,10 +144,7 @@ impl WeightsApi {
 
     /// A span for one call of `method` (a no-op when trace export is off).
     fn call_span(&self, method: &'static str, meta: &tonic::metadata::MetadataMap) -> CallSpan {
-        match self.shared.telemetry.get() {
-            Some(t) if t.is_enabled() => t.call_span(method, meta, SystemTime::now()),
-            _ => CallSpan::none(),
-        }
+        self.shared.telemetry.get().map_or_else(CallSpan::none, |t| t.call_span(method, meta, SystemTime::now()))
     }
 
     /// Refuses new requests from now on (in-flight ones continue).
@@ -224,11 +221,13 @@ impl WeightsApi {
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, spec, request_id) = crate::convert::backtest_request_into_parts(req);
         let settings = self.settings(&proto_settings)?;
-        span.record([
-            opentelemetry::KeyValue::new("keelson.request_id", request_id.clone()),
-            opentelemetry::KeyValue::new("keelson.periods", panel.rows as i64),
-            opentelemetry::KeyValue::new("keelson.factors", panel.cols as i64),
-        ]);
+        span.record(|| {
+            [
+                opentelemetry::KeyValue::new("keelson.request_id", request_id.clone()),
+                opentelemetry::KeyValue::new("keelson.periods", panel.rows as i64),
+                opentelemetry::KeyValue::new("keelson.factors", panel.cols as i64),
+            ]
+        });
         let (deadline, _) = self.deadline(client_timeout, self.shared.config.raw.server.backtest_timeout_ms);
         let flag = Arc::new(AtomicBool::new(false));
         let stop = Stop::never().with_deadline(deadline).with_flag(flag.clone());
@@ -378,11 +377,13 @@ impl WeightsService for WeightsApi {
         let (periods, factors) = req.returns.as_ref().map_or((0, 0), |m| (m.rows, m.cols));
         let cols = req.returns.as_ref().map(|m| m.cols as usize);
         let request_id = req.request_id.clone();
-        span.record([
-            opentelemetry::KeyValue::new("keelson.request_id", request_id.clone()),
-            opentelemetry::KeyValue::new("keelson.periods", i64::from(periods)),
-            opentelemetry::KeyValue::new("keelson.factors", i64::from(factors)),
-        ]);
+        span.record(|| {
+            [
+                opentelemetry::KeyValue::new("keelson.request_id", request_id.clone()),
+                opentelemetry::KeyValue::new("keelson.periods", i64::from(periods)),
+                opentelemetry::KeyValue::new("keelson.factors", i64::from(factors)),
+            ]
+        });
         let result = self.compute(req, timeout, &span).await;
         let latency_ms = started.elapsed().as_secs_f64() * 1e3;
         match result {
@@ -401,11 +402,16 @@ impl WeightsService for WeightsApi {
                     latency_ms,
                     "request served"
                 );
-                span.record([
-                    opentelemetry::KeyValue::new("keelson.components", i64::from(d.map_or(0, |d| d.num_components))),
-                    opentelemetry::KeyValue::new("keelson.kappa", d.map_or(0.0, |d| d.kappa)),
-                    opentelemetry::KeyValue::new("keelson.fingerprint", resp.fingerprint.clone()),
-                ]);
+                span.record(|| {
+                    [
+                        opentelemetry::KeyValue::new(
+                            "keelson.components",
+                            i64::from(d.map_or(0, |d| d.num_components)),
+                        ),
+                        opentelemetry::KeyValue::new("keelson.kappa", d.map_or(0.0, |d| d.kappa)),
+                        opentelemetry::KeyValue::new("keelson.fingerprint", resp.fingerprint.clone()),
+                    ]
+                });
                 span.finish(tonic::Code::Ok, "");
                 Ok(Response::new(resp))
             }

@@ -149,10 +149,11 @@ impl CallSpan {
         CallSpan { inner: None }
     }
 
-    /// Adds attributes to the call's span.
-    pub fn record(&self, attributes: impl IntoIterator<Item = KeyValue>) {
+    /// Adds the attributes `attributes` builds to the call's span; they are
+    /// not built at all when tracing is off.
+    pub fn record<I: IntoIterator<Item = KeyValue>>(&self, attributes: impl FnOnce() -> I) {
         if let Some((_, cx)) = &self.inner {
-            cx.span().set_attributes(attributes);
+            cx.span().set_attributes(attributes());
         }
     }
 
