@@ -86,7 +86,9 @@ fn backtest(c: &mut Criterion) {
     let panel = synthetic_panel(540, 540, 50);
     let s = ValidSettings::default();
     let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
-    let spec = BacktestSpec { baselines: false, sweep_max_k: 0, threads, ..BacktestSpec::default() };
+    let spec = BacktestSpec { baselines: false, sweep_max_k: Some(0), threads, ..BacktestSpec::default() }
+        .check(&panel, &s)
+        .expect("a valid specification");
     group.bench_function("configured", |b| {
         b.iter(|| black_box(evaluate::run(&panel, &s, &spec, &|_| {}, &estimator::Stop::never()).expect("runs")))
     });

@@ -29,11 +29,12 @@ fn main() -> anyhow::Result<()> {
     }
     let fit = s.elapsed().as_secs_f64() / reps as f64;
 
-    let configured = BacktestSpec { baselines: false, sweep_max_k: 0, threads, ..BacktestSpec::default() };
+    let configured = BacktestSpec { baselines: false, sweep_max_k: Some(0), threads, ..BacktestSpec::default() }
+        .check(&panel, &settings)?;
     let s = Instant::now();
     let r = evaluate::run(&panel, &settings, &configured, &|_| {}, &Stop::never())?;
     let alone = s.elapsed().as_secs_f64();
-    let full = BacktestSpec { threads, ..BacktestSpec::default() };
+    let full = BacktestSpec { threads, ..BacktestSpec::default() }.check(&panel, &settings)?;
     let s = Instant::now();
     evaluate::run(&panel, &settings, &full, &|_| {}, &Stop::never())?;
     let all = s.elapsed().as_secs_f64();

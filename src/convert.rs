@@ -78,9 +78,15 @@ pub fn settings_to_proto(s: &Settings) -> proto::Settings {
     } = s.clone();
     proto::Settings {
         scaling: scaling_to_proto(scaling).into(),
-        components: components.fixed(),
+        components_choice: Some(match components {
+            Choice::Auto => proto::settings::ComponentsChoice::ComponentsAuto(true),
+            Choice::Fixed(k) => proto::settings::ComponentsChoice::Components(k),
+        }),
         max_components: Some(max_components),
-        kappa: kappa.fixed(),
+        kappa_choice: Some(match kappa {
+            Choice::Auto => proto::settings::KappaChoice::KappaAuto(true),
+            Choice::Fixed(k) => proto::settings::KappaChoice::Kappa(k),
+        }),
         kappa_grid_min: Some(kappa_grid_min),
         kappa_grid_max: Some(kappa_grid_max),
         kappa_grid_points: Some(kappa_grid_points),
@@ -111,9 +117,9 @@ fn unknown_enum(field: &'static str, value: i32) -> SettingsError {
 pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Settings, SettingsError> {
     let proto::Settings {
         scaling,
-        components,
+        components_choice,
         max_components,
-        kappa,
+        kappa_choice,
         kappa_grid_min,
         kappa_grid_max,
         kappa_grid_points,
@@ -132,6 +138,11 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
         held_out_check,
     } = *p;
     let mut s = base.clone();
+    let auto_false = |field: &'static str| SettingsError::InvalidValue {
+        field,
+        value: "false".into(),
+        reason: "set it to true for cross-validation, or leave the choice unset for the server's default".into(),
+    };
     s.scaling = match proto::Scaling::try_from(scaling).map_err(|_| unknown_enum("scaling", scaling))? {
         proto::Scaling::Unspecified => base.scaling,
         proto::Scaling::Sharpe => Scaling::Sharpe,
@@ -170,8 +181,18 @@ pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Setti
         proto::Method::KnsRidge => Method::KnsRidge,
         proto::Method::PlugInLedoitWolf => Method::PlugInLedoitWolf,
     };
-    s.components = components.map_or(Choice::Auto, Choice::Fixed);
-    s.kappa = kappa.map_or(Choice::Auto, Choice::Fixed);
+    s.components = match components_choice {
+        None => base.components,
+        Some(proto::settings::ComponentsChoice::Components(k)) => Choice::Fixed(k),
+        Some(proto::settings::ComponentsChoice::ComponentsAuto(true)) => Choice::Auto,
+        Some(proto::settings::ComponentsChoice::ComponentsAuto(false)) => return Err(auto_false("components_auto")),
+    };
+    s.kappa = match kappa_choice {
+        None => base.kappa,
+        Some(proto::settings::KappaChoice::Kappa(k)) => Choice::Fixed(k),
+        Some(proto::settings::KappaChoice::KappaAuto(true)) => Choice::Auto,
+        Some(proto::settings::KappaChoice::KappaAuto(false)) => return Err(auto_false("kappa_auto")),
+    };
     s.max_components = max_components.unwrap_or(base.max_components);
     s.kappa_grid_min = kappa_grid_min.unwrap_or(base.kappa_grid_min);
     s.kappa_grid_max = kappa_grid_max.unwrap_or(base.kappa_grid_max);
@@ -331,9 +352,9 @@ pub fn settings_to_proto_only(s: &Settings, keys: &[&str]) -> proto::Settings {
         match k {
             "method" => out.method = full.method,
             "scaling" => out.scaling = full.scaling,
-            "components" => out.components = full.components,
+            "components" => out.components_choice = full.components_choice,
             "max_components" => out.max_components = full.max_components,
-            "kappa" => out.kappa = full.kappa,
+            "kappa" => out.kappa_choice = full.kappa_choice,
             "kappa_grid_min" => out.kappa_grid_min = full.kappa_grid_min,
             "kappa_grid_max" => out.kappa_grid_max = full.kappa_grid_max,
             "kappa_grid_points" => out.kappa_grid_points = full.kappa_grid_points,
@@ -392,7 +413,7 @@ pub fn backtest_request_into_parts(
         step: if step == 0 { d.step } else { step as usize },
         cost_bps: cost_bps.unwrap_or(d.cost_bps),
         cer_risk_aversion: cer_risk_aversion.unwrap_or(d.cer_risk_aversion),
-        sweep_max_k: sweep_max_k.map_or(d.sweep_max_k, |k| k as usize),
+        sweep_max_k: sweep_max_k.map(|k| k as usize),
         benchmark_sets: benchmark_sets.into_iter().map(|b| b.names).collect(),
         nw_lag: None,
         baselines: !skip_baselines,
@@ -497,6 +518,7 @@ mod tests {
         let p = settings_to_proto_only(&s, &["scaling"]);
         assert_eq!(p.scaling, proto::Scaling::Covariance as i32);
         assert_eq!(p.folds, None);
+        assert_eq!(p.components_choice, None);
         // Every key of Settings is handled.
         let all = settings_to_proto_only(&s, &Settings::KEYS);
         assert_eq!(all, settings_to_proto(&s));

@@ -69,9 +69,9 @@ struct BacktestArgs {
     /// Risk aversion of the certainty-equivalent return.
     #[arg(long, default_value_t = 3.0)]
     cer_risk_aversion: f64,
-    /// Largest K of the OOS Sharpe-against-K sweep (0 = no sweep).
-    #[arg(long, default_value_t = 10)]
-    sweep_max_k: usize,
+    /// Largest K of the OOS Sharpe-against-K sweep (0 = no sweep; default 10, lowered to what the window supports).
+    #[arg(long)]
+    sweep_max_k: Option<usize>,
     /// Only the configured method, no baselines.
     #[arg(long)]
     no_baselines: bool,
@@ -444,8 +444,24 @@ fn describe_status(s: &tonic::Status) -> String {
     out
 }
 
+/// A backtest option error in the command line's words: `--sweep-max-k`, not `sweep_max_k`.
+fn cli_option_error(e: &keelson::evaluate::BacktestError) -> String {
+    match e {
+        keelson::evaluate::BacktestError::Spec { field, reason } => {
+            let flag = match field.split_once('[').map_or(field.as_str(), |(f, _)| f) {
+                "benchmark_sets" => "benchmarks".to_owned(),
+                f => f.replace('_', "-"),
+            };
+            format!("--{flag}: {reason}")
+        }
+        other => other.to_string(),
+    }
+}
+
 async fn call(a: CallArgs) -> anyhow::Result<ExitCode> {
     let (settings, keys) = resolve_settings(None, &a.set)?;
+    // The same checks as `fit`, before anything is sent: a bad setting is a usage error.
+    settings.clone().check()?;
     let settings_msg = settings_to_proto_only(&settings, &keys);
     let csv = read_window(&a.window)?;
     let mut request = tonic::Request::new(request_from_panel(&csv.panel, settings_msg, &a.request_id));
@@ -546,12 +562,6 @@ fn backtest(a: BacktestArgs) -> anyhow::Result<ExitCode> {
     use std::io::IsTerminal as _;
     let (settings, _) = resolve_settings(a.settings.config.as_ref(), &a.settings.set)?;
     let settings = settings.check()?;
-    if !a.cost_bps.is_finite() || a.cost_bps < 0.0 {
-        return Err(UsageError(format!("--cost-bps {}: must be a non-negative number", a.cost_bps)).into());
-    }
-    if !(a.cer_risk_aversion.is_finite() && a.cer_risk_aversion > 0.0) {
-        return Err(UsageError(format!("--cer-risk-aversion {}: must be positive", a.cer_risk_aversion)).into());
-    }
     let csv = read_window(&a.window)?;
     let market_name = a.window.market.clone();
     let benchmark_sets = a
@@ -579,6 +589,7 @@ fn backtest(a: BacktestArgs) -> anyhow::Result<ExitCode> {
         baselines: !a.no_baselines,
         threads: usize::from(a.threads),
     };
+    let spec = spec.check(&csv.panel, &settings).map_err(|e| UsageError(cli_option_error(&e)))?;
     let tty = std::io::stderr().is_terminal();
     let progress = |p: keelson::evaluate::Progress| {
         if tty && (p.done.is_multiple_of(20) || p.done == p.total) {
@@ -630,7 +641,9 @@ fn demo_backtest(settings: &estimator::ValidSettings, dir: &std::path::Path) -> 
         step: 3,
         threads: std::thread::available_parallelism().map_or(1, |n| n.get()),
         ..keelson::evaluate::BacktestSpec::default()
-    };
+    }
+    .check(&history, settings)
+    .context("checking the demo backtest")?;
     print(&format!(
         "Backtest: {} months of invented history, {}-month rolling windows refitted every {} months, \
          the method beside its baselines (net of {} bp costs)…\n",

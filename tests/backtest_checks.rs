@@ -61,11 +61,13 @@ fn real_data_backtest_matches_independent_numpy_backtest() {
             window: case["window"].as_u64().unwrap() as usize,
             step: case["step"].as_u64().unwrap() as usize,
             baselines: false,
-            sweep_max_k: 0,
+            sweep_max_k: Some(0),
             threads: 2,
             ..BacktestSpec::default()
         };
-        let r = evaluate::run(&panel, &s.check().unwrap(), &spec, &no_progress, &Stop::never()).unwrap();
+        let s = s.check().unwrap();
+        let spec = spec.check(&panel, &s).unwrap();
+        let r = evaluate::run(&panel, &s, &spec, &no_progress, &Stop::never()).unwrap();
         let want = nums(&case["returns"]);
         let got = &r.strategies[0].returns;
         assert_eq!(got.len(), want.len());
@@ -143,10 +145,10 @@ fn inference_matches_statsmodels_linearmodels_scipy_and_formulas() {
 fn parallel_backtest_is_identical_to_sequential() {
     let panel = synthetic_panel(8, 150, 14);
     let s = Settings::default().check().unwrap();
-    let spec = BacktestSpec { window: 60, step: 2, sweep_max_k: 3, ..BacktestSpec::default() };
-    let one =
-        evaluate::run(&panel, &s, &BacktestSpec { threads: 1, ..spec.clone() }, &no_progress, &Stop::never()).unwrap();
-    let three = evaluate::run(&panel, &s, &BacktestSpec { threads: 3, ..spec }, &no_progress, &Stop::never()).unwrap();
+    let spec = BacktestSpec { window: 60, step: 2, sweep_max_k: Some(3), ..BacktestSpec::default() };
+    let with_threads = |threads| BacktestSpec { threads, ..spec.clone() }.check(&panel, &s).unwrap();
+    let one = evaluate::run(&panel, &s, &with_threads(1), &no_progress, &Stop::never()).unwrap();
+    let three = evaluate::run(&panel, &s, &with_threads(3), &no_progress, &Stop::never()).unwrap();
     let json = |r: &evaluate::BacktestResult| {
         serde_json::to_string(&(&r.strategies, &r.sweep, &r.comparisons, &r.alphas, &r.pricing, r.psr, r.dsr)).unwrap()
     };
@@ -161,8 +163,9 @@ fn no_look_ahead() {
     // Changing returns from period t on cannot change any out-of-sample return before t.
     let panel = synthetic_panel(9, 130, 10);
     let s = Settings::default().check().unwrap();
-    let spec = BacktestSpec { window: 60, sweep_max_k: 0, ..BacktestSpec::default() };
-    let base = evaluate::run(&panel, &s, &spec, &no_progress, &Stop::never()).unwrap();
+    let spec = BacktestSpec { window: 60, sweep_max_k: Some(0), ..BacktestSpec::default() };
+    let base =
+        evaluate::run(&panel, &s, &spec.clone().check(&panel, &s).unwrap(), &no_progress, &Stop::never()).unwrap();
     let cut = 100;
     let mut future = panel.clone();
     for v in &mut future.returns[cut * panel.cols..] {
@@ -173,7 +176,7 @@ fn no_look_ahead() {
             *v *= 2.0;
         }
     }
-    let changed = evaluate::run(&future, &s, &spec, &no_progress, &Stop::never()).unwrap();
+    let changed = evaluate::run(&future, &s, &spec.check(&future, &s).unwrap(), &no_progress, &Stop::never()).unwrap();
     for (a, b) in base.strategies.iter().zip(&changed.strategies) {
         assert_eq!(a.returns[..cut - 60], b.returns[..cut - 60], "{}", a.name);
         assert_ne!(a.returns[cut - 60 + 1..], b.returns[cut - 60 + 1..], "{}: the change must matter later", a.name);
@@ -184,7 +187,9 @@ fn no_look_ahead() {
 fn bad_specifications_are_named() {
     let panel = synthetic_panel(10, 80, 6);
     let s = Settings::default().check().unwrap();
-    let run = |spec: BacktestSpec| evaluate::run(&panel, &s, &spec, &no_progress, &Stop::never());
+    let run = |spec: BacktestSpec| {
+        spec.check(&panel, &s).and_then(|spec| evaluate::run(&panel, &s, &spec, &no_progress, &Stop::never()))
+    };
     let e = run(BacktestSpec { window: 100, ..BacktestSpec::default() }).unwrap_err();
     assert!(e.to_string().contains("`window`"), "{e}");
     let e = run(BacktestSpec { window: 40, step: 0, ..BacktestSpec::default() }).unwrap_err();

@@ -281,8 +281,9 @@ fn backtest_writes_report_summary_and_returns() {
         "--out",
         out.to_str().unwrap(),
     ]);
-    assert_eq!(bad.status.code(), Some(1));
-    assert!(stderr(&bad).contains("`window`"), "{}", stderr(&bad));
+    // A backtest option out of range is a usage error (exit 2) naming the flag.
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(stderr(&bad).contains("--window"), "{}", stderr(&bad));
     let bad = keelson(&[
         "backtest",
         "--returns",
@@ -294,6 +295,6 @@ fn backtest_writes_report_summary_and_returns() {
         "--out",
         out.to_str().unwrap(),
     ]);
-    assert_eq!(bad.status.code(), Some(1));
-    assert!(stderr(&bad).contains("nope"));
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(stderr(&bad).contains("--benchmarks") && stderr(&bad).contains("nope"), "{}", stderr(&bad));
 }

@@ -211,11 +211,17 @@ fn bad_input_returns_invalid_argument_with_field_violations() {
         expect_invalid(&mut c, r, "settings.folds", "SETTING_OUT_OF_RANGE").await;
 
         let mut r = base();
-        r.settings = Some(proto::Settings { kappa: Some(f64::NAN), ..Default::default() });
+        r.settings = Some(proto::Settings {
+            kappa_choice: Some(proto::settings::KappaChoice::Kappa(f64::NAN)),
+            ..Default::default()
+        });
         expect_invalid(&mut c, r, "settings.kappa", "SETTING_OUT_OF_RANGE").await;
 
         let mut r = base();
-        r.settings = Some(proto::Settings { components: Some(9), ..Default::default() });
+        r.settings = Some(proto::Settings {
+            components_choice: Some(proto::settings::ComponentsChoice::Components(9)),
+            ..Default::default()
+        });
         expect_invalid(&mut c, r, "settings.components", "TOO_MANY_COMPONENTS").await;
 
         let big = synthetic_panel(2, 600, 200);
@@ -364,15 +370,11 @@ fn run_backtest_streams_progress_then_the_library_result() {
         assert!(!progress.is_empty(), "progress messages");
         assert!(progress.windows(2).all(|w| w[0].0 <= w[1].0));
         let result = result.expect("a result message");
-        let spec = keelson::evaluate::BacktestSpec { window: 60, step: 3, sweep_max_k: 3, ..Default::default() };
-        let local = keelson::evaluate::run(
-            &panel,
-            &Settings::default().check().unwrap(),
-            &spec,
-            &|_| {},
-            &estimator::Stop::never(),
-        )
-        .unwrap();
+        let settings = Settings::default().check().unwrap();
+        let spec = keelson::evaluate::BacktestSpec { window: 60, step: 3, sweep_max_k: Some(3), ..Default::default() }
+            .check(&panel, &settings)
+            .unwrap();
+        let local = keelson::evaluate::run(&panel, &settings, &spec, &|_| {}, &estimator::Stop::never()).unwrap();
         let want = keelson::convert::backtest_result_to_proto(&local, "bt-1");
         assert_eq!(result.encode_to_vec(), want.encode_to_vec(), "gRPC backtest equals the library's");
         assert_eq!(result.strategies[0].name, "configured");
@@ -387,8 +389,8 @@ fn run_backtest_rejects_bad_specifications_and_stops_when_cancelled() {
         let mut c = server.client().await;
         let mut bad = backtest_request(&synthetic_panel(13, 50, 5));
         bad.window = 60;
-        let mut s = c.run_backtest(bad).await.unwrap().into_inner();
-        let e = s.message().await.unwrap_err();
+        // The specification is checked before the stream starts.
+        let e = c.run_backtest(bad).await.unwrap_err();
         assert_eq!(e.code(), Code::InvalidArgument, "{}", e.message());
         assert_eq!(e.get_details_bad_request().unwrap().field_violations[0].field, "window");
 

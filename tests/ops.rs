@@ -81,7 +81,11 @@ use common::Server;
 
 fn request() -> ComputeWeightsRequest {
     let panel = synthetic_panel(3, 96, 12);
-    let settings = proto::Settings { components: Some(3), kappa: Some(1.0), ..Default::default() };
+    let settings = proto::Settings {
+        components_choice: Some(proto::settings::ComponentsChoice::Components(3)),
+        kappa_choice: Some(proto::settings::KappaChoice::Kappa(1.0)),
+        ..Default::default()
+    };
     request_from_panel(&panel, settings, "ops")
 }
 

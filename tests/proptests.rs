@@ -54,8 +54,8 @@ fn settings() -> impl Strategy<Value = proto::Settings> {
     )
         .prop_map(|(scaling, components, kappa, cv, norm, folds, l1, method)| proto::Settings {
             scaling,
-            components,
-            kappa,
+            components_choice: components.map(proto::settings::ComponentsChoice::Components),
+            kappa_choice: kappa.map(proto::settings::KappaChoice::Kappa),
             cv_criterion: cv,
             normalization: norm,
             folds,

@@ -210,6 +210,8 @@ pub fn fit_component_sweep(
     let prepared = ComponentFit::prepare(&window, &mom, settings, KPolicy::Fixed(top), options)?;
     let mut out = Vec::with_capacity(ks.len());
     for &k in ks {
+        // The caller chooses how many K to solve: stop between them.
+        options.stop.check()?;
         let mut warnings = Vec::new();
         let r = prepared.solve(settings, KPolicy::Fixed(k), options, &mut warnings).and_then(|model| {
             let direction = direction_of(&model);

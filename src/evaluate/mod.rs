@@ -7,7 +7,10 @@
 //! over [t, t + step); the out-of-sample return is p_t = w'r_t + w_m m_t. No
 //! step of a fit sees a period at or after t.
 
+pub mod spec;
 pub mod stats;
+
+pub use spec::{BacktestBudget, BacktestSpec, ValidBacktestSpec};
 
 use std::sync::atomic::{AtomicUsize, Ordering};
 
@@ -21,49 +24,6 @@ use crate::estimator::{
 /// Name of the market as a benchmark and as a strategy.
 pub const MARKET: &str = "market";
 
-/// How a backtest runs. Defaults: 120-period rolling window, monthly refits.
-#[derive(Clone, Debug, PartialEq, Serialize)]
-pub struct BacktestSpec {
-    /// Estimation window length L (the minimum length when expanding).
-    pub window: usize,
-    /// Expanding instead of rolling windows.
-    pub expanding: bool,
-    /// Refit every `step` periods.
-    pub step: usize,
-    /// Linear trading cost in basis points of turnover.
-    pub cost_bps: f64,
-    /// Risk aversion γ of the certainty-equivalent return.
-    pub cer_risk_aversion: f64,
-    /// Largest K of the OOS-Sharpe-against-K sweep (0 turns the sweep off).
-    pub sweep_max_k: usize,
-    /// Benchmark sets for alphas: names of factors or [`MARKET`]. The market
-    /// alone is always added when the panel has a market.
-    pub benchmark_sets: Vec<Vec<String>>,
-    /// Newey–West lag; `None` = ⌊4(T/100)^{2/9}⌋.
-    pub nw_lag: Option<usize>,
-    /// Also run every baseline strategy.
-    pub baselines: bool,
-    /// Worker threads over refit dates (results do not depend on it).
-    pub threads: usize,
-}
-
-impl Default for BacktestSpec {
-    fn default() -> Self {
-        BacktestSpec {
-            window: 120,
-            expanding: false,
-            step: 1,
-            cost_bps: 10.0,
-            cer_risk_aversion: 3.0,
-            sweep_max_k: 10,
-            benchmark_sets: Vec::new(),
-            nw_lag: None,
-            baselines: true,
-            threads: 1,
-        }
-    }
-}
-
 /// A backtest that cannot run.
 #[derive(Debug, Error)]
 #[non_exhaustive]
@@ -71,8 +31,8 @@ pub enum BacktestError {
     /// The specification does not fit the panel.
     #[error("backtest `{field}`: {reason}")]
     Spec {
-        /// Offending option.
-        field: &'static str,
+        /// Offending option, as the request names it.
+        field: String,
         /// Why.
         reason: String,
     },
@@ -333,6 +293,20 @@ fn label(panel: &ReturnPanel, t: usize) -> String {
     panel.period_labels.get(t).cloned().unwrap_or_else(|| format!("#{t}"))
 }
 
+/// What the return series need of a fit: weights, K, κ, no loadings.
+fn held_weights(ws: &WeightSet) -> Held {
+    Held {
+        weights: ws.factors.iter().map(|f| f.weight).collect(),
+        market: ws.market_weight,
+        k: ws.diagnostics.num_components,
+        kappa: ws.diagnostics.kappa,
+        top_share: ws.diagnostics.top_sharpe_gross_share,
+        components: Vec::new(),
+        betas: Vec::new(),
+    }
+}
+
+/// [`held_weights`] with the component loadings and betas, for the pricing test.
 fn held_from(ws: &WeightSet) -> Held {
     Held {
         weights: ws.factors.iter().map(|f| f.weight).collect(),
@@ -355,47 +329,24 @@ fn held_from(ws: &WeightSet) -> Held {
 pub fn run(
     panel: &ReturnPanel,
     configured: &ValidSettings,
-    spec: &BacktestSpec,
+    spec: &ValidBacktestSpec,
     progress: &(dyn Fn(Progress) + Sync),
     stop: &Stop,
 ) -> Result<BacktestResult, BacktestError> {
+    if !spec.fits_shape(panel) {
+        return Err(BacktestError::Spec {
+            field: "returns".into(),
+            reason: "the specification was checked against a history of another shape".into(),
+        });
+    }
     let t_all = panel.rows;
-    let spec_err = |field, reason: String| BacktestError::Spec { field, reason };
-    if spec.step == 0 {
-        return Err(spec_err("step", "must be at least 1".into()));
-    }
-    if spec.window < 3 {
-        return Err(spec_err("window", "must be at least 3 periods".into()));
-    }
-    if panel.returns.len() != panel.rows * panel.cols || panel.cols == 0 {
-        return Err(spec_err("returns", format!("{} values for {} × {}", panel.returns.len(), panel.rows, panel.cols)));
-    }
-    if t_all <= spec.window {
-        return Err(spec_err(
-            "window",
-            format!("{} periods leave nothing out of sample after a {}-period window", t_all, spec.window),
-        ));
-    }
-    let mut benchmark_sets: Vec<Vec<String>> = Vec::new();
-    if panel.market.is_some() {
-        benchmark_sets.push(vec![MARKET.to_owned()]);
-    }
-    for set in &spec.benchmark_sets {
-        for name in set {
-            let known = (name == MARKET && panel.market.is_some()) || panel.factor_names.iter().any(|f| f == name);
-            if !known {
-                return Err(spec_err("benchmarks", format!("no factor or market named \"{name}\"")));
-            }
-        }
-        if !set.is_empty() && !benchmark_sets.contains(set) {
-            benchmark_sets.push(set.clone());
-        }
-    }
+    let benchmark_sets = spec.benchmark_sets();
     let p = f64::from(configured.periods_per_year);
     let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
     let dates: Vec<usize> = (spec.window..t_all).step_by(spec.step).collect();
-    let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k).collect();
-    let sweep_scalings: Vec<Scaling> = if spec.sweep_max_k > 0 && configured.method == Method::Components {
+    // Bounded by check(): at most the window's rank and settings.max_components.
+    let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k()).collect();
+    let sweep_scalings: Vec<Scaling> = if spec.sweep_max_k() > 0 && configured.method == Method::Components {
         Scaling::ALL.to_vec()
     } else {
         Vec::new()
@@ -404,7 +355,7 @@ pub fn run(
     let total = dates.len() * per_date;
     let done = AtomicUsize::new(0);
 
-    type DateOut = (Vec<Held>, Vec<Vec<Option<Held>>>, Option<WeightSet>);
+    type DateOut = (Vec<Held>, Vec<Vec<Option<Held>>>, Option<Held>, Option<WeightSet>);
     let fit_date = |d: usize| -> Result<DateOut, BacktestError> {
         let t = dates[d];
         let start = if spec.expanding { 0 } else { t - spec.window };
@@ -429,7 +380,8 @@ pub fn run(
                 },
                 Some(settings) => {
                     let ws = estimator::fit_with(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
-                    let h = held_from(&ws);
+                    // Only the configured fits feed the pricing test: the others keep no loadings.
+                    let h = if i == 0 { held_from(&ws) } else { held_weights(&ws) };
                     if i == 0 && d + 1 == dates.len() {
                         last = Some(ws);
                     }
@@ -441,17 +393,24 @@ pub fn run(
             progress(Progress { done: n, total });
         }
         let mut sweep = Vec::with_capacity(sweep_scalings.len());
+        let mut basis = None;
         for &sc in &sweep_scalings {
             let mut s = configured.settings().clone();
             s.scaling = sc;
             let settings = s.check().map_err(|e| wrap("sweep", e.into()))?;
             let fits =
                 estimator::fit_component_sweep(&window, &settings, &sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
-            sweep.push(fits.into_iter().map(|r| r.ok().map(|ws| held_from(&ws))).collect());
+            // The fixed-K fits of one window share one basis, so the largest
+            // K's loadings hold every smaller K's: keep only those, and only
+            // for the configured scaling (the pricing test's fallback).
+            if sc == configured.scaling {
+                basis = fits.iter().rev().find_map(|r| r.as_ref().ok()).map(held_from);
+            }
+            sweep.push(fits.iter().map(|r| r.as_ref().ok().map(held_weights)).collect());
             let n = done.fetch_add(1, Ordering::Relaxed) + 1;
             progress(Progress { done: n, total });
         }
-        Ok((held, sweep, last))
+        Ok((held, sweep, basis, last))
     };
 
     // Refit dates are independent: split them across threads, keep date order.
@@ -482,9 +441,11 @@ pub fn run(
     };
     let mut per_date_held = Vec::with_capacity(dates.len());
     let mut per_date_sweep = Vec::with_capacity(dates.len());
+    let mut per_date_basis = Vec::with_capacity(dates.len());
     let mut last_fit = None;
     for r in results {
-        let (h, s, l) = r?;
+        let (h, s, b, l) = r?;
+        per_date_basis.push(b);
         per_date_held.push(h);
         per_date_sweep.push(s);
         if l.is_some() {
@@ -592,7 +553,7 @@ pub fn run(
         Some(oos.iter().map(|&t| panel.returns[t * cols + j]).collect())
     };
     let mut alphas = Vec::new();
-    for set in &benchmark_sets {
+    for set in benchmark_sets {
         let xs: Option<Vec<Vec<f64>>> = set.iter().map(|n| series_of(n)).collect();
         let Some(xs) = xs else { continue };
         if xs.iter().any(|x| x.iter().any(|v| !v.is_finite())) {
@@ -615,9 +576,10 @@ pub fn run(
     // The pricing test needs the same K components at every refit: the
     // configured fits when they have them, else the sweep's fixed-K fits.
     let sweep_index = sweep_scalings.iter().position(|&sc| sc == configured.scaling);
-    let pricing = pricing_test(panel, &per_date_held, &per_date_sweep, sweep_index, &oos, date_of, lag, configured);
+    let sweep_fits = SweepFits { fits: &per_date_sweep, basis: &per_date_basis, index: sweep_index };
+    let pricing = pricing_test(panel, &per_date_held, &sweep_fits, &oos, date_of, lag, configured);
     Ok(BacktestResult {
-        spec: spec.clone(),
+        spec: spec.spec().clone(),
         periods_per_year: configured.periods_per_year,
         periods,
         refits: dates.len(),
@@ -634,17 +596,23 @@ pub fn run(
     })
 }
 
+/// The sweep's fixed-K fits per date and scaling, and per date the loadings
+/// of the configured scaling's largest fitted K.
+struct SweepFits<'a> {
+    fits: &'a [Vec<Vec<Option<Held>>>],
+    basis: &'a [Option<Held>],
+    index: Option<usize>,
+}
+
 /// Time-series regressions of every factor observed throughout the
 /// out-of-sample span on the out-of-sample returns of the configured
 /// scaling's first K components (and the market, when there is one); K is
 /// the one the configured method chose most often, at most the sweep's
 /// largest K when the configured fits do not all have that many.
-#[allow(clippy::too_many_arguments)]
 fn pricing_test(
     panel: &ReturnPanel,
     held: &[Vec<Held>],
-    sweep: &[Vec<Vec<Option<Held>>>],
-    sweep_index: Option<usize>,
+    sweep: &SweepFits<'_>,
     oos: &[usize],
     date_of: impl Fn(usize) -> usize,
     lag: usize,
@@ -661,13 +629,18 @@ fn pricing_test(
     let fits: Vec<&Held> = if held.iter().all(|h| h[0].components.len() >= k) {
         held.iter().map(|h| &h[0]).collect()
     } else {
-        // The sweep holds fixed-K fits up to its largest K.
-        let si = sweep_index?;
-        k = k.min(sweep.first().and_then(|d| d.get(si)).map_or(0, Vec::len));
+        // The sweep holds fixed-K fits up to its largest K; every date must
+        // have the K-component fit, whose loadings are the first K of the basis.
+        let si = sweep.index?;
+        k = k.min(sweep.fits.first().and_then(|d| d.get(si)).map_or(0, Vec::len));
         if k == 0 {
             return None;
         }
-        sweep.iter().map(|d| d.get(si).and_then(|ks| ks.get(k - 1)).and_then(Option::as_ref)).collect::<Option<_>>()?
+        let all_fit = sweep.fits.iter().all(|d| d.get(si).and_then(|ks| ks.get(k - 1)).is_some_and(Option::is_some));
+        if !all_fit {
+            return None;
+        }
+        sweep.basis.iter().map(Option::as_ref).collect::<Option<_>>()?
     };
     let cols = panel.cols;
     let m = panel.market.as_deref();

@@ -42,6 +42,13 @@ pub struct ServerSection {
     pub max_cells: usize,
     /// Largest number of factors per request.
     pub max_factors: usize,
+    /// Most estimator fits one `RunBacktest` may need (refit dates × the
+    /// strategies and sweep points per date); more → RESOURCE_EXHAUSTED
+    /// before any work.
+    pub max_backtest_fits: u64,
+    /// Largest estimated peak memory of one request, bytes; more →
+    /// RESOURCE_EXHAUSTED before any work.
+    pub max_request_bytes_estimate: u64,
     /// Requests admitted at once (computing or queued); more are shed with RESOURCE_EXHAUSTED.
     pub max_in_flight: usize,
     /// Requests computed in parallel on the blocking pool; 0 = number of CPUs.
@@ -71,6 +78,16 @@ impl Default for ServerSection {
             max_message_bytes: 64 * 1024 * 1024,
             max_cells: 4_000_000,
             max_factors: 10_000,
+            // A 50-year monthly research backtest with every baseline and the
+            // sweep up to K = 10 is 600 × (10 + 50) = 36,000 fits; daily refits
+            // over 30 years (6,300 dates) of the configured method with every
+            // baseline is 63,000. 250,000 admits both with room, and at the
+            // ~2 ms of a 50 × 120 fit is about the default 10-minute time limit
+            // of one worker: a larger backtest would time out anyway.
+            max_backtest_fits: 250_000,
+            // The shipped pod has 1 GiB and 2 workers: two requests at their
+            // limit, plus 64 MiB messages in and out, stay inside it.
+            max_request_bytes_estimate: 256 * 1024 * 1024,
             max_in_flight: 64,
             workers: 0,
             request_timeout_ms: 30_000,
@@ -341,6 +358,8 @@ impl ServerConfig {
         positive("server.max_message_bytes", s.max_message_bytes as u64)?;
         positive("server.max_cells", s.max_cells as u64)?;
         positive("server.max_factors", s.max_factors as u64)?;
+        positive("server.max_backtest_fits", s.max_backtest_fits)?;
+        positive("server.max_request_bytes_estimate", s.max_request_bytes_estimate)?;
         positive("server.max_in_flight", s.max_in_flight as u64)?;
         positive("server.request_timeout_ms", s.request_timeout_ms)?;
         positive("server.backtest_timeout_ms", s.backtest_timeout_ms)?;

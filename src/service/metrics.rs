@@ -133,6 +133,8 @@ pub enum ShedReason {
     Overloaded,
     /// Shutting down.
     Draining,
+    /// Its estimated work or memory is above the server's budget.
+    OverBudget,
 }
 
 #[derive(Debug, Default)]
@@ -148,6 +150,8 @@ pub struct Metrics {
     calls: Mutex<Calls>,
     shed_overloaded: AtomicU64,
     shed_draining: AtomicU64,
+    shed_budget: AtomicU64,
+    panics: AtomicU64,
     cells: Mutex<Histogram>,
     phases: Mutex<BTreeMap<&'static str, Histogram>>,
     started_at: SystemTime,
@@ -159,6 +163,8 @@ impl Default for Metrics {
             calls: Mutex::default(),
             shed_overloaded: AtomicU64::new(0),
             shed_draining: AtomicU64::new(0),
+            shed_budget: AtomicU64::new(0),
+            panics: AtomicU64::new(0),
             cells: Mutex::new(Histogram::new(&CELL_BUCKETS)),
             phases: Mutex::default(),
             started_at: SystemTime::now(),
@@ -205,7 +211,13 @@ impl Metrics {
         match reason {
             ShedReason::Overloaded => self.shed_overloaded.fetch_add(1, Ordering::Relaxed),
             ShedReason::Draining => self.shed_draining.fetch_add(1, Ordering::Relaxed),
+            ShedReason::OverBudget => self.shed_budget.fetch_add(1, Ordering::Relaxed),
         };
+    }
+
+    /// Counts a request whose computation panicked.
+    pub fn panicked(&self) {
+        self.panics.fetch_add(1, Ordering::Relaxed);
     }
 
     /// Records the size of an admitted problem.
@@ -272,6 +284,14 @@ impl Metrics {
             "keelson_requests_shed_total{{reason=\"draining\"}} {}",
             self.shed_draining.load(Ordering::Relaxed)
         );
+        let _ = writeln!(
+            out,
+            "keelson_requests_shed_total{{reason=\"over_budget\"}} {}",
+            self.shed_budget.load(Ordering::Relaxed)
+        );
+        out.push_str("# HELP keelson_request_panics_total Requests whose computation panicked (answered INTERNAL).\n");
+        out.push_str("# TYPE keelson_request_panics_total counter\n");
+        let _ = writeln!(out, "keelson_request_panics_total {}", self.panics.load(Ordering::Relaxed));
         out.push_str(
             "# HELP keelson_computations_stopped_early_total Computations stopped by a deadline or a cancellation.\n",
         );

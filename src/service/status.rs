@@ -35,6 +35,23 @@ pub enum ServiceError {
         /// What is measured.
         what: &'static str,
     },
+    /// A backtest's estimated work or memory is above the server's budget.
+    #[error(
+        "the backtest needs an estimated {value} {what} ({refits} refit dates), above the server limit of {limit} \
+         ({key}); use a longer step, a shorter history, fewer baselines or a smaller sweep"
+    )]
+    OverBudget {
+        /// What is over: `fits` or `bytes`.
+        what: &'static str,
+        /// The estimate.
+        value: u64,
+        /// The configured limit.
+        limit: u64,
+        /// The configuration key of the limit.
+        key: &'static str,
+        /// Refit dates of the request.
+        refits: u64,
+    },
     /// More requests are in flight than the server admits.
     #[error("the server is at its limit of {limit} requests in flight; retry with backoff")]
     Overloaded {
@@ -59,6 +76,26 @@ pub enum ServiceError {
     /// A bug: a worker task failed.
     #[error("internal error: {0}")]
     Internal(String),
+}
+
+impl ServiceError {
+    /// Whether the computation stopped early on a deadline or a cancellation.
+    pub fn stopped_early(&self) -> bool {
+        matches!(
+            self,
+            ServiceError::Estimate(EstimateError::Cancelled | EstimateError::DeadlineExceeded)
+                | ServiceError::Backtest(crate::evaluate::BacktestError::Stopped(_))
+        )
+    }
+
+    /// Whether the computation stopped because its deadline passed.
+    pub fn deadline_exceeded(&self) -> bool {
+        matches!(
+            self,
+            ServiceError::Estimate(EstimateError::DeadlineExceeded)
+                | ServiceError::Backtest(crate::evaluate::BacktestError::Stopped(EstimateError::DeadlineExceeded))
+        )
+    }
 }
 
 fn violation_path(at: &Location, cols: Option<usize>) -> String {
@@ -190,9 +227,9 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
         ServiceError::Backtest(b) => match b {
             crate::evaluate::BacktestError::Spec { field, .. } => invalid(
                 "INVALID_BACKTEST",
-                (*field).to_owned(),
+                field.clone(),
                 b.to_string(),
-                HashMap::from([("field".to_owned(), (*field).to_owned())]),
+                HashMap::from([("field".to_owned(), field.clone())]),
             ),
             crate::evaluate::BacktestError::Window { source, strategy, period } => {
                 let mut st = to_status(&ServiceError::Estimate(source.clone()), cols);
@@ -217,6 +254,21 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
             d.set_error_info("REQUEST_TOO_LARGE", ERROR_DOMAIN, HashMap::from([("field".into(), (*field).into())]));
             d
         }),
+        ServiceError::OverBudget { what, value, limit, key, refits } => Status::with_error_details(
+            Code::ResourceExhausted,
+            err.to_string(),
+            ErrorDetails::with_error_info(
+                "REQUEST_OVER_BUDGET",
+                ERROR_DOMAIN,
+                HashMap::from([
+                    ("what".to_owned(), (*what).to_owned()),
+                    ("estimate".to_owned(), value.to_string()),
+                    ("limit".to_owned(), limit.to_string()),
+                    ("limit_key".to_owned(), (*key).to_owned()),
+                    ("refits".to_owned(), refits.to_string()),
+                ]),
+            ),
+        ),
         ServiceError::Overloaded { .. } => with_info(Code::ResourceExhausted, "OVERLOADED", err.to_string()),
         ServiceError::Draining => with_info(Code::Unavailable, "DRAINING", err.to_string()),
         ServiceError::ServerTimeout { .. } => with_info(Code::DeadlineExceeded, "SERVER_TIMEOUT", err.to_string()),

@@ -1,0 +1,195 @@
+//! The one runner behind both computing RPCs: a worker slot within the
+//! deadline, the computation on the blocking pool with a stop flag that the
+//! deadline and a departing client both set, timeout classification
+//! (the client's deadline → DEADLINE_EXCEEDED, the server's own limit →
+//! SERVER_TIMEOUT), and panics kept inside the request.
+
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+use super::WeightsApi;
+use super::status::ServiceError;
+use crate::estimator::Stop;
+
+/// In debug builds only, a request with this id panics inside its
+/// computation, so that tests can check that a panic stays inside the
+/// request. Release builds ignore it.
+pub const PANIC_PROBE_REQUEST_ID: &str = "keelson-debug-panic-probe";
+
+/// Parses the `grpc-timeout` header (gRPC over HTTP/2 spec: 1–8 digits and a
+/// unit H, M, S, m, u or n).
+pub(super) fn grpc_timeout(meta: &tonic::metadata::MetadataMap) -> Option<Duration> {
+    let v = meta.get("grpc-timeout")?.to_str().ok()?;
+    if v.len() < 2 || v.len() > 9 {
+        return None;
+    }
+    let (digits, unit) = v.split_at(v.len() - 1);
+    let n: u64 = digits.parse().ok()?;
+    Some(match unit {
+        "H" => Duration::from_secs(n.saturating_mul(3600)),
+        "M" => Duration::from_secs(n.saturating_mul(60)),
+        "S" => Duration::from_secs(n),
+        "m" => Duration::from_millis(n),
+        "u" => Duration::from_micros(n),
+        "n" => Duration::from_nanos(n),
+        _ => return None,
+    })
+}
+
+/// Sets the cancellation flag when dropped: with the request's future (the
+/// client went away or the transport timed it out) or with a backtest's
+/// response stream, so that the blocking computation stops at its next check.
+#[derive(Debug)]
+pub(super) struct CancelOnDrop(Arc<AtomicBool>);
+
+impl Drop for CancelOnDrop {
+    fn drop(&mut self) {
+        self.0.store(true, Ordering::Relaxed);
+    }
+}
+
+/// When a request must end, and whose limit that is.
+#[derive(Clone, Copy, Debug)]
+pub(super) struct Deadline {
+    at: Instant,
+    client_binds: bool,
+    limit_ms: u64,
+}
+
+impl Deadline {
+    /// The earlier of the client's deadline and the server's own limit.
+    pub(super) fn new(client_timeout: Option<Duration>, limit_ms: u64) -> Deadline {
+        let server_limit = Duration::from_millis(limit_ms);
+        let client_binds = client_timeout.is_some_and(|c| c < server_limit);
+        let at = Instant::now() + client_timeout.map_or(server_limit, |c| c.min(server_limit));
+        Deadline { at, client_binds, limit_ms }
+    }
+
+    /// The error for a request that ran out of time.
+    fn timed_out(&self) -> ServiceError {
+        if self.client_binds {
+            ServiceError::Estimate(crate::estimator::EstimateError::DeadlineExceeded)
+        } else {
+            ServiceError::ServerTimeout { limit_ms: self.limit_ms }
+        }
+    }
+
+    /// A stop signal for the computation: this deadline, and a flag set
+    /// when the returned guard is dropped.
+    pub(super) fn stop(&self) -> (Stop, CancelOnDrop) {
+        let flag = Arc::new(AtomicBool::new(false));
+        (Stop::never().with_deadline(self.at).with_flag(flag.clone()), CancelOnDrop(flag))
+    }
+}
+
+/// The text of a panic payload.
+fn panic_message(payload: &(dyn std::any::Any + Send)) -> &str {
+    payload
+        .downcast_ref::<&str>()
+        .copied()
+        .or_else(|| payload.downcast_ref::<String>().map(String::as_str))
+        .unwrap_or("a panic without a message")
+}
+
+impl WeightsApi {
+    /// Runs `work` on the blocking pool once a worker slot frees, within
+    /// `deadline`. The slot is released only when the work has really ended
+    /// (a timed-out computation keeps it until it notices its stop flag).
+    ///
+    /// # Errors
+    /// What `work` returns, with a deadline classified as the client's or
+    /// the server's; [`ServiceError::Internal`] when the work panicked (the
+    /// panic is logged and counted, and the server keeps serving).
+    pub(super) async fn run_blocking<T: Send + 'static>(
+        &self,
+        method: &'static str,
+        request_id: &str,
+        deadline: &Deadline,
+        work: impl FnOnce() -> Result<T, ServiceError> + Send + 'static,
+    ) -> Result<T, ServiceError> {
+        let sh = self.shared.clone();
+        let until = tokio::time::Instant::from_std(deadline.at);
+        let worker = tokio::time::timeout_at(until, sh.workers.clone().acquire_owned())
+            .await
+            .map_err(|_| deadline.timed_out())?
+            .map_err(|_| ServiceError::Internal("worker pool closed".into()))?;
+        let probe = cfg!(debug_assertions) && request_id == PANIC_PROBE_REQUEST_ID;
+        let shared = sh.clone();
+        let job = tokio::task::spawn_blocking(move || {
+            let _worker = worker;
+            assert!(!probe, "panic probe requested (debug builds only)");
+            let r = work();
+            if r.as_ref().err().is_some_and(ServiceError::stopped_early) {
+                shared.stopped_early.fetch_add(1, Ordering::Relaxed);
+            }
+            r
+        });
+        match tokio::time::timeout_at(until, job).await {
+            Err(_) => Err(deadline.timed_out()),
+            Ok(Err(join)) if join.is_panic() => {
+                let payload = join.into_panic();
+                sh.metrics.panicked();
+                tracing::error!(
+                    target: "keelson::request",
+                    method,
+                    request_id,
+                    panic = panic_message(payload.as_ref()),
+                    "the computation panicked; the request fails with INTERNAL and the server keeps serving"
+                );
+                Err(ServiceError::Internal("the computation failed unexpectedly".into()))
+            }
+            Ok(Err(join)) => Err(ServiceError::Internal(format!("worker task failed: {join}"))),
+            Ok(Ok(Err(e))) if e.deadline_exceeded() => Err(deadline.timed_out()),
+            Ok(Ok(r)) => r,
+        }
+    }
+}
+
+/// One request's log line, for every outcome.
+#[derive(Clone, Debug)]
+pub(super) struct CallLog {
+    pub(super) method: &'static str,
+    pub(super) request_id: String,
+    pub(super) periods: u32,
+    pub(super) factors: u32,
+    pub(super) started: Instant,
+}
+
+impl CallLog {
+    /// A call of `method` carrying `returns`.
+    pub(super) fn new(method: &'static str, request_id: &str, returns: Option<&crate::proto::Matrix>) -> CallLog {
+        let (periods, factors) = returns.map_or((0, 0), |m| (m.rows, m.cols));
+        CallLog { method, request_id: request_id.to_owned(), periods, factors, started: Instant::now() }
+    }
+
+    /// Logs a served call with what it chose.
+    pub(super) fn served(&self, outcome: &str) {
+        tracing::info!(
+            target: "keelson::request",
+            method = self.method,
+            request_id = %self.request_id,
+            periods = self.periods,
+            factors = self.factors,
+            outcome,
+            code = "OK",
+            latency_ms = self.started.elapsed().as_secs_f64() * 1e3,
+            "request served"
+        );
+    }
+
+    /// Logs a failed or refused call.
+    pub(super) fn failed(&self, code: tonic::Code, error: &ServiceError) {
+        tracing::info!(
+            target: "keelson::request",
+            method = self.method,
+            request_id = %self.request_id,
+            periods = self.periods,
+            factors = self.factors,
+            code = ?code,
+            error = %error,
+            latency_ms = self.started.elapsed().as_secs_f64() * 1e3,
+            "request failed"
+        );
+    }
+}
