@@ -521,3 +521,189 @@ fn corpus_through_the_command_line() {
     }
     assert!(ran >= 30, "only {ran} cases were representable as CSV");
 }
+
+/// A backtest option out of range: the wire edit, the command-line flags that
+/// say the same (when the command line can), and the field violation.
+struct BacktestCase {
+    name: &'static str,
+    edit: fn(&mut proto::RunBacktestRequest),
+    flags: &'static [&'static str],
+    field: &'static str,
+    reason: &'static str,
+}
+
+fn backtest_corpus() -> Vec<BacktestCase> {
+    let c = |name, edit, flags, field| BacktestCase { name, edit, flags, field, reason: "INVALID_BACKTEST" };
+    vec![
+        c("window 4e9", |r| r.window = 4_000_000_000, &["--window", "4000000000"], "window"),
+        c("window = the history", |r| r.window = 200, &["--window", "200"], "window"),
+        c("window below min_periods", |r| r.window = 10, &["--window", "10"], "window"),
+        c("step 4e9", |r| r.step = 4_000_000_000, &["--step", "4000000000"], "step"),
+        c("step past the out-of-sample span", |r| r.step = 141, &["--step", "141"], "step"),
+        c("sweep_max_k 4e9", |r| r.sweep_max_k = Some(4_000_000_000), &["--sweep-max-k", "4000000000"], "sweep_max_k"),
+        c("sweep_max_k above the factors", |r| r.sweep_max_k = Some(7), &["--sweep-max-k", "7"], "sweep_max_k"),
+        c(
+            "sweep_max_k above max_components",
+            |r| {
+                r.sweep_max_k = Some(5);
+                r.settings.get_or_insert_default().max_components = Some(4);
+            },
+            &["--sweep-max-k", "5", "--set", "max_components=4"],
+            "sweep_max_k",
+        ),
+        c("cost_bps NaN", |r| r.cost_bps = Some(f64::NAN), &["--cost-bps", "NaN"], "cost_bps"),
+        c("cost_bps inf", |r| r.cost_bps = Some(f64::INFINITY), &["--cost-bps", "inf"], "cost_bps"),
+        c("cost_bps negative", |r| r.cost_bps = Some(-1.0), &["--cost-bps=-1"], "cost_bps"),
+        c("cost_bps above 100%", |r| r.cost_bps = Some(10_001.0), &["--cost-bps", "10001"], "cost_bps"),
+        c(
+            "cer_risk_aversion negative",
+            |r| r.cer_risk_aversion = Some(-1.0),
+            &["--cer-risk-aversion=-1"],
+            "cer_risk_aversion",
+        ),
+        c(
+            "cer_risk_aversion zero",
+            |r| r.cer_risk_aversion = Some(0.0),
+            &["--cer-risk-aversion", "0"],
+            "cer_risk_aversion",
+        ),
+        c(
+            "cer_risk_aversion NaN",
+            |r| r.cer_risk_aversion = Some(f64::NAN),
+            &["--cer-risk-aversion", "NaN"],
+            "cer_risk_aversion",
+        ),
+        c(
+            "cer_risk_aversion 1e300",
+            |r| r.cer_risk_aversion = Some(1e300),
+            &["--cer-risk-aversion", "1e300"],
+            "cer_risk_aversion",
+        ),
+        c(
+            "an unknown benchmark",
+            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec!["nope".into()] }],
+            &["--benchmarks", "nope"],
+            "benchmark_sets[0].names[0]",
+        ),
+        c(
+            "a factor twice in a set",
+            |r| {
+                r.benchmark_sets =
+                    vec![proto::BenchmarkSet { names: vec!["harrow_value".into(), "harrow_value".into()] }]
+            },
+            &["--benchmarks", "harrow_value,harrow_value"],
+            "benchmark_sets[0].names[1]",
+        ),
+        c(
+            "the market twice in a set",
+            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec!["market".into(), "market".into()] }],
+            &["--benchmarks", "MKT,market"],
+            "benchmark_sets[0].names[1]",
+        ),
+        c(
+            "an empty benchmark set",
+            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec![] }],
+            &["--benchmarks", ","],
+            "benchmark_sets[0].names",
+        ),
+        c(
+            "65 benchmark sets",
+            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec!["harrow_value".into()] }; 65],
+            &[],
+            "benchmark_sets",
+        ),
+        BacktestCase {
+            name: "a backtest setting out of range",
+            edit: |r| r.settings.get_or_insert_default().folds = Some(1),
+            flags: &["--set", "folds=1"],
+            field: "settings.folds",
+            reason: "SETTING_OUT_OF_RANGE",
+        },
+        BacktestCase {
+            name: "components_auto = false",
+            edit: |r| {
+                r.settings.get_or_insert_default().components_choice =
+                    Some(proto::settings::ComponentsChoice::ComponentsAuto(false));
+            },
+            flags: &[],
+            field: "settings.components_auto",
+            reason: "INVALID_SETTING",
+        },
+    ]
+}
+
+/// A valid 200-period, 6-factor backtest request: 120-period window, yearly refits, no baselines.
+fn backtest_base() -> (keelson::estimator::ReturnPanel, proto::RunBacktestRequest) {
+    let panel = synthetic_panel(5, 200, 6);
+    let r = request_from_panel(&panel, proto::Settings::default(), "bt");
+    let req = proto::RunBacktestRequest {
+        factor_names: r.factor_names,
+        period_labels: r.period_labels,
+        returns: r.returns,
+        market_returns: r.market_returns,
+        settings: None,
+        window: 60,
+        step: 12,
+        skip_baselines: true,
+        request_id: "bt".into(),
+        ..Default::default()
+    };
+    (panel, req)
+}
+
+#[test]
+fn backtest_corpus_over_grpc() {
+    let cases = backtest_corpus();
+    let rt = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().unwrap();
+    rt.block_on(async {
+        let server = keelson::service::loopback::LoopbackServer::start(|_| {}).await.unwrap();
+        let mut client = WeightsServiceClient::connect(server.url()).await.unwrap();
+        let (_, base) = backtest_base();
+        assert!(client.run_backtest(base.clone()).await.is_ok(), "the base request is valid");
+        let good = request_from_panel(&synthetic_panel(1, 60, 5), proto::Settings::default(), "good");
+        let mut slowest = std::time::Duration::ZERO;
+        for case in &cases {
+            let mut req = base.clone();
+            (case.edit)(&mut req);
+            let started = std::time::Instant::now();
+            // Every option is checked before the response stream starts.
+            let s = client.run_backtest(req).await.err().unwrap_or_else(|| panic!("{}: accepted", case.name));
+            slowest = slowest.max(started.elapsed());
+            assert_eq!(s.code(), INVALID, "{}: {}", case.name, s.message());
+            assert_eq!(s.get_details_error_info().unwrap().reason, case.reason, "{}: {}", case.name, s.message());
+            let br = s.get_details_bad_request().unwrap_or_else(|| panic!("{}: no BadRequest", case.name));
+            assert_eq!(br.field_violations[0].field, case.field, "{}: {}", case.name, s.message());
+            assert!(client.compute_weights(good.clone()).await.is_ok(), "server stopped serving after {}", case.name);
+        }
+        println!("{} backtest cases; slowest refusal {:.1} ms", cases.len(), slowest.as_secs_f64() * 1e3);
+        server.shutdown().await.unwrap();
+    });
+}
+
+#[test]
+fn backtest_corpus_through_the_command_line() {
+    let dir = std::env::temp_dir().join(format!("keelson-bt-corpus-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let (panel, _) = backtest_base();
+    let csv = dir.join("history.csv");
+    std::fs::write(&csv, to_csv(&panel)).unwrap();
+    let out = dir.join("out");
+    let mut ran = 0;
+    for case in backtest_corpus().iter().filter(|c| !c.flags.is_empty()) {
+        let o = Command::new(env!("CARGO_BIN_EXE_keelson"))
+            .args(["backtest", "--returns", csv.to_str().unwrap(), "--market", "MKT", "--no-baselines"])
+            .args(["--window", "60", "--step", "12", "--out", out.to_str().unwrap()])
+            .args(case.flags)
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert!(!err.contains("panicked"), "{}: {err}", case.name);
+        assert_eq!(o.status.code(), Some(2), "{}: {err}", case.name);
+        let flag = case.flags[0].split('=').next().unwrap();
+        let named = if case.field.starts_with("settings.") { case.field.trim_start_matches("settings.") } else { flag };
+        assert!(err.contains(named), "{}: the error names {named}: {err}", case.name);
+        assert!(!out.join("report.html").exists(), "{}: nothing was written", case.name);
+        ran += 1;
+    }
+    assert!(ran >= 20, "only {ran} backtest cases through the command line");
+}

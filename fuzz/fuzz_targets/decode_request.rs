@@ -1,7 +1,7 @@
-//! Arbitrary bytes as a `ComputeWeightsRequest` and a `RunBacktestRequest`:
-//! decoding, the request conversion, settings validation and (for small
-//! windows) the fit must never panic, and a fit that succeeds must return
-//! finite weights.
+//! Arbitrary bytes as a `ComputeWeightsRequest`: decoding, the request
+//! conversion, settings validation and (for small windows) the fit must never
+//! panic, and a fit that succeeds must return finite weights.
+//! (`decode_backtest_request` covers `RunBacktestRequest`.)
 #![no_main]
 
 use keelson::convert::{request_into_parts, settings_from_proto};
@@ -14,9 +14,6 @@ use prost::Message as _;
 const MAX_CELLS: u64 = 4_000;
 
 fuzz_target!(|data: &[u8]| {
-    if let Ok(req) = proto::RunBacktestRequest::decode(data) {
-        let _ = keelson::convert::backtest_request_into_parts(req);
-    }
     let Ok(req) = proto::ComputeWeightsRequest::decode(data) else { return };
     let cells = req.returns.as_ref().map_or(0, |m| (m.rows as u64).saturating_mul(m.cols as u64).max(m.values.len() as u64));
     let (panel, proto_settings, _) = request_into_parts(req);

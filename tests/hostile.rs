@@ -1,0 +1,394 @@
+//! One careless or hostile caller costs that caller an error and nothing
+//! else: backtest options out of range and over-budget backtests are refused
+//! before any work, a panic stays inside its request, and every setting a
+//! request leaves unset takes the server's configured default.
+
+mod common;
+
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+use common::Server;
+use keelson::convert::{request_from_panel, settings_to_proto};
+use keelson::demo::{synthetic_panel, to_csv};
+use keelson::estimator::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings};
+use keelson::proto::{self, weights_service_client::WeightsServiceClient};
+use tonic::Code;
+use tonic::transport::Channel;
+use tonic_types::StatusExt as _;
+
+fn run<F: std::future::Future<Output = ()>>(f: F) {
+    tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().unwrap().block_on(f);
+}
+
+fn backtest_request(periods: usize, factors: usize) -> proto::RunBacktestRequest {
+    let panel = synthetic_panel(21, periods, factors);
+    let r = request_from_panel(&panel, proto::Settings::default(), "hostile");
+    proto::RunBacktestRequest {
+        factor_names: r.factor_names,
+        period_labels: r.period_labels,
+        returns: r.returns,
+        market_returns: r.market_returns,
+        settings: r.settings,
+        window: 60,
+        step: 12,
+        skip_baselines: true,
+        request_id: "hostile".into(),
+        ..Default::default()
+    }
+}
+
+async fn good_call(c: &mut WeightsServiceClient<Channel>) -> bool {
+    let req = request_from_panel(&synthetic_panel(1, 60, 5), proto::Settings::default(), "good");
+    c.compute_weights(req).await.is_ok()
+}
+
+/// A backtest that is refused; returns the status and how long the refusal took.
+async fn refused(c: &mut WeightsServiceClient<Channel>, req: proto::RunBacktestRequest) -> (tonic::Status, Duration) {
+    let started = Instant::now();
+    let status = match c.run_backtest(req).await {
+        Err(s) => s,
+        Ok(stream) => {
+            let mut stream = stream.into_inner();
+            loop {
+                match stream.message().await {
+                    Ok(Some(_)) => {}
+                    Ok(None) => panic!("the backtest was accepted and finished"),
+                    Err(s) => break s,
+                }
+            }
+        }
+    };
+    (status, started.elapsed())
+}
+
+#[test]
+fn over_budget_backtests_are_refused_and_the_server_keeps_serving() {
+    run(async {
+        let server = Server::start(|_| {}).await;
+        let mut c = server.client().await;
+        // Every option out of range is in the bad-input corpus (tests/bad_input_corpus.rs).
+        let mut slowest = Duration::ZERO;
+        // Within the default budget (250,000 fits) the shape is legal, but 20,000
+        // monthly refits × (10 strategies + 5 × 6 sweep points) is not affordable.
+        let mut huge = backtest_request(20_000, 6);
+        huge.window = 24;
+        huge.step = 1;
+        huge.skip_baselines = false;
+        let (s, took) = refused(&mut c, huge).await;
+        slowest = slowest.max(took);
+        assert_eq!(s.code(), Code::ResourceExhausted, "{}", s.message());
+        let info = s.get_details_error_info().unwrap();
+        assert_eq!(info.reason, "REQUEST_OVER_BUDGET");
+        assert_eq!(info.metadata["what"], "fits");
+        assert_eq!(info.metadata["estimate"], (19_976u64 * 40).to_string());
+        assert!(good_call(&mut c).await, "the server stopped serving after an over-budget backtest");
+        println!("slowest refusal: {:.1} ms", slowest.as_secs_f64() * 1e3);
+        server.shutdown().await;
+    });
+}
+
+#[test]
+fn memory_budget_refuses_before_any_work() {
+    run(async {
+        let server = Server::start(|c| c.server.max_request_bytes_estimate = 8 << 20).await;
+        let mut c = server.client().await;
+        // 480 refits of 40 factors with every baseline and the sweep: about 15 MiB by the estimate.
+        let mut req = backtest_request(600, 40);
+        req.step = 1;
+        req.window = 120;
+        req.skip_baselines = false;
+        let (s, _) = refused(&mut c, req).await;
+        assert_eq!(s.code(), Code::ResourceExhausted, "{}", s.message());
+        let info = s.get_details_error_info().unwrap();
+        assert_eq!(info.metadata["what"], "bytes");
+        assert_eq!(info.metadata["limit_key"], "server.max_request_bytes_estimate");
+        assert_eq!(server.api.computing(), 0, "nothing ran");
+        assert!(server.api.metrics_text().contains("keelson_requests_shed_total{reason=\"over_budget\"} 1"));
+        let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
+        let limits = info.limits.unwrap();
+        assert_eq!(limits.max_request_bytes_estimate, 8 << 20);
+        assert_eq!(limits.max_backtest_fits, 250_000);
+        server.shutdown().await;
+    });
+}
+
+#[cfg(debug_assertions)]
+#[test]
+fn a_panic_stays_inside_its_request() {
+    use keelson::service::PANIC_PROBE_REQUEST_ID;
+    run(async {
+        let server = Server::start(|_| {}).await;
+        let mut c = server.client().await;
+        let mut req = request_from_panel(&synthetic_panel(2, 60, 5), proto::Settings::default(), "x");
+        req.request_id = PANIC_PROBE_REQUEST_ID.into();
+        let s = c.compute_weights(req).await.unwrap_err();
+        assert_eq!(s.code(), Code::Internal, "{}", s.message());
+        assert_eq!(s.get_details_error_info().unwrap().reason, "INTERNAL");
+        let mut bt = backtest_request(200, 6);
+        bt.request_id = PANIC_PROBE_REQUEST_ID.into();
+        let (s, _) = refused(&mut c, bt).await;
+        assert_eq!(s.code(), Code::Internal, "{}", s.message());
+        assert!(good_call(&mut c).await, "the server keeps serving after a panic");
+        assert!(common::eventually(100, || server.api.computing() == 0).await, "the worker slot was freed");
+        assert!(server.api.metrics_text().contains("keelson_request_panics_total 2"));
+        server.shutdown().await;
+    });
+}
+
+/// Every setting changed from its built-in default, to a combination that still fits.
+fn server_defaults() -> Settings {
+    Settings {
+        method: Method::KnsRidge,
+        scaling: Scaling::Covariance,
+        components: Choice::Fixed(3),
+        max_components: 12,
+        kappa: Choice::Fixed(0.7),
+        kappa_grid_min: 0.02,
+        kappa_grid_max: 8.0,
+        kappa_grid_points: 20,
+        l1_penalty: 0.0005,
+        folds: 4,
+        cv_criterion: CvCriterion::PricingR2,
+        normalization: Normalization::GrossExposure,
+        target_volatility: 0.12,
+        risk_aversion: 4.0,
+        periods_per_year: 52,
+        demarket: false,
+        missing_policy: MissingPolicy::Reject,
+        rp_gamma: 5.0,
+        min_periods: 30,
+        held_out_check: false,
+    }
+}
+
+#[test]
+fn the_server_defaults_really_differ_in_every_field() {
+    let d = Settings::default();
+    let s = server_defaults();
+    let table_d = toml::Table::try_from(&d).unwrap();
+    let table_s = toml::Table::try_from(&s).unwrap();
+    for key in Settings::KEYS {
+        assert_ne!(table_d.get(key), table_s.get(key), "{key} must differ from its built-in default");
+    }
+}
+
+#[test]
+fn unset_settings_take_the_server_defaults_over_grpc() {
+    run(async {
+        let defaults = server_defaults();
+        let server = Server::start(|c| c.estimator = defaults.clone()).await;
+        let mut c = server.client().await;
+        let panel = synthetic_panel(4, 80, 8);
+        let resp = c
+            .compute_weights(request_from_panel(&panel, proto::Settings::default(), "defaults"))
+            .await
+            .unwrap()
+            .into_inner();
+        let d = resp.diagnostics.unwrap();
+        assert_eq!(d.effective_settings.unwrap(), settings_to_proto(&defaults), "every unset field took the default");
+        assert!(!d.components_cross_validated && !d.kappa_cross_validated);
+        // Asking for cross-validation explicitly overrides the server's fixed K and κ.
+        let auto = proto::Settings {
+            components_choice: Some(proto::settings::ComponentsChoice::ComponentsAuto(true)),
+            kappa_choice: Some(proto::settings::KappaChoice::KappaAuto(true)),
+            method: proto::Method::Components.into(),
+            ..Default::default()
+        };
+        let resp = c.compute_weights(request_from_panel(&panel, auto, "auto")).await.unwrap().into_inner();
+        let d = resp.diagnostics.unwrap();
+        assert!(d.components_cross_validated && d.kappa_cross_validated);
+        let e = d.effective_settings.unwrap();
+        assert_eq!(e.components_choice, Some(proto::settings::ComponentsChoice::ComponentsAuto(true)));
+        assert_eq!(e.folds, Some(4), "the other fields still take the server's defaults");
+        // `false` is not a way to ask for anything.
+        let bad = proto::Settings {
+            kappa_choice: Some(proto::settings::KappaChoice::KappaAuto(false)),
+            ..Default::default()
+        };
+        let s = c.compute_weights(request_from_panel(&panel, bad, "bad")).await.unwrap_err();
+        assert_eq!(s.code(), Code::InvalidArgument);
+        assert_eq!(s.get_details_bad_request().unwrap().field_violations[0].field, "settings.kappa_auto");
+        let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
+        assert_eq!(info.default_settings.unwrap(), settings_to_proto(&defaults));
+        server.shutdown().await;
+    });
+}
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
+}
+
+#[test]
+fn unset_settings_take_the_server_defaults_through_keelson_call() {
+    let defaults = server_defaults();
+    let table = toml::Table::try_from(&defaults).unwrap();
+    let port = free_port();
+    let mut serve = Command::new(env!("CARGO_BIN_EXE_keelson"));
+    serve.args(["serve", "--addr", &format!("127.0.0.1:{port}")]).env("KEELSON__METRICS__ADDRESS", "");
+    for key in Settings::KEYS {
+        let v = match &table[key] {
+            toml::Value::String(s) => s.clone(),
+            other => other.to_string(),
+        };
+        serve.env(format!("KEELSON__ESTIMATOR__{}", key.to_uppercase()), v);
+    }
+    let mut child = serve.stdout(Stdio::null()).stderr(Stdio::piped()).spawn().unwrap();
+    let dir = std::env::temp_dir().join(format!("keelson-defaults-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let csv = dir.join("w.csv");
+    std::fs::write(&csv, to_csv(&synthetic_panel(4, 80, 8))).unwrap();
+    let addr = format!("http://127.0.0.1:{port}");
+    let mut out = None;
+    for _ in 0..100 {
+        let o = Command::new(env!("CARGO_BIN_EXE_keelson"))
+            .args(["call", "--addr", &addr, "--returns", csv.to_str().unwrap(), "--market", "MKT", "--format", "json"])
+            .output()
+            .unwrap();
+        if o.status.success() {
+            out = Some(o);
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    let out = out.expect("keelson call succeeded against the server");
+    let got: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let want = serde_json::to_value(settings_to_proto(&defaults)).unwrap();
+    assert_eq!(got["diagnostics"]["effectiveSettings"], want, "every unset field took the server's default");
+}
+
+#[test]
+fn keelson_call_checks_settings_before_connecting() {
+    // Nothing listens on this port: a bad setting must be reported as usage (exit 2) first.
+    let port = free_port();
+    let dir = std::env::temp_dir().join(format!("keelson-call-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let csv = dir.join("w.csv");
+    std::fs::write(&csv, to_csv(&synthetic_panel(4, 60, 5))).unwrap();
+    let o = Command::new(env!("CARGO_BIN_EXE_keelson"))
+        .args(["call", "--addr", &format!("http://127.0.0.1:{port}"), "--returns", csv.to_str().unwrap()])
+        .args(["--set", "folds=1"])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(err.contains("folds"), "{err}");
+}
+
+mod random_backtests {
+    use keelson::convert::{backtest_request_into_parts, settings_from_proto};
+    use keelson::estimator::{Settings, Stop};
+    use keelson::evaluate;
+    use keelson::proto;
+    use keelson::service::config::ServerSection;
+    use proptest::prelude::*;
+
+    /// Mostly hostile values, often ordinary ones.
+    fn count(ordinary: std::ops::Range<u32>) -> impl Strategy<Value = u32> + Clone {
+        prop_oneof![1 => Just(0u32), 1 => Just(u32::MAX), 1 => Just(4_000_000_000), 1 => 0u32..100_000, 12 => ordinary]
+    }
+
+    fn options() -> impl Strategy<Value = proto::RunBacktestRequest> {
+        let real = prop_oneof![
+            1 => Just(f64::NAN),
+            1 => Just(f64::INFINITY),
+            1 => Just(-1.0),
+            1 => Just(0.0),
+            1 => Just(1e300),
+            20 => 0.01f64..50.0
+        ];
+        let sets = prop_oneof![
+            3 => Just(Vec::new()),
+            1 => proptest::collection::vec(proptest::collection::vec("f[0-8]|market|nope", 0..3), 0..3)
+        ];
+        (30usize..140, 1usize..7, any::<bool>()).prop_flat_map(move |(rows, cols, market)| {
+            (
+                count(12..rows as u32),
+                count(1..25),
+                proptest::option::of(count(0..8)),
+                proptest::option::of(real.clone()),
+                proptest::option::of(real.clone()),
+                sets.clone(),
+                any::<bool>(),
+                prop::bool::weighted(0.3),
+            )
+                .prop_map(move |(window, step, sweep, cost, cer, sets, expanding, baselines)| {
+                    let mut panel = keelson::demo::synthetic_panel(rows as u64, rows, cols);
+                    if !market {
+                        panel.market = None;
+                    }
+                    let r = keelson::convert::request_from_panel(&panel, proto::Settings::default(), "p");
+                    proto::RunBacktestRequest {
+                        factor_names: r.factor_names,
+                        period_labels: r.period_labels,
+                        returns: r.returns,
+                        market_returns: r.market_returns,
+                        settings: Some(proto::Settings {
+                            kappa_grid_points: Some(8),
+                            max_components: Some(6),
+                            min_periods: Some(12),
+                            ..Default::default()
+                        }),
+                        window,
+                        expanding,
+                        step,
+                        cost_bps: cost,
+                        cer_risk_aversion: cer,
+                        sweep_max_k: sweep,
+                        benchmark_sets: sets.into_iter().map(|names| proto::BenchmarkSet { names }).collect(),
+                        skip_baselines: !baselines,
+                        request_id: "p".into(),
+                    }
+                })
+        })
+    }
+
+    /// Checks one request; true when a backtest ran to a result.
+    fn check(req: proto::RunBacktestRequest) -> Result<bool, TestCaseError> {
+        let limits = ServerSection::default();
+        let (panel, ps, spec, _) = backtest_request_into_parts(req);
+        let Ok(settings) = settings_from_proto(&ps, &Settings::default()).and_then(|s| s.check()) else {
+            return Ok(false);
+        };
+        let Ok(spec) = spec.check(&panel, &settings) else { return Ok(false) };
+        let budget = spec.budget();
+        prop_assert!(budget.fits >= budget.refits);
+        if budget.fits > limits.max_backtest_fits || budget.bytes > limits.max_request_bytes_estimate {
+            return Ok(false); // refused by the server before any work
+        }
+        prop_assert!(budget.bytes < 64 << 20, "a small history cannot need {} bytes", budget.bytes);
+        if budget.fits > 600 {
+            return Ok(false); // admissible, but too slow for a debug-build property test
+        }
+        match evaluate::run(&panel, &settings, &spec, &|_| {}, &Stop::never()) {
+            Ok(r) => {
+                prop_assert_eq!(r.refits as u64, budget.refits);
+                prop_assert!(r.strategies.iter().all(|s| s.returns.iter().all(|v| v.is_finite())));
+                Ok(true)
+            }
+            Err(_) => Ok(false),
+        }
+    }
+
+    /// Any request gets an error or a result; what passes the checks is
+    /// within the server's budget or refused by it, and what runs returns
+    /// finite out-of-sample returns for the estimated number of refits.
+    #[test]
+    fn random_backtest_requests_error_or_finish() {
+        let mut runner = proptest::test_runner::TestRunner::new(ProptestConfig { cases: 64, ..Default::default() });
+        let ran = std::sync::atomic::AtomicU32::new(0);
+        runner
+            .run(&options(), |req| {
+                if check(req)? {
+                    ran.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                }
+                Ok(())
+            })
+            .unwrap();
+        let ran = ran.into_inner();
+        println!("{ran} of 64 random backtest requests ran to a result");
+        assert!(ran >= 5, "only {ran} of 64 random requests ran: the generator is too hostile to test the runs");
+    }
+}
