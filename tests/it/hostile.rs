@@ -3,12 +3,12 @@
 //! before any work, a panic stays inside its request, and every setting a
 //! request leaves unset takes the server's configured default.
 
-mod common;
+
 
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
-use common::Server;
+use crate::common::Server;
 use keelson::convert::{request_from_panel, settings_to_proto};
 use keelson::demo::{synthetic_panel, to_csv};
 use keelson::estimator::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings};
@@ -130,7 +130,7 @@ fn a_panic_stays_inside_its_request() {
         let (s, _) = refused(&mut c, bt).await;
         assert_eq!(s.code(), Code::Internal, "{}", s.message());
         assert!(good_call(&mut c).await, "the server keeps serving after a panic");
-        assert!(common::eventually(100, || server.api.computing() == 0).await, "the worker slot was freed");
+        assert!(crate::common::eventually(100, || server.api.computing() == 0).await, "the worker slot was freed");
         assert!(server.api.metrics_text().contains("keelson_request_panics_total 2"));
         server.shutdown().await;
     });

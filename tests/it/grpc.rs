@@ -14,8 +14,8 @@ use tonic::Code;
 use tonic::transport::Channel;
 use tonic_types::StatusExt as _;
 
-mod common;
-use common::{Server, eventually};
+
+use crate::common::{Server, eventually};
 
 fn request(panel: &ReturnPanel, settings: proto::Settings, id: &str) -> proto::ComputeWeightsRequest {
     request_from_panel(panel, settings, id)

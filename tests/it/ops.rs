@@ -76,8 +76,8 @@ fn path(dir: &Path, f: &str) -> String {
     dir.join(f).to_string_lossy().into_owned()
 }
 
-mod common;
-use common::Server;
+
+use crate::common::Server;
 
 fn request() -> ComputeWeightsRequest {
     let panel = synthetic_panel(3, 96, 12);
