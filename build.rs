@@ -14,7 +14,9 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let bytes = fds.encode_to_vec();
     std::fs::write(out.join("keelson_descriptor.bin"), &bytes)?;
 
-    tonic_prost_build::configure().build_client(true).build_server(true).compile_fds(fds)?;
+    // Without the `server` feature only the messages are generated (no tonic).
+    let grpc = std::env::var_os("CARGO_FEATURE_SERVER").is_some();
+    tonic_prost_build::configure().build_client(grpc).build_server(grpc).compile_fds(fds)?;
     pbjson_build::Builder::new().register_descriptors(&bytes)?.emit_fields().build(&[".keelson.v1"])?;
     Ok(())
 }

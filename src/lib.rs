@@ -29,5 +29,7 @@ pub mod proto {
 pub mod convert;
 pub mod demo;
 pub mod panel_csv;
+#[cfg(feature = "report")]
 pub mod report;
+#[cfg(feature = "server")]
 pub mod service;

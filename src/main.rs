@@ -305,22 +305,22 @@ fn fit(a: FitArgs) -> anyhow::Result<ExitCode> {
     let settings = settings.check()?;
     let csv = read_window(&a.window)?;
     let options = FitOptions { threads: usize::from(a.threads), ..FitOptions::default() };
-    let ws = match estimator::fit_with(&csv.panel, &settings, &options) {
-        Ok(ws) => ws,
-        Err(e) => {
-            let pos = match &e {
-                EstimateError::Input(ie) => ie.location().and_then(|at| csv.position(at)),
-                _ => None,
-            };
-            let err = anyhow::Error::new(e);
-            return Err(match pos {
-                Some(p) => err.context(format!("at {p}")),
-                None => err.context(format!("fitting {csv}")),
-            });
-        }
-    };
+    let ws = estimator::fit_with(&csv.panel, &settings, &options).map_err(|e| located(e, &csv))?;
     render(&weight_set_to_proto(&ws, ""), a.format, &csv.file, &csv.panel.period_labels)?;
     Ok(ExitCode::SUCCESS)
+}
+
+/// An estimator error with the file line and column of its value, when it has one.
+fn located(e: EstimateError, csv: &panel_csv::CsvPanel) -> anyhow::Error {
+    let pos = match &e {
+        EstimateError::Input(ie) => ie.location().and_then(|at| csv.position(at)),
+        _ => None,
+    };
+    let err = anyhow::Error::new(e);
+    match pos {
+        Some(p) => err.context(format!("at {p}")),
+        None => err.context(format!("fitting {csv}")),
+    }
 }
 
 fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
@@ -589,7 +589,11 @@ fn backtest(a: BacktestArgs) -> anyhow::Result<ExitCode> {
         baselines: !a.no_baselines,
         threads: usize::from(a.threads),
     };
-    let spec = spec.check(&csv.panel, &settings).map_err(|e| UsageError(cli_option_error(&e)))?;
+    let spec = match spec.check(&csv.panel, &settings) {
+        Ok(spec) => spec,
+        Err(keelson::evaluate::BacktestError::History(e)) => return Err(located(e, &csv)),
+        Err(e) => return Err(UsageError(cli_option_error(&e)).into()),
+    };
     let tty = std::io::stderr().is_terminal();
     let progress = |p: keelson::evaluate::Progress| {
         if tty && (p.done.is_multiple_of(20) || p.done == p.total) {

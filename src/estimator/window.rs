@@ -111,58 +111,8 @@ impl ReturnWindow {
     /// # Errors
     /// An [`InputError`] naming the field, row and column of the first problem.
     pub fn new(panel: &ReturnPanel, settings: &ValidSettings) -> Result<ReturnWindow, InputError> {
-        let (rows, cols) = (panel.rows, panel.cols);
-        let name = |c: usize| panel.factor_names.get(c).map(String::as_str);
-        let label = |r: usize| panel.period_labels.get(r).map(String::as_str);
-
-        check_names(&panel.factor_names)?;
-        if cols == 0 {
-            return Err(InputError::NoFactors);
-        }
-        if panel.factor_names.len() != cols {
-            return Err(InputError::Shape {
-                at: Location::field("factor_names"),
-                expected: cols,
-                found: panel.factor_names.len(),
-            });
-        }
-        let expected = rows.saturating_mul(cols);
-        if panel.returns.len() != expected {
-            return Err(InputError::Shape { at: Location::field("returns"), expected, found: panel.returns.len() });
-        }
-        if !panel.period_labels.is_empty() {
-            check_labels(&panel.period_labels, rows)?;
-        }
-        if let Some(m) = &panel.market {
-            if m.len() != rows {
-                return Err(InputError::Shape {
-                    at: Location::field("market_returns"),
-                    expected: rows,
-                    found: m.len(),
-                });
-            }
-            for (r, &v) in m.iter().enumerate() {
-                if v.is_nan() {
-                    return Err(InputError::Missing {
-                        at: Location::field("market_returns").row(r, label(r)),
-                        rule: "the market return may not be missing",
-                    });
-                }
-                if !v.is_finite() {
-                    return Err(InputError::NonFinite {
-                        at: Location::field("market_returns").row(r, label(r)),
-                        value: v,
-                    });
-                }
-                if v.abs() > MAX_ABS_RETURN {
-                    return Err(InputError::OutOfRange {
-                        at: Location::field("market_returns").row(r, label(r)),
-                        value: v,
-                        limit: MAX_ABS_RETURN,
-                    });
-                }
-            }
-        }
+        let rows = panel.rows;
+        check_structure(panel)?;
         for (i, &(ref n, w)) in panel.previous_weights.iter().enumerate() {
             if !w.is_finite() {
                 return Err(InputError::NonFinite {
@@ -171,98 +121,15 @@ impl ReturnWindow {
                 });
             }
         }
-
-        let min_required =
-            (settings.min_periods as usize).max(if matches!(settings.method, Method::Components | Method::KnsRidge) {
-                settings.folds as usize * MIN_PERIODS_PER_FOLD
-            } else {
-                0
-            });
-        if rows < min_required {
-            let reason = if rows < settings.min_periods as usize {
-                "setting min_periods"
-            } else {
-                "8 periods per cross-validation fold"
-            };
-            return Err(InputError::TooFewPeriods { periods: rows, required: min_required, reason });
-        }
-
-        // Values: ±inf is always an error; NaN follows the missing-value policy.
-        let mut missing = vec![(0usize, usize::MAX); cols];
-        for r in 0..rows {
-            for c in 0..cols {
-                let v = panel.returns[r * cols + c];
-                if v.is_nan() {
-                    if settings.missing_policy == MissingPolicy::Reject {
-                        return Err(InputError::Missing {
-                            at: Location::field("returns").row(r, label(r)).column(c, name(c)),
-                            rule: "missing_policy is reject",
-                        });
-                    }
-                    let e = &mut missing[c];
-                    e.0 += 1;
-                    e.1 = e.1.min(r);
-                } else if !v.is_finite() {
-                    return Err(InputError::NonFinite {
-                        at: Location::field("returns").row(r, label(r)).column(c, name(c)),
-                        value: v,
-                    });
-                } else if v.abs() > MAX_ABS_RETURN {
-                    return Err(InputError::OutOfRange {
-                        at: Location::field("returns").row(r, label(r)).column(c, name(c)),
-                        value: v,
-                        limit: MAX_ABS_RETURN,
-                    });
-                }
-            }
-        }
-        let mut excluded = Vec::new();
-        let mut candidates = Vec::new();
-        for (c, &(count, first_row)) in missing.iter().enumerate() {
-            if count == rows {
-                return Err(InputError::AllMissing {
-                    at: Location::field("returns").column(c, name(c)),
-                    periods: rows,
-                });
-            }
-            if count > 0 {
-                excluded.push(Exclusion { column: c, reason: ExclusionReason::MissingValues { count, first_row } });
-            } else {
-                candidates.push(c);
-            }
-        }
-
+        check_length(rows, settings)?;
+        let missing = check_values(panel, settings.missing_policy)?;
+        let (mut excluded, candidates) = missing_exclusions(panel, &missing)?;
         let market = panel.market.clone();
         let demarket_with = if settings.demarket { market.as_deref() } else { None };
         if let Some(m) = demarket_with {
-            let mean = m.iter().sum::<f64>() / rows as f64;
-            let var = m.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>();
-            let rms = (m.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
-            if !(var > 0.0) || var.sqrt() <= ZERO_VARIANCE_RELATIVE * rms * (rows as f64).sqrt() {
-                return Err(InputError::MarketZeroVariance);
-            }
+            check_market_variance(m)?;
         }
-
-        // Zero variance, judged on the demarketed series over the whole window.
-        let mut used = Vec::with_capacity(candidates.len());
-        for &c in &candidates {
-            let col: Vec<f64> = (0..rows).map(|r| panel.returns[r * cols + c]).collect();
-            let rms = (col.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
-            let raw_sd = sample_sd(&col);
-            if !(raw_sd > ZERO_VARIANCE_RELATIVE * rms) {
-                excluded.push(Exclusion { column: c, reason: ExclusionReason::ZeroVariance });
-                continue;
-            }
-            if let Some(m) = demarket_with {
-                let beta = ols_beta(&col, m);
-                let resid: Vec<f64> = col.iter().zip(m).map(|(r, m)| r - beta * m).collect();
-                if !(sample_sd(&resid) > ZERO_VARIANCE_RELATIVE * rms) {
-                    excluded.push(Exclusion { column: c, reason: ExclusionReason::SpannedByMarket });
-                    continue;
-                }
-            }
-            used.push(c);
-        }
+        let used = usable_columns(panel, &candidates, demarket_with, &mut excluded);
         excluded.sort_by_key(|e| e.column);
         if used.is_empty() {
             let summary = excluded
@@ -273,7 +140,7 @@ impl ReturnWindow {
                 .join(", ");
             return Err(InputError::NoUsableFactors { excluded: excluded.len(), summary });
         }
-
+        let cols = panel.cols;
         let returns = Mat::from_fn(rows, used.len(), |r, j| panel.returns[r * cols + used[j]]);
         Ok(ReturnWindow {
             names: panel.factor_names.clone(),
@@ -338,6 +205,170 @@ pub fn parse_period(label: &str) -> Option<(u32, u32, u32)> {
     };
     let day_ok = d == 0 && b.len() == 7 || (1..=31).contains(&d);
     ((1..=12).contains(&m) && day_ok).then_some((y, m, d))
+}
+
+/// Names, shape, labels and market values: everything about a panel that
+/// does not depend on the settings.
+///
+/// # Errors
+/// An [`InputError`] naming the field, row and column of the first problem.
+pub fn check_structure(panel: &ReturnPanel) -> Result<(), InputError> {
+    let (rows, cols) = (panel.rows, panel.cols);
+    check_names(&panel.factor_names)?;
+    if cols == 0 {
+        return Err(InputError::NoFactors);
+    }
+    if panel.factor_names.len() != cols {
+        return Err(InputError::Shape {
+            at: Location::field("factor_names"),
+            expected: cols,
+            found: panel.factor_names.len(),
+        });
+    }
+    let expected = rows.saturating_mul(cols);
+    if panel.returns.len() != expected {
+        return Err(InputError::Shape { at: Location::field("returns"), expected, found: panel.returns.len() });
+    }
+    if !panel.period_labels.is_empty() {
+        check_labels(&panel.period_labels, rows)?;
+    }
+    if let Some(m) = &panel.market {
+        check_market_values(panel, m)?;
+    }
+    Ok(())
+}
+
+fn check_market_values(panel: &ReturnPanel, m: &[f64]) -> Result<(), InputError> {
+    let label = |r: usize| panel.period_labels.get(r).map(String::as_str);
+    if m.len() != panel.rows {
+        return Err(InputError::Shape { at: Location::field("market_returns"), expected: panel.rows, found: m.len() });
+    }
+    for (r, &v) in m.iter().enumerate() {
+        let at = || Location::field("market_returns").row(r, label(r));
+        if v.is_nan() {
+            return Err(InputError::Missing { at: at(), rule: "the market return may not be missing" });
+        }
+        if !v.is_finite() {
+            return Err(InputError::NonFinite { at: at(), value: v });
+        }
+        if v.abs() > MAX_ABS_RETURN {
+            return Err(InputError::OutOfRange { at: at(), value: v, limit: MAX_ABS_RETURN });
+        }
+    }
+    Ok(())
+}
+
+fn check_length(rows: usize, settings: &ValidSettings) -> Result<(), InputError> {
+    let per_fold = if matches!(settings.method, Method::Components | Method::KnsRidge) {
+        settings.folds as usize * MIN_PERIODS_PER_FOLD
+    } else {
+        0
+    };
+    let min_required = (settings.min_periods as usize).max(per_fold);
+    if rows < min_required {
+        let reason =
+            if rows < settings.min_periods as usize { "setting min_periods" } else { "8 periods per cross-validation fold" };
+        return Err(InputError::TooFewPeriods { periods: rows, required: min_required, reason });
+    }
+    Ok(())
+}
+
+/// Every return value: ±inf and values beyond [`MAX_ABS_RETURN`] are errors;
+/// NaN follows the missing-value policy. Returns, per column, the count of
+/// missing values and the first row with one.
+///
+/// # Errors
+/// An [`InputError`] naming the row and column of the first bad value.
+pub fn check_values(panel: &ReturnPanel, policy: MissingPolicy) -> Result<Vec<(usize, usize)>, InputError> {
+    let (rows, cols) = (panel.rows, panel.cols);
+    let name = |c: usize| panel.factor_names.get(c).map(String::as_str);
+    let label = |r: usize| panel.period_labels.get(r).map(String::as_str);
+    let mut missing = vec![(0usize, usize::MAX); cols];
+    for r in 0..rows {
+        for c in 0..cols {
+            let v = panel.returns[r * cols + c];
+            let at = || Location::field("returns").row(r, label(r)).column(c, name(c));
+            if v.is_nan() {
+                if policy == MissingPolicy::Reject {
+                    return Err(InputError::Missing { at: at(), rule: "missing_policy is reject" });
+                }
+                let e = &mut missing[c];
+                e.0 += 1;
+                e.1 = e.1.min(r);
+            } else if !v.is_finite() {
+                return Err(InputError::NonFinite { at: at(), value: v });
+            } else if v.abs() > MAX_ABS_RETURN {
+                return Err(InputError::OutOfRange { at: at(), value: v, limit: MAX_ABS_RETURN });
+            }
+        }
+    }
+    Ok(missing)
+}
+
+/// Columns with missing values become exclusions; the rest are candidates.
+fn missing_exclusions(
+    panel: &ReturnPanel,
+    missing: &[(usize, usize)],
+) -> Result<(Vec<Exclusion>, Vec<usize>), InputError> {
+    let mut excluded = Vec::new();
+    let mut candidates = Vec::new();
+    for (c, &(count, first_row)) in missing.iter().enumerate() {
+        if count == panel.rows {
+            let name = panel.factor_names.get(c).map(String::as_str);
+            return Err(InputError::AllMissing {
+                at: Location::field("returns").column(c, name),
+                periods: panel.rows,
+            });
+        }
+        if count > 0 {
+            excluded.push(Exclusion { column: c, reason: ExclusionReason::MissingValues { count, first_row } });
+        } else {
+            candidates.push(c);
+        }
+    }
+    Ok((excluded, candidates))
+}
+
+fn check_market_variance(m: &[f64]) -> Result<(), InputError> {
+    let rows = m.len();
+    let mean = m.iter().sum::<f64>() / rows as f64;
+    let var = m.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>();
+    let rms = (m.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
+    if !(var > 0.0) || var.sqrt() <= ZERO_VARIANCE_RELATIVE * rms * (rows as f64).sqrt() {
+        return Err(InputError::MarketZeroVariance);
+    }
+    Ok(())
+}
+
+/// The candidates that vary, judged on the demarketed series over the whole
+/// window; the others are added to `excluded`.
+fn usable_columns(
+    panel: &ReturnPanel,
+    candidates: &[usize],
+    demarket_with: Option<&[f64]>,
+    excluded: &mut Vec<Exclusion>,
+) -> Vec<usize> {
+    let (rows, cols) = (panel.rows, panel.cols);
+    let mut used = Vec::with_capacity(candidates.len());
+    for &c in candidates {
+        let col: Vec<f64> = (0..rows).map(|r| panel.returns[r * cols + c]).collect();
+        let rms = (col.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
+        let raw_sd = sample_sd(&col);
+        if !(raw_sd > ZERO_VARIANCE_RELATIVE * rms) {
+            excluded.push(Exclusion { column: c, reason: ExclusionReason::ZeroVariance });
+            continue;
+        }
+        if let Some(m) = demarket_with {
+            let beta = ols_beta(&col, m);
+            let resid: Vec<f64> = col.iter().zip(m).map(|(r, m)| r - beta * m).collect();
+            if !(sample_sd(&resid) > ZERO_VARIANCE_RELATIVE * rms) {
+                excluded.push(Exclusion { column: c, reason: ExclusionReason::SpannedByMarket });
+                continue;
+            }
+        }
+        used.push(c);
+    }
+    used
 }
 
 fn check_labels(labels: &[String], rows: usize) -> Result<(), InputError> {

@@ -36,6 +36,10 @@ pub enum BacktestError {
         /// Why.
         reason: String,
     },
+    /// The history itself is unusable (a shape, name or value that no
+    /// window may hold, or a market return missing in a holding period).
+    #[error("the history: {0}")]
+    History(EstimateError),
     /// A fit failed on one window.
     #[error("strategy `{strategy}`, window ending before {period}: {source}")]
     Window {

@@ -8,7 +8,7 @@
 use serde::Serialize;
 
 use super::{BacktestError, MARKET, strategies};
-use crate::estimator::{Method, ReturnPanel, Scaling, ValidSettings};
+use crate::estimator::{InputError, Method, ReturnPanel, Scaling, ValidSettings, window};
 
 /// Largest K of the sweep when the caller does not set one.
 pub const DEFAULT_SWEEP_MAX_K: usize = 10;
@@ -139,21 +139,22 @@ pub fn window_rank(window: usize, factors: usize, has_market: bool, settings: &V
 }
 
 impl BacktestSpec {
-    /// Validates every option against its range and against `panel` and
-    /// `settings`, and estimates the run's cost.
+    /// Validates the history's structure and values, every option against its
+    /// range and against `panel` and `settings`, and estimates the run's cost.
     ///
     /// # Errors
     /// [`BacktestError::Spec`] naming the first option out of range (with the
     /// request's field name: `window`, `step`, `sweep_max_k`, `cost_bps`,
-    /// `cer_risk_aversion`, `threads`, `nw_lag`, `benchmark_sets[i].names[j]`).
+    /// `cer_risk_aversion`, `threads`, `nw_lag`, `benchmark_sets[i].names[j]`);
+    /// [`BacktestError::History`] for a value no window may hold or a missing
+    /// market return (the market is held in every period).
     pub fn check(self, panel: &ReturnPanel, settings: &ValidSettings) -> Result<ValidBacktestSpec, BacktestError> {
         let s = &self;
-        if panel.cols == 0 || panel.returns.len() != panel.rows.saturating_mul(panel.cols) {
-            return Err(spec_err(
-                "returns",
-                format!("{} values for {} × {}", panel.returns.len(), panel.rows, panel.cols),
-            ));
-        }
+        // Every period is held out of sample by some refit: its values must be
+        // usable even where no estimation window will check them.
+        let history = |e: InputError| BacktestError::History(e.into());
+        window::check_structure(panel).map_err(history)?;
+        window::check_values(panel, settings.missing_policy).map_err(history)?;
         let periods = panel.rows;
         let min_window = (settings.min_periods as usize).max(3);
         if s.window < min_window {

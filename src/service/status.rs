@@ -247,7 +247,9 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
                 );
                 st
             }
-            crate::evaluate::BacktestError::Stopped(e) => to_status(&ServiceError::Estimate(e.clone()), cols),
+            crate::evaluate::BacktestError::Stopped(e) | crate::evaluate::BacktestError::History(e) => {
+                to_status(&ServiceError::Estimate(e.clone()), cols)
+            }
         },
         ServiceError::TooLarge { field, .. } => Status::with_error_details(Code::InvalidArgument, err.to_string(), {
             let mut d = ErrorDetails::with_bad_request(vec![FieldViolation::new(*field, err.to_string())]);

@@ -612,6 +612,28 @@ fn backtest_corpus() -> Vec<BacktestCase> {
             &[],
             "benchmark_sets",
         ),
+        // Found by fuzzing: the last period is only ever held, never in a window.
+        BacktestCase {
+            name: "a missing market return in a holding period",
+            edit: |r| *r.market_returns.last_mut().unwrap() = f64::NAN,
+            flags: &[],
+            field: "market_returns[199]",
+            reason: "MISSING_VALUE",
+        },
+        BacktestCase {
+            name: "an infinite return in the last period",
+            edit: |r| *r.returns.as_mut().unwrap().values.last_mut().unwrap() = f64::INFINITY,
+            flags: &[],
+            field: "returns.values[1199]",
+            reason: "NON_FINITE_VALUE",
+        },
+        BacktestCase {
+            name: "a return of 1e7 in the last period",
+            edit: |r| r.returns.as_mut().unwrap().values[1194] = 1e7,
+            flags: &[],
+            field: "returns.values[1194]",
+            reason: "VALUE_OUT_OF_RANGE",
+        },
         BacktestCase {
             name: "a backtest setting out of range",
             edit: |r| r.settings.get_or_insert_default().folds = Some(1),
