@@ -6,7 +6,9 @@
 # and the daemon it started (by process id) whatever happens.
 #
 # Needs: dockerd, containerd and runc (Debian's docker.io), root.
-# Usage: deploy/check-image.sh   (from the repository root)
+# Usage: deploy/check-image.sh   (from the repository root); with
+# KEELSON_BIN=PATH it checks the image of that static binary instead of a
+# fresh release build.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
@@ -49,7 +51,7 @@ docker version --format 'daemon {{.Server.Version}}'
 
 echo "-- static binary and image (deploy/build-image.sh)"
 deploy/build-image.sh "$tag"
-bin=target/x86_64-unknown-linux-gnu/release/keelson
+bin="${KEELSON_BIN:-target/x86_64-unknown-linux-gnu/release/keelson}"
 ls -l "$bin"
 docker image inspect "$tag" --format 'image size {{.Size}} bytes, user {{.Config.User}}'
 user=$(docker image inspect "$tag" --format '{{.Config.User}}')

@@ -266,8 +266,11 @@ fn check_length(rows: usize, settings: &ValidSettings) -> Result<(), InputError>
     };
     let min_required = (settings.min_periods as usize).max(per_fold);
     if rows < min_required {
-        let reason =
-            if rows < settings.min_periods as usize { "setting min_periods" } else { "8 periods per cross-validation fold" };
+        let reason = if rows < settings.min_periods as usize {
+            "setting min_periods"
+        } else {
+            "8 periods per cross-validation fold"
+        };
         return Err(InputError::TooFewPeriods { periods: rows, required: min_required, reason });
     }
     Ok(())
@@ -315,10 +318,7 @@ fn missing_exclusions(
     for (c, &(count, first_row)) in missing.iter().enumerate() {
         if count == panel.rows {
             let name = panel.factor_names.get(c).map(String::as_str);
-            return Err(InputError::AllMissing {
-                at: Location::field("returns").column(c, name),
-                periods: panel.rows,
-            });
+            return Err(InputError::AllMissing { at: Location::field("returns").column(c, name), periods: panel.rows });
         }
         if count > 0 {
             excluded.push(Exclusion { column: c, reason: ExclusionReason::MissingValues { count, first_row } });

@@ -3,13 +3,11 @@
 //! byte-identical answers across repeated calls, server restarts and worker
 //! counts.
 
-
-
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-use bytes::Bytes;
 use crate::common::{Server, eventually};
+use bytes::Bytes;
 use keelson::convert::request_from_panel;
 use keelson::demo::synthetic_panel;
 use keelson::proto::{self, weights_service_client::WeightsServiceClient};

@@ -14,7 +14,6 @@ use tonic::Code;
 use tonic::transport::Channel;
 use tonic_types::StatusExt as _;
 
-
 use crate::common::{Server, eventually};
 
 fn request(panel: &ReturnPanel, settings: proto::Settings, id: &str) -> proto::ComputeWeightsRequest {

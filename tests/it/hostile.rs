@@ -3,8 +3,6 @@
 //! before any work, a panic stays inside its request, and every setting a
 //! request leaves unset takes the server's configured default.
 
-
-
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 

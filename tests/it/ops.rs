@@ -76,7 +76,6 @@ fn path(dir: &Path, f: &str) -> String {
     dir.join(f).to_string_lossy().into_owned()
 }
 
-
 use crate::common::Server;
 
 fn request() -> ComputeWeightsRequest {
