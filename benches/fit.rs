@@ -84,7 +84,7 @@ fn backtest(c: &mut Criterion) {
     let mut group = c.benchmark_group("backtest 50x540 rolling 120 monthly CV");
     group.sample_size(10).measurement_time(Duration::from_secs(10));
     let panel = synthetic_panel(540, 540, 50);
-    let s = ValidSettings::default();
+    let s = Settings::default().check().expect("the defaults are valid");
     let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
     let spec = BacktestSpec { baselines: false, sweep_max_k: Some(0), threads, ..BacktestSpec::default() }
         .check(&panel, &s)

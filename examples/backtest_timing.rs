@@ -10,7 +10,7 @@
 use std::time::Instant;
 
 use keelson::demo::synthetic_panel;
-use keelson::estimator::{self, Stop, ValidSettings};
+use keelson::estimator::{self, Settings, Stop};
 use keelson::evaluate::{self, BacktestSpec};
 
 fn main() -> anyhow::Result<()> {
@@ -19,7 +19,7 @@ fn main() -> anyhow::Result<()> {
     let t = args.get(1).copied().unwrap_or(540);
     let threads = args.get(2).copied().unwrap_or(std::thread::available_parallelism().map_or(1, |c| c.get()));
     let panel = synthetic_panel(540, t, n);
-    let settings = ValidSettings::default();
+    let settings = Settings::default().check().expect("the defaults are valid");
 
     let window = synthetic_panel(540, 120, n);
     let reps = 50;

@@ -9,11 +9,12 @@
 
 use std::time::{Duration, Instant};
 
+use keelson::client::Target;
 use keelson::convert::request_from_panel;
 use keelson::demo::synthetic_panel;
-use keelson::estimator::{self, ValidSettings};
-use keelson::proto::{self, weights_service_client::WeightsServiceClient};
-use keelson::service::{self, config::ServerConfig};
+use keelson::estimator::{self, Settings};
+use keelson::proto;
+use keelson::service::loopback::LoopbackServer;
 
 fn percentile(sorted: &[Duration], p: f64) -> f64 {
     let i = ((sorted.len() as f64 - 1.0) * p).round() as usize;
@@ -41,7 +42,7 @@ async fn main() -> anyhow::Result<()> {
     let t = args.get(2).copied().unwrap_or(120);
     let panel = synthetic_panel(2024, t, n);
 
-    let settings = ValidSettings::default();
+    let settings = Settings::default().check()?;
     let mut local = Vec::with_capacity(calls);
     for _ in 0..calls {
         let s = Instant::now();
@@ -49,17 +50,8 @@ async fn main() -> anyhow::Result<()> {
         local.push(s.elapsed());
     }
 
-    let mut config = ServerConfig::default();
-    config.server.address = "127.0.0.1:0".into();
-    config.metrics.address = String::new();
-    let config = config.check()?;
-    let listener = tokio::net::TcpListener::bind(config.address).await?;
-    let addr = listener.local_addr()?;
-    let (tx, rx) = tokio::sync::oneshot::channel::<()>();
-    let server = tokio::spawn(service::serve(config, listener, async {
-        let _ = rx.await;
-    }));
-    let mut client = WeightsServiceClient::connect(format!("http://{addr}")).await?;
+    let server = LoopbackServer::start(|_| {}).await?;
+    let mut client = Target::plaintext(server.url()).weights_client().await?;
     let request = request_from_panel(&panel, proto::Settings::default(), "latency");
     for _ in 0..20 {
         client.compute_weights(request.clone()).await?;
@@ -73,7 +65,6 @@ async fn main() -> anyhow::Result<()> {
     println!("window: {n} factors × {t} periods, default settings (cross-validated K ≤ 30, 40 κ, 3 folds)");
     summary("library fit (same process)", local);
     summary("ComputeWeights over loopback gRPC", remote);
-    let _ = tx.send(());
-    server.await??;
+    server.shutdown().await?;
     Ok(())
 }

@@ -23,6 +23,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context as _, bail};
 use hdrhistogram::Histogram;
+use keelson::client::Target;
 use keelson::convert::request_from_panel;
 use keelson::demo::synthetic_panel;
 use keelson::proto::{self, weights_service_client::WeightsServiceClient};
@@ -207,7 +208,7 @@ async fn main() -> anyhow::Result<()> {
     check_loopback(&addr)?;
     let mut channel = None;
     for _ in 0..100 {
-        if let Ok(c) = Channel::from_shared(addr.clone())?.connect().await {
+        if let Ok(c) = Target::plaintext(addr.clone()).channel(Duration::from_secs(1), None).await {
             channel = Some(c);
             break;
         }

@@ -4,7 +4,8 @@
 //! [`estimator`] is the pure numerical core (SPEC §1–8); [`panel_csv`] reads
 //! windows from CSV files; [`proto`] holds the generated `keelson.v1`
 //! messages and [`convert`] translates between them and the core's types;
-//! [`service`] serves the API over gRPC; [`demo`] builds the invented
+//! [`service`] serves the API over gRPC and [`client`] calls it; [`evaluate`]
+//! runs backtests and [`report`] writes them; [`demo`] builds the invented
 //! demonstration market.
 #![warn(missing_docs, unreachable_pub)]
 #![deny(rustdoc::broken_intra_doc_links)]
@@ -26,6 +27,8 @@ pub mod proto {
     include!(concat!(env!("OUT_DIR"), "/keelson.v1.serde.rs"));
 }
 
+#[cfg(feature = "server")]
+pub mod client;
 pub mod convert;
 pub mod demo;
 pub mod panel_csv;

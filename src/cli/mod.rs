@@ -1,57 +1,125 @@
-//! Command-line presentation: output formats and the demo's narrative.
+//! The `keelson` commands, one room each, and what they share: exit codes,
+//! settings from `--config` and `--set`, reading a window, printing.
+//!
+//! Exit codes: 0 success, 1 an error in the data, the computation or the
+//! server's answer, 2 bad usage (unknown flag, unknown or out-of-range
+//! setting or option, unusable server configuration or client options).
 
-pub mod output;
+pub(crate) mod args;
+pub(crate) mod backtest;
+pub(crate) mod call;
+pub(crate) mod demo;
+pub(crate) mod fit;
+pub(crate) mod healthcheck;
+pub(crate) mod output;
+pub(crate) mod serve;
 
-use keelson::proto::{ComputeWeightsResponse, Diagnostics};
+use std::io::Write as _;
+use std::path::PathBuf;
+use std::process::ExitCode;
 
-/// What the demo is, printed before its weights.
-pub const DEMO_INTRO: &str = "\
-Demo: the Tessaly Exchange, an invented market. 36 long–short factors over
-120 months load on four loud sector swings that earn nothing and on two quiet
-styles that carry the premium. Keelson removes each factor's market exposure,
-scales every factor by its Sharpe ratio before extracting principal components,
-and shrinks the mean–variance portfolio of the leading components, choosing
-the number of components and the shrinkage by time-series cross-validation.
-";
+use anyhow::Context as _;
+use keelson::estimator::{EstimateError, Settings, SettingsError};
+use keelson::panel_csv;
+use keelson::proto;
+use keelson::service::config::ConfigError;
 
-/// The usual cautions for investment analysis.
-pub const CAUTION: &str = "\
-Caution: these weights are estimates from one window of past returns. They
-carry estimation error, past performance does not predict future results, and
-the demo data are invented. Validate any configuration out of sample before
-live use and run it through your own risk and compliance process.
-";
+use args::{Format, WindowArgs};
 
-/// A short reading of the demo's result, against plain PCA (covariance
-/// scaling) fitted on the same window with the same settings otherwise.
-pub fn demo_explanation(ws: &ComputeWeightsResponse, plain: Option<&ComputeWeightsResponse>) -> String {
-    let none = Diagnostics::default();
-    let d = ws.diagnostics.as_ref().unwrap_or(&none);
-    let mut top: Vec<_> = ws.weights.iter().filter(|f| !f.excluded).collect();
-    top.sort_by(|a, b| b.weight.abs().total_cmp(&a.weight.abs()));
-    let names: Vec<&str> = top.iter().take(3).map(|f| f.factor.as_str()).collect();
-    let mut out = format!(
-        "Reading: cross-validation kept {} component(s); the largest positions are in {}. \
-         The top 30% of factors by Sharpe ratio hold {:.0}% of the gross weight. The held-out \
-         Sharpe ratio estimated by cross-validation is {:.2} against {:.2} in the window: the gap \
-         is the optimism of fitting and choosing on the same data.",
-        d.num_components,
-        names.join(", "),
-        100.0 * d.top_sharpe_gross_share,
-        d.cv_sharpe,
-        d.in_sample_sharpe
-    );
-    if let Some(pd) = plain.and_then(|p| p.diagnostics.as_ref()) {
-        out.push_str(&format!(
-            " For comparison, plain PCA (scaling covariance) on the same window keeps {} component(s), \
-             puts {:.0}% of gross weight in the top-Sharpe factors and has a cross-validated Sharpe \
-             ratio of {:.2}. Which method wins out of sample is a question for a backtest, not for \
-             one window.",
-            pd.num_components,
-            100.0 * pd.top_sharpe_gross_share,
-            pd.cv_sharpe
-        ));
+/// A mistake in how the command was called (exit code 2).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub(crate) struct UsageError(pub(crate) String);
+
+/// The exit code of a failed command, after printing its cause chain; a
+/// broken pipe (the reader went away) is success.
+pub(crate) fn exit_code(e: &anyhow::Error) -> ExitCode {
+    let broken_pipe = e
+        .chain()
+        .any(|c| c.downcast_ref::<std::io::Error>().is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe));
+    if broken_pipe {
+        return ExitCode::SUCCESS;
     }
-    out.push_str("\n\n");
-    out
+    eprintln!("error: {e:#}");
+    let usage = e.downcast_ref::<UsageError>().is_some()
+        || e.downcast_ref::<SettingsError>().is_some()
+        || e.downcast_ref::<ConfigError>().is_some()
+        || e.downcast_ref::<keelson::client::ClientError>().is_some_and(keelson::client::ClientError::is_usage);
+    ExitCode::from(if usage { 2 } else { 1 })
+}
+
+/// A multi-threaded async runtime for the commands that speak gRPC.
+pub(crate) fn runtime() -> anyhow::Result<tokio::runtime::Runtime> {
+    tokio::runtime::Builder::new_multi_thread().enable_all().build().context("cannot start the async runtime")
+}
+
+/// Resolves `--config` and `--set` into settings, and the keys `--set` named.
+pub(crate) fn resolve_settings(
+    config: Option<&PathBuf>,
+    set: &[String],
+) -> anyhow::Result<(Settings, Vec<&'static str>)> {
+    let mut s = match config {
+        Some(p) => {
+            let text = panel_csv::read_text(p).map_err(|e| UsageError(format!("{e:#}")))?;
+            Settings::from_toml(&text).with_context(|| format!("in {}", p.display()))?
+        }
+        None => Settings::default(),
+    };
+    let mut keys = Vec::new();
+    for kv in set {
+        let (k, v) = kv
+            .split_once('=')
+            .ok_or_else(|| UsageError(format!("--set {kv}: expected KEY=VALUE, e.g. --set components=5")))?;
+        s.set(k, v)?;
+        let k = k.trim().replace('-', "_");
+        keys.extend(Settings::KEYS.iter().find(|key| **key == k));
+    }
+    Ok((s, keys))
+}
+
+/// Reads the window, and previous weights if given.
+pub(crate) fn read_window(w: &WindowArgs) -> anyhow::Result<panel_csv::CsvPanel> {
+    let file = w.returns.display().to_string();
+    let text = panel_csv::read_text(&w.returns)?;
+    let mut csv = panel_csv::parse_returns(&text, &file, w.market.as_deref())?;
+    if let Some(p) = &w.previous_weights {
+        let text = panel_csv::read_text(p)?;
+        csv.panel.previous_weights = panel_csv::parse_weights(&text, &p.display().to_string())?;
+    }
+    Ok(csv)
+}
+
+/// An estimator error with the file line and column of its value, when it has one.
+pub(crate) fn located(e: EstimateError, csv: &panel_csv::CsvPanel) -> anyhow::Error {
+    let pos = match &e {
+        EstimateError::Input(ie) => ie.location().and_then(|at| csv.position(at)),
+        _ => None,
+    };
+    let err = anyhow::Error::new(e);
+    match pos {
+        Some(p) => err.context(format!("at {p}")),
+        None => err.context(format!("fitting {csv}")),
+    }
+}
+
+/// Prints a response as a table or as proto3 JSON.
+pub(crate) fn render(
+    resp: &proto::ComputeWeightsResponse,
+    format: Format,
+    source: &str,
+    labels: &[String],
+) -> anyhow::Result<()> {
+    let text = match format {
+        Format::Table => output::table(resp, source, labels),
+        Format::Json => output::json(resp)?,
+    };
+    print(&text)
+}
+
+/// Writes to standard output and flushes.
+pub(crate) fn print(text: &str) -> anyhow::Result<()> {
+    let mut out = std::io::stdout().lock();
+    out.write_all(text.as_bytes())?;
+    out.flush()?;
+    Ok(())
 }

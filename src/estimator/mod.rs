@@ -23,7 +23,10 @@ pub use basis::{ComponentBasis, EigenPath};
 pub use cv::{CrossValidation, CvSurface};
 pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use moments::Moments;
-pub use settings::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, ValidSettings};
+pub use settings::{
+    Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings, SettingsPatch,
+    ValidSettings,
+};
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
 pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, Warning, WeightSet};

@@ -1,28 +1,10 @@
-//! Estimator settings: the public [`Settings`] with every default in one place,
-//! and [`ValidSettings`], the only form the estimator accepts.
-//!
-//! | name | default | range | meaning |
-//! |---|---|---|---|
-//! | `method` | `components` | `components`, `kns-ridge`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight` | portfolio rule |
-//! | `scaling` | `sharpe` | `sharpe`, `sharpe-raw`, `standardized`, `covariance`, `risk-premium` | factor scaling before PCA |
-//! | `components` | `auto` | `auto` or 1..=1000 | number of components K |
-//! | `max_components` | 30 | 1..=1000 | largest K cross-validation may choose |
-//! | `kappa` | `auto` | `auto` or (0, 100] | annualised prior root max squared Sharpe |
-//! | `kappa_grid_min` | 0.01 | (0, 100] | smallest κ of the grid |
-//! | `kappa_grid_max` | 10 | (0, 100], > min | largest κ of the grid |
-//! | `kappa_grid_points` | 40 | 2..=500 | log-spaced κ values |
-//! | `l1_penalty` | 0 | [0, 1e6] | elastic-net L1 penalty γ₁ (per period, units of component means) |
-//! | `folds` | 3 | 2..=20 | contiguous CV blocks |
-//! | `cv_criterion` | `sharpe` | `sharpe`, `pricing-r2`, `pricing-r2-gls` | CV score |
-//! | `normalization` | `target-volatility` | `target-volatility`, `risk-aversion`, `gross-exposure` | weight scale |
-//! | `target_volatility` | 0.10 | (0, 10] | annualised volatility target |
-//! | `risk_aversion` | 3 | (0, 1e6] | relative risk aversion |
-//! | `periods_per_year` | 12 | 1..=100000 | 12 monthly, 52 weekly, 252 daily |
-//! | `demarket` | true | bool | remove market exposure in the window |
-//! | `missing_policy` | `drop-factor` | `drop-factor`, `reject` | missing-value rule |
-//! | `rp_gamma` | 10 | [-1, 1e6] | mean weight of risk-premium PCA |
-//! | `min_periods` | 24 | 3..=1000000 | fewest periods in a window |
-//! | `held_out_check` | true | bool | with K and κ both fixed, still refit the folds to report the held-out Sharpe |
+//! Estimator settings, declared once in [`settings_table!`]: each setting's
+//! name, type, default, range and meaning. The declaration generates
+//! [`Settings`] (every default in one place), [`SettingsPatch`] (every field
+//! optional: what a request, a file or `--set` changes), the range checks of
+//! [`Settings::check`] and the documentation table [`Settings::TABLE`] that
+//! the README, `GetServiceInfo` and a test share. [`ValidSettings`] is the
+//! only form the estimator accepts, and only `check()` makes one.
 
 use std::fmt;
 
@@ -113,6 +95,21 @@ pub enum MissingPolicy {
     Reject,
 }
 
+/// The enums print as their names in files, flags and the README (`kns-ridge`).
+macro_rules! display_as_serde_name {
+    ($($t:ty),+) => {$(
+        impl fmt::Display for $t {
+            fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                match serde_json::to_value(self) {
+                    Ok(serde_json::Value::String(s)) => f.write_str(&s),
+                    _ => write!(f, "{self:?}"),
+                }
+            }
+        }
+    )+};
+}
+display_as_serde_name!(Method, Scaling, CvCriterion, Normalization, MissingPolicy);
+
 /// A value that is either chosen by cross-validation or fixed by the user.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
 pub enum Choice<T> {
@@ -167,80 +164,81 @@ impl<'de, T: Deserialize<'de>> Deserialize<'de> for Choice<T> {
     }
 }
 
-/// Estimator settings as a user gives them. Unset keys in a file take the
-/// defaults of [`Settings::default`]; [`Settings::check`] validates them.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-#[serde(default, deny_unknown_fields)]
-pub struct Settings {
-    /// Portfolio rule.
-    pub method: Method,
-    /// Factor scaling before PCA.
-    pub scaling: Scaling,
-    /// Number of components K.
-    pub components: Choice<u32>,
-    /// Largest K that cross-validation may choose.
-    pub max_components: u32,
-    /// Annualised κ.
-    pub kappa: Choice<f64>,
-    /// Smallest κ of the CV grid (annualised).
-    pub kappa_grid_min: f64,
-    /// Largest κ of the CV grid (annualised).
-    pub kappa_grid_max: f64,
-    /// Number of log-spaced κ values in the CV grid.
-    pub kappa_grid_points: u32,
-    /// Elastic-net L1 penalty γ₁ (0: ridge only).
-    pub l1_penalty: f64,
-    /// Number of contiguous CV blocks.
-    pub folds: u32,
-    /// CV score.
-    pub cv_criterion: CvCriterion,
-    /// Weight scale rule.
-    pub normalization: Normalization,
-    /// Annualised volatility target.
-    pub target_volatility: f64,
-    /// Relative risk aversion.
-    pub risk_aversion: f64,
-    /// Periods per year.
-    pub periods_per_year: u32,
-    /// Remove market exposure inside the window.
-    pub demarket: bool,
-    /// Missing-value rule.
-    pub missing_policy: MissingPolicy,
-    /// Weight of the mean in risk-premium PCA.
-    pub rp_gamma: f64,
-    /// Fewest periods a window may have.
-    pub min_periods: u32,
-    /// With K and κ both fixed, still refit on the CV folds to report the
-    /// held-out Sharpe ratio (one extra eigensolve per fold); `false` skips
-    /// the folds and leaves that diagnostic unset.
-    pub held_out_check: bool,
+/// One row of the settings table: what the README and `GetServiceInfo` show.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct SettingInfo {
+    /// Name in files, `--set`, the API and environment variables.
+    pub name: &'static str,
+    /// Accepted values.
+    pub range: &'static str,
+    /// What it does.
+    pub meaning: &'static str,
 }
 
-impl Default for Settings {
-    fn default() -> Self {
-        Settings {
-            method: Method::Components,
-            scaling: Scaling::Sharpe,
-            components: Choice::Auto,
-            max_components: 30,
-            kappa: Choice::Auto,
-            kappa_grid_min: 0.01,
-            kappa_grid_max: 10.0,
-            kappa_grid_points: 40,
-            l1_penalty: 0.0,
-            folds: 3,
-            cv_criterion: CvCriterion::Sharpe,
-            normalization: Normalization::TargetVolatility,
-            target_volatility: 0.10,
-            risk_aversion: 3.0,
-            periods_per_year: 12,
-            demarket: true,
-            missing_policy: MissingPolicy::DropFactor,
-            rp_gamma: 10.0,
-            min_periods: 24,
-            held_out_check: true,
+/// Declares every setting once: doc comment, `name: Type = default`, the
+/// accepted `range` (text, and a check on `|v|`), and its `meaning`.
+macro_rules! settings_table {
+    ($(
+        $(#[doc = $doc:literal])+
+        $name:ident: $ty:ty = $default:expr;
+        range $range:literal if |$v:ident| $ok:expr;
+        meaning $meaning:literal;
+    )+) => {
+        /// Estimator settings as a user gives them. Unset keys in a file take the
+        /// defaults of [`Settings::default`]; [`Settings::check`] validates them.
+        #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+        #[serde(default, deny_unknown_fields)]
+        pub struct Settings {
+            $( $(#[doc = $doc])+ pub $name: $ty, )+
         }
-    }
+
+        impl Default for Settings {
+            fn default() -> Self {
+                Settings { $( $name: $default, )+ }
+            }
+        }
+
+        /// Settings with every field optional: the changes a request, a file
+        /// or `--set` makes to a base (the built-in or the server's defaults).
+        #[derive(Clone, Debug, Default, PartialEq)]
+        pub struct SettingsPatch {
+            $( $(#[doc = $doc])+ pub $name: Option<$ty>, )+
+        }
+
+        impl Settings {
+            /// Names of every setting, as used in files, `--set` and the API.
+            pub const KEYS: &'static [&'static str] = &[$( stringify!($name), )+];
+
+            /// Every setting's name, range and meaning, in declaration order.
+            pub const TABLE: &'static [SettingInfo] =
+                &[$( SettingInfo { name: stringify!($name), range: $range, meaning: $meaning }, )+];
+
+            /// These settings with the patch's fields applied.
+            pub fn apply(&mut self, patch: &SettingsPatch) {
+                $( if let Some(v) = &patch.$name { self.$name = v.clone(); } )+
+            }
+
+            /// A patch holding the named settings of `self` (unknown names are ignored).
+            pub fn patch_of(&self, keys: &[&str]) -> SettingsPatch {
+                SettingsPatch { $( $name: keys.contains(&stringify!($name)).then(|| self.$name.clone()), )+ }
+            }
+
+            /// Each setting against its own range.
+            fn check_each(&self) -> Result<(), SettingsError> {
+                $(
+                    let $v = &self.$name;
+                    if !($ok) {
+                        return Err(SettingsError::OutOfRange {
+                            field: stringify!($name),
+                            value: $v.to_string(),
+                            range: $range,
+                        });
+                    }
+                )+
+                Ok(())
+            }
+        }
+    };
 }
 
 /// Largest fixed number of components accepted.
@@ -248,39 +246,125 @@ pub const MAX_COMPONENTS_LIMIT: u32 = 1000;
 /// Largest number of κ grid points accepted.
 pub const MAX_KAPPA_POINTS: u32 = 500;
 
-fn check_range<T: PartialOrd + Copy + fmt::Display>(
-    field: &'static str,
-    value: T,
-    ok: bool,
-    range: &'static str,
-) -> Result<(), SettingsError> {
-    if ok { Ok(()) } else { Err(SettingsError::OutOfRange { field, value: value.to_string(), range }) }
+fn within(v: f64, lo_open: f64, hi: f64) -> bool {
+    v.is_finite() && v > lo_open && v <= hi
+}
+
+settings_table! {
+    /// Portfolio rule.
+    method: Method = Method::Components;
+    range "`components`, `kns-ridge`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight`" if |_v| true;
+    meaning "the shrunk component portfolio, or a baseline";
+
+    /// Factor scaling before PCA.
+    scaling: Scaling = Scaling::Sharpe;
+    range "`sharpe`, `sharpe-raw`, `standardized`, `covariance`, `risk-premium`" if |_v| true;
+    meaning "factor scaling before PCA (see Method)";
+
+    /// Number of components K.
+    components: Choice<u32> = Choice::Auto;
+    range "`auto` or 1..=1000" if |v| v.fixed().is_none_or(|k| (1..=MAX_COMPONENTS_LIMIT).contains(&k));
+    meaning "number of components K; `auto` = cross-validated";
+
+    /// Largest K that cross-validation may choose.
+    max_components: u32 = 30;
+    range "1..=1000" if |v| (1..=MAX_COMPONENTS_LIMIT).contains(v);
+    meaning "largest K cross-validation may choose";
+
+    /// Annualised κ.
+    kappa: Choice<f64> = Choice::Auto;
+    range "`auto` or (0, 100]" if |v| v.fixed().is_none_or(|k| within(k, 0.0, 100.0));
+    meaning "κ, annualised: prior root expected maximum squared Sharpe ratio";
+
+    /// Smallest κ of the CV grid (annualised).
+    kappa_grid_min: f64 = 0.01;
+    range "(0, 100]" if |v| within(*v, 0.0, 100.0);
+    meaning "smallest κ of the cross-validation grid";
+
+    /// Largest κ of the CV grid (annualised).
+    kappa_grid_max: f64 = 10.0;
+    range "(kappa_grid_min, 100]" if |v| within(*v, 0.0, 100.0);
+    meaning "largest κ of the grid";
+
+    /// Number of log-spaced κ values in the CV grid.
+    kappa_grid_points: u32 = 40;
+    range "2..=500" if |v| (2..=MAX_KAPPA_POINTS).contains(v);
+    meaning "log-spaced κ values in the grid";
+
+    /// Elastic-net L1 penalty γ₁ (0: ridge only).
+    l1_penalty: f64 = 0.0;
+    range "[0, 1e6]" if |v| v.is_finite() && (0.0..=1e6).contains(v);
+    meaning "elastic-net L1 penalty γ₁ in units of component mean returns per period; 0 = ridge";
+
+    /// Number of contiguous CV blocks.
+    folds: u32 = 3;
+    range "2..=20" if |v| (2..=20).contains(v);
+    meaning "contiguous cross-validation blocks";
+
+    /// CV score.
+    cv_criterion: CvCriterion = CvCriterion::Sharpe;
+    range "`sharpe`, `pricing-r2`, `pricing-r2-gls`" if |_v| true;
+    meaning "held-out score maximised";
+
+    /// Weight scale rule.
+    normalization: Normalization = Normalization::TargetVolatility;
+    range "`target-volatility`, `risk-aversion`, `gross-exposure`" if |_v| true;
+    meaning "how weights are scaled";
+
+    /// Annualised volatility target.
+    target_volatility: f64 = 0.10;
+    range "(0, 10]" if |v| within(*v, 0.0, 10.0);
+    meaning "annualised in-window volatility for `target-volatility`";
+
+    /// Relative risk aversion.
+    risk_aversion: f64 = 3.0;
+    range "(0, 1e6]" if |v| within(*v, 0.0, 1e6);
+    meaning "relative risk aversion for `risk-aversion`";
+
+    /// Periods per year.
+    periods_per_year: u32 = 12;
+    range "1..=100000" if |v| (1..=100_000).contains(v);
+    meaning "12 monthly, 52 weekly, 252 daily";
+
+    /// Remove market exposure inside the window.
+    demarket: bool = true;
+    range "bool" if |_v| true;
+    meaning "remove each factor's market beta inside the window";
+
+    /// Missing-value rule.
+    missing_policy: MissingPolicy = MissingPolicy::DropFactor;
+    range "`drop-factor`, `reject`" if |_v| true;
+    meaning "exclude factors with missing values, or reject the window";
+
+    /// Weight of the mean in risk-premium PCA.
+    rp_gamma: f64 = 10.0;
+    range "[-1, 1e6]" if |v| v.is_finite() && (-1.0..=1e6).contains(v);
+    meaning "weight on the mean in risk-premium PCA";
+
+    /// Fewest periods a window may have.
+    min_periods: u32 = 24;
+    range "3..=1000000" if |v| (3..=1_000_000).contains(v);
+    meaning "fewest periods accepted";
+
+    /// With K and κ both fixed, still refit on the CV folds to report the
+    /// held-out Sharpe ratio (one extra eigensolve per fold); `false` skips
+    /// the folds and leaves that diagnostic unset.
+    held_out_check: bool = true;
+    range "bool" if |_v| true;
+    meaning "with `components` and `kappa` both fixed, still refit the folds to report the held-out Sharpe ratio; \
+             `false` skips them (about 4× faster for a 50 × 120 window) and leaves `cv_sharpe` unset";
 }
 
 impl Settings {
-    /// Names of every setting, as used in files, `--set` and the API.
-    pub const KEYS: [&'static str; 20] = [
-        "method",
-        "scaling",
-        "components",
-        "max_components",
-        "kappa",
-        "kappa_grid_min",
-        "kappa_grid_max",
-        "kappa_grid_points",
-        "l1_penalty",
-        "folds",
-        "cv_criterion",
-        "normalization",
-        "target_volatility",
-        "risk_aversion",
-        "periods_per_year",
-        "demarket",
-        "missing_policy",
-        "rp_gamma",
-        "min_periods",
-        "held_out_check",
-    ];
+    /// The default of `key` as the README shows it: words in backticks,
+    /// numbers and booleans plain.
+    pub fn shown_value(&self, key: &str) -> Option<String> {
+        let table = toml::Table::try_from(self).ok()?;
+        Some(match table.get(key)? {
+            toml::Value::String(s) => format!("`{s}`"),
+            other => other.to_string(),
+        })
+    }
 
     /// Sets one key from its textual value (`components=5`, `scaling=covariance`,
     /// `kappa=auto`). Hyphens in the key are read as underscores.
@@ -326,46 +410,20 @@ impl Settings {
     /// # Errors
     /// [`SettingsError::OutOfRange`] naming the first field out of range.
     pub fn check(self) -> Result<ValidSettings, SettingsError> {
-        let s = &self;
-        if let Choice::Fixed(k) = s.components {
-            check_range("components", k, (1..=MAX_COMPONENTS_LIMIT).contains(&k), "auto or 1..=1000")?;
+        self.check_each()?;
+        if !(self.kappa_grid_max > self.kappa_grid_min) {
+            return Err(SettingsError::OutOfRange {
+                field: "kappa_grid_max",
+                value: self.kappa_grid_max.to_string(),
+                range: "(kappa_grid_min, 100]",
+            });
         }
-        check_range(
-            "max_components",
-            s.max_components,
-            (1..=MAX_COMPONENTS_LIMIT).contains(&s.max_components),
-            "1..=1000",
-        )?;
-        if let Choice::Fixed(k) = s.kappa {
-            check_range("kappa", k, k.is_finite() && k > 0.0 && k <= 100.0, "auto or (0, 100]")?;
-        }
-        let kmin = s.kappa_grid_min;
-        let kmax = s.kappa_grid_max;
-        check_range("kappa_grid_min", kmin, kmin.is_finite() && kmin > 0.0 && kmin <= 100.0, "(0, 100]")?;
-        check_range("kappa_grid_max", kmax, kmax.is_finite() && kmax > kmin && kmax <= 100.0, "(kappa_grid_min, 100]")?;
-        check_range(
-            "kappa_grid_points",
-            s.kappa_grid_points,
-            (2..=MAX_KAPPA_POINTS).contains(&s.kappa_grid_points),
-            "2..=500",
-        )?;
-        let l1 = s.l1_penalty;
-        check_range("l1_penalty", l1, l1.is_finite() && (0.0..=1e6).contains(&l1), "[0, 1e6]")?;
-        check_range("folds", s.folds, (2..=20).contains(&s.folds), "2..=20")?;
-        let tv = s.target_volatility;
-        check_range("target_volatility", tv, tv.is_finite() && tv > 0.0 && tv <= 10.0, "(0, 10]")?;
-        let ra = s.risk_aversion;
-        check_range("risk_aversion", ra, ra.is_finite() && ra > 0.0 && ra <= 1e6, "(0, 1e6]")?;
-        check_range("periods_per_year", s.periods_per_year, (1..=100_000).contains(&s.periods_per_year), "1..=100000")?;
-        let g = s.rp_gamma;
-        check_range("rp_gamma", g, g.is_finite() && (-1.0..=1e6).contains(&g), "[-1, 1e6]")?;
-        check_range("min_periods", s.min_periods, (3..=1_000_000).contains(&s.min_periods), "3..=1000000")?;
         Ok(ValidSettings { inner: self })
     }
 }
 
 /// Settings that passed [`Settings::check`]: the only form the estimator takes.
-#[derive(Clone, Debug, PartialEq, Default)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct ValidSettings {
     inner: Settings,
 }
@@ -448,7 +506,7 @@ mod tests {
     #[test]
     fn kappa_grid_matches_numpy_logspace_endpoints() {
         // numpy.logspace(-2, 1, 40): first 0.01, last 10 (numpy documentation).
-        let g = ValidSettings::default().kappa_grid();
+        let g = Settings::default().check().unwrap().kappa_grid();
         assert_eq!(g.len(), 40);
         assert!((g[0] - 0.01).abs() < 1e-15);
         assert!((g[39] - 10.0).abs() < 1e-12);

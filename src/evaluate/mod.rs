@@ -313,23 +313,334 @@ fn held_weights(ws: &WeightSet) -> Held {
 /// [`held_weights`] with the component loadings and betas, for the pricing test.
 fn held_from(ws: &WeightSet) -> Held {
     Held {
-        weights: ws.factors.iter().map(|f| f.weight).collect(),
-        market: ws.market_weight,
-        k: ws.diagnostics.num_components,
-        kappa: ws.diagnostics.kappa,
-        top_share: ws.diagnostics.top_sharpe_gross_share,
         components: ws.components.iter().map(|c| c.loadings.clone()).collect(),
         betas: ws.factors.iter().map(|f| f.market_beta).collect(),
+        ..held_weights(ws)
     }
 }
 
+/// The refit dates and what is fitted at each: the strategies, and the
+/// sweep's scalings and K values.
+struct Schedule {
+    /// Refit dates: the first out-of-sample period of each holding span.
+    dates: Vec<usize>,
+    strategies: Vec<Strategy>,
+    sweep_ks: Vec<usize>,
+    sweep_scalings: Vec<Scaling>,
+}
+
+impl Schedule {
+    fn new(panel: &ReturnPanel, configured: &ValidSettings, spec: &ValidBacktestSpec) -> Schedule {
+        let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
+        // Bounded by check(): at most the window's rank and settings.max_components.
+        let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k()).collect();
+        let sweep_scalings = if spec.sweep_max_k() > 0 && configured.method == Method::Components {
+            Scaling::ALL.to_vec()
+        } else {
+            Vec::new()
+        };
+        let dates = (spec.window..panel.rows).step_by(spec.step).collect();
+        Schedule { dates, strategies, sweep_ks, sweep_scalings }
+    }
+
+    /// Progress steps in all: one per strategy and sweep scaling per date.
+    fn steps(&self) -> usize {
+        self.dates.len() * (self.strategies.len() + self.sweep_scalings.len())
+    }
+}
+
+/// Everything fitted at one refit date.
+struct DateFits {
+    held: Vec<Held>,
+    sweep: Vec<Vec<Option<Held>>>,
+    /// The configured scaling's loadings at the sweep's largest fitted K.
+    basis: Option<Held>,
+    /// The configured method's full fit, kept for the last date only.
+    last: Option<WeightSet>,
+}
+
+/// The market itself, held as a strategy.
+fn market_held(cols: usize) -> Held {
+    Held {
+        weights: vec![0.0; cols],
+        market: 1.0,
+        k: 0,
+        kappa: 0.0,
+        top_share: 0.0,
+        components: Vec::new(),
+        betas: Vec::new(),
+    }
+}
+
+/// Fits every strategy and the sweep on the window before `plan.dates[d]`.
+fn fit_date(
+    panel: &ReturnPanel,
+    configured: &ValidSettings,
+    spec: &ValidBacktestSpec,
+    plan: &Schedule,
+    d: usize,
+    tick: &dyn Fn(),
+    stop: &Stop,
+) -> Result<DateFits, BacktestError> {
+    let t = plan.dates[d];
+    let start = if spec.expanding { 0 } else { t - spec.window };
+    let window = sub_panel(panel, start, t);
+    let opts = FitOptions { threads: 1, stop: stop.clone(), ..FitOptions::default() };
+    let wrap = |strategy: &str, e: EstimateError| match e {
+        EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
+        e => BacktestError::Window { strategy: strategy.to_owned(), period: label(panel, t), source: e },
+    };
+    let is_last = d + 1 == plan.dates.len();
+    let mut held = Vec::with_capacity(plan.strategies.len());
+    let mut last = None;
+    for (i, s) in plan.strategies.iter().enumerate() {
+        held.push(match &s.settings {
+            None => market_held(panel.cols),
+            Some(settings) => {
+                let ws = estimator::fit_with(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
+                // Only the configured fits feed the pricing test: the others keep no loadings.
+                let h = if i == 0 { held_from(&ws) } else { held_weights(&ws) };
+                if i == 0 && is_last {
+                    last = Some(ws);
+                }
+                h
+            }
+        });
+        tick();
+    }
+    let mut sweep = Vec::with_capacity(plan.sweep_scalings.len());
+    let mut basis = None;
+    for &sc in &plan.sweep_scalings {
+        let mut s = configured.settings().clone();
+        s.scaling = sc;
+        let settings = s.check().map_err(|e| wrap("sweep", e.into()))?;
+        let fits =
+            estimator::fit_component_sweep(&window, &settings, &plan.sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
+        // The fixed-K fits of one window share one basis, so the largest
+        // K's loadings hold every smaller K's: keep only those, and only
+        // for the configured scaling (the pricing test's fallback).
+        if sc == configured.scaling {
+            basis = fits.iter().rev().find_map(|r| r.as_ref().ok()).map(held_from);
+        }
+        sweep.push(fits.iter().map(|r| r.as_ref().ok().map(held_weights)).collect());
+        tick();
+    }
+    Ok(DateFits { held, sweep, basis, last })
+}
+
+/// Fits every date, split across `spec.threads` workers; results in date order.
+fn fit_all_dates(
+    panel: &ReturnPanel,
+    configured: &ValidSettings,
+    spec: &ValidBacktestSpec,
+    plan: &Schedule,
+    progress: &(dyn Fn(Progress) + Sync),
+    stop: &Stop,
+) -> Result<Vec<DateFits>, BacktestError> {
+    let total = plan.steps();
+    let done = AtomicUsize::new(0);
+    let tick = || progress(Progress { done: done.fetch_add(1, Ordering::Relaxed) + 1, total });
+    let one = |d: usize| fit_date(panel, configured, spec, plan, d, &tick, stop);
+    let n_dates = plan.dates.len();
+    if spec.threads <= 1 {
+        return (0..n_dates).map(one).collect();
+    }
+    // Refit dates are independent: split them across threads, keep date order.
+    let chunk = n_dates.div_ceil(spec.threads);
+    let results: Vec<Result<DateFits, BacktestError>> = std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..spec.threads)
+            .map(|w| {
+                let f = &one;
+                scope.spawn(move || (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>())
+            })
+            .collect();
+        handles
+            .into_iter()
+            .flat_map(|h| {
+                h.join().unwrap_or_else(|_| {
+                    vec![Err(BacktestError::Stopped(EstimateError::Numerical {
+                        stage: "backtest",
+                        detail: "worker panicked".into(),
+                    }))]
+                })
+            })
+            .collect()
+    });
+    results.into_iter().collect()
+}
+
+/// The out-of-sample span: its periods and each period's holding.
+struct OutOfSample<'a> {
+    panel: &'a ReturnPanel,
+    /// Out-of-sample period indices.
+    periods: Vec<usize>,
+    window: usize,
+    step: usize,
+}
+
+impl OutOfSample<'_> {
+    /// The refit date whose weights are held in period `t`.
+    fn date_of(&self, t: usize) -> usize {
+        (t - self.window) / self.step
+    }
+
+    /// p_t = w'r_t + w_m m_t; a missing factor return counts as 0 (and is counted).
+    fn port_return(&self, h: &Held, t: usize, missing: &mut usize) -> f64 {
+        let cols = self.panel.cols;
+        let mut r = h.market * self.panel.market.as_deref().map_or(0.0, |m| m[t]);
+        for j in 0..cols {
+            let w = h.weights[j];
+            if w != 0.0 {
+                let x = self.panel.returns[t * cols + j];
+                if x.is_nan() {
+                    *missing += 1;
+                } else {
+                    r += w * x;
+                }
+            }
+        }
+        r
+    }
+
+    /// The out-of-sample series of a factor or of the market.
+    fn series_of(&self, name: &str) -> Option<Vec<f64>> {
+        if name == MARKET {
+            return self.panel.market.as_ref().map(|m| self.periods.iter().map(|&t| m[t]).collect());
+        }
+        let j = self.panel.factor_names.iter().position(|f| f == name)?;
+        Some(self.periods.iter().map(|&t| self.panel.returns[t * self.panel.cols + j]).collect())
+    }
+}
+
+/// Each strategy's returns, gross and net of costs, with its metrics.
+fn strategy_results(
+    oos: &OutOfSample<'_>,
+    plan: &Schedule,
+    fits: &[DateFits],
+    spec: &ValidBacktestSpec,
+    p: f64,
+    lag: usize,
+) -> Vec<StrategyResult> {
+    let cost = spec.cost_bps / 1e4;
+    let mut results = Vec::with_capacity(plan.strategies.len());
+    for (si, s) in plan.strategies.iter().enumerate() {
+        let mut missing = 0;
+        let returns: Vec<f64> =
+            oos.periods.iter().map(|&t| oos.port_return(&fits[oos.date_of(t)].held[si], t, &mut missing)).collect();
+        let mut turnovers = Vec::new();
+        let mut net = returns.clone();
+        for d in 1..plan.dates.len() {
+            let (a, b) = (&fits[d - 1].held[si], &fits[d].held[si]);
+            let tv: f64 =
+                a.weights.iter().zip(&b.weights).map(|(x, y)| (x - y).abs()).sum::<f64>() + (a.market - b.market).abs();
+            turnovers.push(tv);
+            net[plan.dates[d] - spec.window] -= cost * tv;
+        }
+        let average_turnover = if turnovers.is_empty() { 0.0 } else { stats::mean(&turnovers) };
+        results.push(StrategyResult {
+            name: s.name.clone(),
+            metrics: metrics(&returns, p, spec.cer_risk_aversion, lag),
+            net_metrics: metrics(&net, p, spec.cer_risk_aversion, lag),
+            returns,
+            net_returns: net,
+            average_turnover,
+            chosen_k: fits.iter().map(|f| f.held[si].k).collect(),
+            chosen_kappa: fits.iter().map(|f| f.held[si].kappa).collect(),
+            top_sharpe_share: fits.iter().map(|f| f.held[si].top_share).collect(),
+            missing_holding_returns: missing,
+        });
+    }
+    results
+}
+
+/// OOS Sharpe ratio against K, per scaling (NaN where K did not fit every window).
+fn sweep_points(oos: &OutOfSample<'_>, plan: &Schedule, fits: &[DateFits], p: f64) -> Vec<SweepPoint> {
+    let mut sweep = Vec::new();
+    for (ci, &scaling) in plan.sweep_scalings.iter().enumerate() {
+        for (ki, &k) in plan.sweep_ks.iter().enumerate() {
+            let mut missing = 0;
+            let mut series = Vec::with_capacity(oos.periods.len());
+            for &t in &oos.periods {
+                match &fits[oos.date_of(t)].sweep[ci][ki] {
+                    Some(h) => series.push(oos.port_return(h, t, &mut missing)),
+                    None => break,
+                }
+            }
+            let sharpe = if series.len() == oos.periods.len() { p.sqrt() * stats::sharpe(&series) } else { f64::NAN };
+            sweep.push(SweepPoint { scaling, k, sharpe });
+        }
+    }
+    sweep
+}
+
+/// Luck or skill: JKM tests against every other strategy, and the
+/// probabilistic and deflated Sharpe ratios of the configured method.
+struct Inference {
+    comparisons: Vec<Comparison>,
+    psr: f64,
+    dsr: f64,
+    trials: usize,
+}
+
+fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64) -> Inference {
+    let configured = &results[0].returns;
+    let comparisons = results[1..]
+        .iter()
+        .map(|r| Comparison { against: r.name.clone(), test: stats::jobson_korkie_memmel(configured, &r.returns, p) })
+        .collect();
+    let sr = stats::sharpe(configured);
+    let (skew, kurt) = stats::skew_kurt(configured);
+    let psr = stats::probabilistic_sharpe(sr, 0.0, configured.len(), skew, kurt);
+    // Every configuration evaluated counts as a trial: the strategies and the sweep points.
+    let mut trial_srs: Vec<f64> = results.iter().map(|r| r.metrics.sharpe / p.sqrt()).collect();
+    trial_srs.extend(sweep.iter().map(|s| s.sharpe / p.sqrt()));
+    trial_srs.retain(|v| v.is_finite());
+    let trials = trial_srs.len();
+    let dsr = if trials >= 2 {
+        stats::deflated_sharpe(sr, configured.len(), skew, kurt, stats::var(&trial_srs), trials)
+    } else {
+        f64::NAN
+    };
+    Inference { comparisons, psr, dsr, trials }
+}
+
+/// Alphas of every strategy against every benchmark set observed throughout.
+fn alpha_tests(
+    oos: &OutOfSample<'_>,
+    sets: &[Vec<String>],
+    results: &[StrategyResult],
+    p: f64,
+    lag: usize,
+) -> Vec<AlphaTest> {
+    let mut alphas = Vec::new();
+    for set in sets {
+        let Some(xs) = set.iter().map(|n| oos.series_of(n)).collect::<Option<Vec<Vec<f64>>>>() else { continue };
+        if xs.iter().any(|x| x.iter().any(|v| !v.is_finite())) {
+            continue;
+        }
+        for r in results {
+            if let Some(reg) = stats::ols(&r.returns, &xs, lag) {
+                alphas.push(AlphaTest {
+                    strategy: r.name.clone(),
+                    benchmarks: set.clone(),
+                    alpha: p * reg.coef[0],
+                    t_nw: reg.coef[0] / reg.se_nw[0],
+                    t_robust: reg.coef[0] / reg.se_robust[0],
+                    r2: reg.r2,
+                });
+            }
+        }
+    }
+    alphas
+}
+
 /// Runs every strategy over every refit date, with `threads` workers over
-/// dates; `progress` is called after each date.
+/// dates; `progress` is called after each strategy at each date.
 ///
 /// # Errors
-/// [`BacktestError::Spec`] for options that do not fit the panel,
-/// [`BacktestError::Window`] naming the strategy and date of a failed fit,
-/// [`BacktestError::Stopped`] when `stop` fires.
+/// [`BacktestError::Spec`] for a specification checked against another
+/// history, [`BacktestError::Window`] naming the strategy and date of a
+/// failed fit, [`BacktestError::Stopped`] when `stop` fires.
 pub fn run(
     panel: &ReturnPanel,
     configured: &ValidSettings,
@@ -343,251 +654,30 @@ pub fn run(
             reason: "the specification was checked against a history of another shape".into(),
         });
     }
-    let t_all = panel.rows;
-    let benchmark_sets = spec.benchmark_sets();
+    let plan = Schedule::new(panel, configured, spec);
+    let fits = fit_all_dates(panel, configured, spec, &plan, progress, stop)?;
     let p = f64::from(configured.periods_per_year);
-    let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
-    let dates: Vec<usize> = (spec.window..t_all).step_by(spec.step).collect();
-    // Bounded by check(): at most the window's rank and settings.max_components.
-    let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k()).collect();
-    let sweep_scalings: Vec<Scaling> = if spec.sweep_max_k() > 0 && configured.method == Method::Components {
-        Scaling::ALL.to_vec()
-    } else {
-        Vec::new()
-    };
-    let per_date = strategies.len() + sweep_scalings.len();
-    let total = dates.len() * per_date;
-    let done = AtomicUsize::new(0);
-
-    type DateOut = (Vec<Held>, Vec<Vec<Option<Held>>>, Option<Held>, Option<WeightSet>);
-    let fit_date = |d: usize| -> Result<DateOut, BacktestError> {
-        let t = dates[d];
-        let start = if spec.expanding { 0 } else { t - spec.window };
-        let window = sub_panel(panel, start, t);
-        let opts = FitOptions { threads: 1, stop: stop.clone(), ..FitOptions::default() };
-        let wrap = |strategy: &str, e: EstimateError| match e {
-            EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
-            e => BacktestError::Window { strategy: strategy.to_owned(), period: label(panel, t), source: e },
-        };
-        let mut held = Vec::with_capacity(strategies.len());
-        let mut last = None;
-        for (i, s) in strategies.iter().enumerate() {
-            let h = match &s.settings {
-                None => Held {
-                    weights: vec![0.0; panel.cols],
-                    market: 1.0,
-                    k: 0,
-                    kappa: 0.0,
-                    top_share: 0.0,
-                    components: Vec::new(),
-                    betas: Vec::new(),
-                },
-                Some(settings) => {
-                    let ws = estimator::fit_with(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
-                    // Only the configured fits feed the pricing test: the others keep no loadings.
-                    let h = if i == 0 { held_from(&ws) } else { held_weights(&ws) };
-                    if i == 0 && d + 1 == dates.len() {
-                        last = Some(ws);
-                    }
-                    h
-                }
-            };
-            held.push(h);
-            let n = done.fetch_add(1, Ordering::Relaxed) + 1;
-            progress(Progress { done: n, total });
-        }
-        let mut sweep = Vec::with_capacity(sweep_scalings.len());
-        let mut basis = None;
-        for &sc in &sweep_scalings {
-            let mut s = configured.settings().clone();
-            s.scaling = sc;
-            let settings = s.check().map_err(|e| wrap("sweep", e.into()))?;
-            let fits =
-                estimator::fit_component_sweep(&window, &settings, &sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
-            // The fixed-K fits of one window share one basis, so the largest
-            // K's loadings hold every smaller K's: keep only those, and only
-            // for the configured scaling (the pricing test's fallback).
-            if sc == configured.scaling {
-                basis = fits.iter().rev().find_map(|r| r.as_ref().ok()).map(held_from);
-            }
-            sweep.push(fits.iter().map(|r| r.as_ref().ok().map(held_weights)).collect());
-            let n = done.fetch_add(1, Ordering::Relaxed) + 1;
-            progress(Progress { done: n, total });
-        }
-        Ok((held, sweep, basis, last))
-    };
-
-    // Refit dates are independent: split them across threads, keep date order.
-    let results: Vec<Result<DateOut, BacktestError>> = if spec.threads <= 1 {
-        (0..dates.len()).map(&fit_date).collect()
-    } else {
-        let chunk = dates.len().div_ceil(spec.threads);
-        let n_dates = dates.len();
-        std::thread::scope(|scope| {
-            let handles: Vec<_> = (0..spec.threads)
-                .map(|w| {
-                    let f = &fit_date;
-                    scope.spawn(move || (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>())
-                })
-                .collect();
-            handles
-                .into_iter()
-                .flat_map(|h| {
-                    h.join().unwrap_or_else(|_| {
-                        vec![Err(BacktestError::Stopped(EstimateError::Numerical {
-                            stage: "backtest",
-                            detail: "worker panicked".into(),
-                        }))]
-                    })
-                })
-                .collect()
-        })
-    };
-    let mut per_date_held = Vec::with_capacity(dates.len());
-    let mut per_date_sweep = Vec::with_capacity(dates.len());
-    let mut per_date_basis = Vec::with_capacity(dates.len());
-    let mut last_fit = None;
-    for r in results {
-        let (h, s, b, l) = r?;
-        per_date_basis.push(b);
-        per_date_held.push(h);
-        per_date_sweep.push(s);
-        if l.is_some() {
-            last_fit = l;
-        }
-    }
-
-    // Out-of-sample returns.
-    let oos: Vec<usize> = (spec.window..t_all).collect();
-    let periods: Vec<String> = oos.iter().map(|&t| label(panel, t)).collect();
-    let date_of = |t: usize| (t - spec.window) / spec.step;
-    let cols = panel.cols;
-    let market = panel.market.as_deref();
-    let port_return = |h: &Held, t: usize, missing: &mut usize| {
-        let mut r = h.market * market.map_or(0.0, |m| m[t]);
-        for j in 0..cols {
-            let w = h.weights[j];
-            if w != 0.0 {
-                let x = panel.returns[t * cols + j];
-                if x.is_nan() {
-                    *missing += 1;
-                } else {
-                    r += w * x;
-                }
-            }
-        }
-        r
-    };
-    let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.len()));
-    let cost = spec.cost_bps / 1e4;
-    let mut results = Vec::with_capacity(strategies.len());
-    for (si, s) in strategies.iter().enumerate() {
-        let mut missing = 0;
-        let returns: Vec<f64> =
-            oos.iter().map(|&t| port_return(&per_date_held[date_of(t)][si], t, &mut missing)).collect();
-        let mut turnovers = Vec::new();
-        let mut net = returns.clone();
-        for d in 1..dates.len() {
-            let (a, b) = (&per_date_held[d - 1][si], &per_date_held[d][si]);
-            let tv: f64 =
-                a.weights.iter().zip(&b.weights).map(|(x, y)| (x - y).abs()).sum::<f64>() + (a.market - b.market).abs();
-            turnovers.push(tv);
-            net[dates[d] - spec.window] -= cost * tv;
-        }
-        let avg_turnover = if turnovers.is_empty() { 0.0 } else { stats::mean(&turnovers) };
-        results.push(StrategyResult {
-            name: s.name.clone(),
-            metrics: metrics(&returns, p, spec.cer_risk_aversion, lag),
-            net_metrics: metrics(&net, p, spec.cer_risk_aversion, lag),
-            returns,
-            net_returns: net,
-            average_turnover: avg_turnover,
-            chosen_k: per_date_held.iter().map(|h| h[si].k).collect(),
-            chosen_kappa: per_date_held.iter().map(|h| h[si].kappa).collect(),
-            top_sharpe_share: per_date_held.iter().map(|h| h[si].top_share).collect(),
-            missing_holding_returns: missing,
-        });
-    }
-
-    // OOS Sharpe against K.
-    let mut sweep = Vec::new();
-    for (ci, &sc) in sweep_scalings.iter().enumerate() {
-        for (ki, &k) in sweep_ks.iter().enumerate() {
-            let mut missing = 0;
-            let mut series = Vec::with_capacity(oos.len());
-            for &t in &oos {
-                match &per_date_sweep[date_of(t)][ci][ki] {
-                    Some(h) => series.push(port_return(h, t, &mut missing)),
-                    None => break,
-                }
-            }
-            let sharpe = if series.len() == oos.len() { p.sqrt() * stats::sharpe(&series) } else { f64::NAN };
-            sweep.push(SweepPoint { scaling: sc, k, sharpe });
-        }
-    }
-
-    // Inference.
-    let configured_returns = &results[0].returns;
-    let comparisons = results[1..]
-        .iter()
-        .map(|r| Comparison {
-            against: r.name.clone(),
-            test: stats::jobson_korkie_memmel(configured_returns, &r.returns, p),
-        })
-        .collect();
-    let sr = stats::sharpe(configured_returns);
-    let (skew, kurt) = stats::skew_kurt(configured_returns);
-    let psr = stats::probabilistic_sharpe(sr, 0.0, configured_returns.len(), skew, kurt);
-    // Every configuration evaluated counts as a trial: the strategies and the sweep points.
-    let mut trial_srs: Vec<f64> = results.iter().map(|r| r.metrics.sharpe / p.sqrt()).collect();
-    trial_srs.extend(sweep.iter().map(|s| s.sharpe / p.sqrt()));
-    trial_srs.retain(|v| v.is_finite());
-    let trials = trial_srs.len();
-    let dsr = if trials >= 2 {
-        stats::deflated_sharpe(sr, configured_returns.len(), skew, kurt, stats::var(&trial_srs), trials)
-    } else {
-        f64::NAN
-    };
-
-    let series_of = |name: &str| -> Option<Vec<f64>> {
-        if name == MARKET {
-            return market.map(|m| oos.iter().map(|&t| m[t]).collect());
-        }
-        let j = panel.factor_names.iter().position(|f| f == name)?;
-        Some(oos.iter().map(|&t| panel.returns[t * cols + j]).collect())
-    };
-    let mut alphas = Vec::new();
-    for set in benchmark_sets {
-        let xs: Option<Vec<Vec<f64>>> = set.iter().map(|n| series_of(n)).collect();
-        let Some(xs) = xs else { continue };
-        if xs.iter().any(|x| x.iter().any(|v| !v.is_finite())) {
-            continue;
-        }
-        for r in &results {
-            if let Some(reg) = stats::ols(&r.returns, &xs, lag) {
-                alphas.push(AlphaTest {
-                    strategy: r.name.clone(),
-                    benchmarks: set.clone(),
-                    alpha: p * reg.coef[0],
-                    t_nw: reg.coef[0] / reg.se_nw[0],
-                    t_robust: reg.coef[0] / reg.se_robust[0],
-                    r2: reg.r2,
-                });
-            }
-        }
-    }
-
+    let oos = OutOfSample { panel, periods: (spec.window..panel.rows).collect(), window: spec.window, step: spec.step };
+    let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.periods.len()));
+    let strategies = strategy_results(&oos, &plan, &fits, spec, p, lag);
+    let sweep = sweep_points(&oos, &plan, &fits, p);
+    let Inference { comparisons, psr, dsr, trials } = inference(&strategies, &sweep, p);
+    let alphas = alpha_tests(&oos, spec.benchmark_sets(), &strategies, p, lag);
     // The pricing test needs the same K components at every refit: the
     // configured fits when they have them, else the sweep's fixed-K fits.
-    let sweep_index = sweep_scalings.iter().position(|&sc| sc == configured.scaling);
+    let per_date_held: Vec<&[Held]> = fits.iter().map(|f| f.held.as_slice()).collect();
+    let per_date_sweep: Vec<&[Vec<Option<Held>>]> = fits.iter().map(|f| f.sweep.as_slice()).collect();
+    let per_date_basis: Vec<Option<&Held>> = fits.iter().map(|f| f.basis.as_ref()).collect();
+    let sweep_index = plan.sweep_scalings.iter().position(|&sc| sc == configured.scaling);
     let sweep_fits = SweepFits { fits: &per_date_sweep, basis: &per_date_basis, index: sweep_index };
-    let pricing = pricing_test(panel, &per_date_held, &sweep_fits, &oos, date_of, lag, configured);
+    let pricing = pricing_test(&oos, &per_date_held, &sweep_fits, lag, configured);
+    let last_fit = fits.into_iter().last().and_then(|f| f.last);
     Ok(BacktestResult {
         spec: spec.spec().clone(),
         periods_per_year: configured.periods_per_year,
-        periods,
-        refits: dates.len(),
-        strategies: results,
+        periods: oos.periods.iter().map(|&t| label(panel, t)).collect(),
+        refits: plan.dates.len(),
+        strategies,
         sweep,
         comparisons,
         psr,
@@ -603,8 +693,8 @@ pub fn run(
 /// The sweep's fixed-K fits per date and scaling, and per date the loadings
 /// of the configured scaling's largest fitted K.
 struct SweepFits<'a> {
-    fits: &'a [Vec<Vec<Option<Held>>>],
-    basis: &'a [Option<Held>],
+    fits: &'a [&'a [Vec<Option<Held>>]],
+    basis: &'a [Option<&'a Held>],
     index: Option<usize>,
 }
 
@@ -614,11 +704,9 @@ struct SweepFits<'a> {
 /// the one the configured method chose most often, at most the sweep's
 /// largest K when the configured fits do not all have that many.
 fn pricing_test(
-    panel: &ReturnPanel,
-    held: &[Vec<Held>],
+    oos: &OutOfSample<'_>,
+    held: &[&[Held]],
     sweep: &SweepFits<'_>,
-    oos: &[usize],
-    date_of: impl Fn(usize) -> usize,
     lag: usize,
     configured: &ValidSettings,
 ) -> Option<PricingTest> {
@@ -644,13 +732,14 @@ fn pricing_test(
         if !all_fit {
             return None;
         }
-        sweep.basis.iter().map(Option::as_ref).collect::<Option<_>>()?
+        sweep.basis.iter().copied().collect::<Option<_>>()?
     };
+    let panel = oos.panel;
     let cols = panel.cols;
     let m = panel.market.as_deref();
-    let mut regressors: Vec<Vec<f64>> = vec![Vec::with_capacity(oos.len()); k];
-    for &t in oos {
-        let h = fits[date_of(t)];
+    let mut regressors: Vec<Vec<f64>> = vec![Vec::with_capacity(oos.periods.len()); k];
+    for &t in &oos.periods {
+        let h = fits[oos.date_of(t)];
         for (c, reg) in regressors.iter_mut().enumerate() {
             let load = h.components.get(c)?;
             let mut v = 0.0;
@@ -664,10 +753,10 @@ fn pricing_test(
         }
     }
     if let Some(m) = m {
-        regressors.push(oos.iter().map(|&t| m[t]).collect());
+        regressors.push(oos.periods.iter().map(|&t| m[t]).collect());
     }
     let assets: Vec<Vec<f64>> = (0..cols)
-        .map(|j| oos.iter().map(|&t| panel.returns[t * cols + j]).collect::<Vec<f64>>())
+        .map(|j| oos.periods.iter().map(|&t| panel.returns[t * cols + j]).collect::<Vec<f64>>())
         .filter(|s| s.iter().all(|v| v.is_finite()))
         .collect();
     let significant = assets

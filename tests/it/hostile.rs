@@ -166,7 +166,7 @@ fn the_server_defaults_really_differ_in_every_field() {
     let s = server_defaults();
     let table_d = toml::Table::try_from(&d).unwrap();
     let table_s = toml::Table::try_from(&s).unwrap();
-    for key in Settings::KEYS {
+    for &key in Settings::KEYS {
         assert_ne!(table_d.get(key), table_s.get(key), "{key} must differ from its built-in default");
     }
 }
@@ -224,7 +224,7 @@ fn unset_settings_take_the_server_defaults_through_keelson_call() {
     let port = free_port();
     let mut serve = Command::new(env!("CARGO_BIN_EXE_keelson"));
     serve.args(["serve", "--addr", &format!("127.0.0.1:{port}")]).env("KEELSON__METRICS__ADDRESS", "");
-    for key in Settings::KEYS {
+    for &key in Settings::KEYS {
         let v = match &table[key] {
             toml::Value::String(s) => s.clone(),
             other => other.to_string(),

@@ -1,0 +1,165 @@
+//! `RunBacktestRequest` → the history and a [`BacktestSpec`]; a
+//! [`BacktestResult`] → the `BacktestResult` message.
+
+use super::settings::scaling_to_proto;
+use super::weights::{request_into_parts, weight_set_to_proto};
+use crate::estimator::ReturnPanel;
+use crate::evaluate::stats::{Grs, SharpeDifference};
+use crate::evaluate::{
+    AlphaTest, BacktestResult, BacktestSpec, Comparison, Metrics, PricingTest, StrategyResult, SweepPoint,
+};
+use crate::proto;
+
+/// Splits a backtest request into its history, its settings, the backtest
+/// specification (unset options take their defaults) and its id.
+pub fn backtest_request_into_parts(
+    req: proto::RunBacktestRequest,
+) -> (ReturnPanel, proto::Settings, BacktestSpec, String) {
+    let proto::RunBacktestRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        settings,
+        window,
+        expanding,
+        step,
+        cost_bps,
+        cer_risk_aversion,
+        sweep_max_k,
+        benchmark_sets,
+        skip_baselines,
+        request_id,
+    } = req;
+    let (panel, settings, request_id) = request_into_parts(proto::ComputeWeightsRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        previous_weights: Vec::new(),
+        settings,
+        request_id,
+    });
+    let d = BacktestSpec::default();
+    let spec = BacktestSpec {
+        window: if window == 0 { d.window } else { window as usize },
+        expanding,
+        step: if step == 0 { d.step } else { step as usize },
+        cost_bps: cost_bps.unwrap_or(d.cost_bps),
+        cer_risk_aversion: cer_risk_aversion.unwrap_or(d.cer_risk_aversion),
+        sweep_max_k: sweep_max_k.map(|k| k as usize),
+        benchmark_sets: benchmark_sets.into_iter().map(|b| b.names).collect(),
+        nw_lag: None,
+        baselines: !skip_baselines,
+        threads: 1,
+    };
+    (panel, settings, spec, request_id)
+}
+
+fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
+    let StrategyResult {
+        name,
+        returns,
+        net_returns,
+        metrics,
+        net_metrics,
+        average_turnover,
+        chosen_k,
+        chosen_kappa,
+        top_sharpe_share,
+        // Reported in the summary file and the report, not on the wire.
+        missing_holding_returns: _,
+    } = s;
+    let Metrics { mean, volatility, sharpe, sharpe_se_iid, sharpe_se_nw, cer, max_drawdown, skewness: _, kurtosis: _ } =
+        metrics;
+    proto::StrategyPerformance {
+        name: name.clone(),
+        returns: returns.clone(),
+        net_returns: net_returns.clone(),
+        mean: *mean,
+        volatility: *volatility,
+        sharpe: *sharpe,
+        sharpe_se_iid: *sharpe_se_iid,
+        sharpe_se_newey_west: *sharpe_se_nw,
+        cer: *cer,
+        max_drawdown: *max_drawdown,
+        net_sharpe: net_metrics.sharpe,
+        average_turnover: *average_turnover,
+        chosen_components: chosen_k.iter().map(|&k| k as u32).collect(),
+        chosen_kappa: chosen_kappa.clone(),
+        top_sharpe_share: top_sharpe_share.clone(),
+    }
+}
+
+fn sweep_to_proto(p: &SweepPoint) -> proto::SweepPoint {
+    let SweepPoint { scaling, k, sharpe } = p;
+    proto::SweepPoint { scaling: scaling_to_proto(*scaling).into(), components: *k as u32, sharpe: *sharpe }
+}
+
+fn comparison_to_proto(c: &Comparison) -> proto::SharpeComparison {
+    let Comparison { against, test: SharpeDifference { difference, z, p_value } } = c;
+    proto::SharpeComparison { against: against.clone(), difference: *difference, z: *z, p_value: *p_value }
+}
+
+fn alpha_to_proto(a: &AlphaTest) -> proto::AlphaTest {
+    let AlphaTest { strategy, benchmarks, alpha, t_nw, t_robust, r2 } = a;
+    proto::AlphaTest {
+        strategy: strategy.clone(),
+        benchmarks: benchmarks.clone(),
+        alpha: *alpha,
+        t_newey_west: *t_nw,
+        t_robust: *t_robust,
+        r_squared: *r2,
+    }
+}
+
+fn pricing_to_proto(p: &PricingTest) -> proto::PricingTest {
+    let PricingTest { k, assets, significant, grs } = p;
+    let (statistic, p_value) = grs.as_ref().map_or((f64::NAN, f64::NAN), |g| {
+        // The GRS sample sizes repeat the test's own (assets, K plus the market, periods).
+        let Grs { statistic, p_value, assets: _, factors: _, periods: _ } = g;
+        (*statistic, *p_value)
+    });
+    proto::PricingTest {
+        components: *k as u32,
+        assets: *assets as u32,
+        significant: *significant as u32,
+        grs: statistic,
+        grs_p_value: p_value,
+    }
+}
+
+/// The proto message of a backtest result.
+pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::BacktestResult {
+    let BacktestResult {
+        // The request holds the specification; the caller knows both.
+        spec: _,
+        periods_per_year: _,
+        periods,
+        refits,
+        strategies,
+        sweep,
+        comparisons,
+        psr,
+        dsr,
+        trials,
+        alphas,
+        pricing,
+        last_fit,
+        nw_lag,
+    } = r;
+    proto::BacktestResult {
+        periods: periods.clone(),
+        refits: *refits as u32,
+        strategies: strategies.iter().map(strategy_to_proto).collect(),
+        sweep: sweep.iter().map(sweep_to_proto).collect(),
+        comparisons: comparisons.iter().map(comparison_to_proto).collect(),
+        probabilistic_sharpe: *psr,
+        deflated_sharpe: *dsr,
+        trials: *trials as u32,
+        alphas: alphas.iter().map(alpha_to_proto).collect(),
+        pricing: pricing.as_ref().map(pricing_to_proto),
+        newey_west_lag: *nw_lag as u32,
+        latest_fit: last_fit.as_ref().map(|ws| weight_set_to_proto(ws, request_id)),
+    }
+}

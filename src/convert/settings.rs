@@ -1,0 +1,296 @@
+//! `Settings` messages: the whole settings, a patch of some of them, and the enums.
+
+use crate::estimator::{
+    Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, SettingsError, SettingsPatch,
+};
+use crate::proto;
+use crate::proto::settings::{ComponentsChoice, KappaChoice};
+
+/// Proto enum for a scaling.
+pub fn scaling_to_proto(s: Scaling) -> proto::Scaling {
+    match s {
+        Scaling::Sharpe => proto::Scaling::Sharpe,
+        Scaling::SharpeRaw => proto::Scaling::SharpeRaw,
+        Scaling::Standardized => proto::Scaling::Standardized,
+        Scaling::Covariance => proto::Scaling::Covariance,
+        Scaling::RiskPremium => proto::Scaling::RiskPremium,
+    }
+}
+
+pub(super) fn criterion_to_proto(c: CvCriterion) -> proto::CvCriterion {
+    match c {
+        CvCriterion::Sharpe => proto::CvCriterion::Sharpe,
+        CvCriterion::PricingR2 => proto::CvCriterion::PricingR2,
+        CvCriterion::PricingR2Gls => proto::CvCriterion::PricingR2Gls,
+    }
+}
+
+fn normalization_to_proto(n: Normalization) -> proto::Normalization {
+    match n {
+        Normalization::TargetVolatility => proto::Normalization::TargetVolatility,
+        Normalization::RiskAversion => proto::Normalization::RiskAversion,
+        Normalization::GrossExposure => proto::Normalization::GrossExposure,
+    }
+}
+
+fn missing_to_proto(m: MissingPolicy) -> proto::MissingPolicy {
+    match m {
+        MissingPolicy::DropFactor => proto::MissingPolicy::DropFactor,
+        MissingPolicy::Reject => proto::MissingPolicy::Reject,
+    }
+}
+
+fn method_to_proto(m: Method) -> proto::Method {
+    match m {
+        Method::Components => proto::Method::Components,
+        Method::PlugIn => proto::Method::PlugIn,
+        Method::EqualWeight => proto::Method::EqualWeight,
+        Method::KnsRidge => proto::Method::KnsRidge,
+        Method::PlugInLedoitWolf => proto::Method::PlugInLedoitWolf,
+    }
+}
+
+/// The proto enum number of `v`, or 0 (`_UNSPECIFIED`: the server's default) when unset.
+fn enum_or_unset<T: Copy, P: Into<i32>>(v: Option<T>, to: fn(T) -> P) -> i32 {
+    v.map_or(0, |v| to(v).into())
+}
+
+/// A patch as a proto message: set fields are sent, the others stay unset so
+/// that the server's defaults apply to them.
+pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
+    let SettingsPatch {
+        method,
+        scaling,
+        components,
+        max_components,
+        kappa,
+        kappa_grid_min,
+        kappa_grid_max,
+        kappa_grid_points,
+        l1_penalty,
+        folds,
+        cv_criterion,
+        normalization,
+        target_volatility,
+        risk_aversion,
+        periods_per_year,
+        demarket,
+        missing_policy,
+        rp_gamma,
+        min_periods,
+        held_out_check,
+    } = p.clone();
+    proto::Settings {
+        scaling: enum_or_unset(scaling, scaling_to_proto),
+        components_choice: components.map(|c| match c {
+            Choice::Auto => ComponentsChoice::ComponentsAuto(true),
+            Choice::Fixed(k) => ComponentsChoice::Components(k),
+        }),
+        max_components,
+        kappa_choice: kappa.map(|c| match c {
+            Choice::Auto => KappaChoice::KappaAuto(true),
+            Choice::Fixed(k) => KappaChoice::Kappa(k),
+        }),
+        kappa_grid_min,
+        kappa_grid_max,
+        kappa_grid_points,
+        l1_penalty,
+        folds,
+        cv_criterion: enum_or_unset(cv_criterion, criterion_to_proto),
+        normalization: enum_or_unset(normalization, normalization_to_proto),
+        target_volatility,
+        risk_aversion,
+        periods_per_year,
+        demarket,
+        missing_policy: enum_or_unset(missing_policy, missing_to_proto),
+        rp_gamma,
+        min_periods,
+        method: enum_or_unset(method, method_to_proto),
+        held_out_check,
+    }
+}
+
+/// Every setting, explicitly, as a proto message.
+pub fn settings_to_proto(s: &Settings) -> proto::Settings {
+    patch_to_proto(&s.patch_of(Settings::KEYS))
+}
+
+/// A proto `Settings` carrying only the named keys of `s` (the others unset,
+/// so that the server's defaults apply to them).
+pub fn settings_to_proto_only(s: &Settings, keys: &[&str]) -> proto::Settings {
+    patch_to_proto(&s.patch_of(keys))
+}
+
+fn unknown_enum(field: &'static str, value: i32) -> SettingsError {
+    SettingsError::InvalidValue { field, value: value.to_string(), reason: "unknown enum value".into() }
+}
+
+/// A proto enum number as an optional setting: `_UNSPECIFIED` is unset.
+fn enum_from<P: TryFrom<i32>, T>(
+    field: &'static str,
+    n: i32,
+    from: fn(P) -> Option<T>,
+) -> Result<Option<T>, SettingsError> {
+    P::try_from(n).map(from).map_err(|_| unknown_enum(field, n))
+}
+
+fn auto_false(field: &'static str) -> SettingsError {
+    SettingsError::InvalidValue {
+        field,
+        value: "false".into(),
+        reason: "set it to true for cross-validation, or leave the choice unset for the server's default".into(),
+    }
+}
+
+/// The settings a message sets; unset fields and `_UNSPECIFIED` enums stay unset.
+///
+/// # Errors
+/// [`SettingsError::InvalidValue`] for an enum number this version does not
+/// know, or `components_auto`/`kappa_auto` sent as false.
+pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsError> {
+    let proto::Settings {
+        scaling,
+        components_choice,
+        max_components,
+        kappa_choice,
+        kappa_grid_min,
+        kappa_grid_max,
+        kappa_grid_points,
+        l1_penalty,
+        folds,
+        cv_criterion,
+        normalization,
+        target_volatility,
+        risk_aversion,
+        periods_per_year,
+        demarket,
+        missing_policy,
+        rp_gamma,
+        min_periods,
+        method,
+        held_out_check,
+    } = *p;
+    Ok(SettingsPatch {
+        method: enum_from("method", method, |m| match m {
+            proto::Method::Unspecified => None,
+            proto::Method::Components => Some(Method::Components),
+            proto::Method::PlugIn => Some(Method::PlugIn),
+            proto::Method::EqualWeight => Some(Method::EqualWeight),
+            proto::Method::KnsRidge => Some(Method::KnsRidge),
+            proto::Method::PlugInLedoitWolf => Some(Method::PlugInLedoitWolf),
+        })?,
+        scaling: enum_from("scaling", scaling, |s| match s {
+            proto::Scaling::Unspecified => None,
+            proto::Scaling::Sharpe => Some(Scaling::Sharpe),
+            proto::Scaling::SharpeRaw => Some(Scaling::SharpeRaw),
+            proto::Scaling::Standardized => Some(Scaling::Standardized),
+            proto::Scaling::Covariance => Some(Scaling::Covariance),
+            proto::Scaling::RiskPremium => Some(Scaling::RiskPremium),
+        })?,
+        components: match components_choice {
+            None => None,
+            Some(ComponentsChoice::Components(k)) => Some(Choice::Fixed(k)),
+            Some(ComponentsChoice::ComponentsAuto(true)) => Some(Choice::Auto),
+            Some(ComponentsChoice::ComponentsAuto(false)) => return Err(auto_false("components_auto")),
+        },
+        max_components,
+        kappa: match kappa_choice {
+            None => None,
+            Some(KappaChoice::Kappa(k)) => Some(Choice::Fixed(k)),
+            Some(KappaChoice::KappaAuto(true)) => Some(Choice::Auto),
+            Some(KappaChoice::KappaAuto(false)) => return Err(auto_false("kappa_auto")),
+        },
+        kappa_grid_min,
+        kappa_grid_max,
+        kappa_grid_points,
+        l1_penalty,
+        folds,
+        cv_criterion: enum_from("cv_criterion", cv_criterion, |c| match c {
+            proto::CvCriterion::Unspecified => None,
+            proto::CvCriterion::Sharpe => Some(CvCriterion::Sharpe),
+            proto::CvCriterion::PricingR2 => Some(CvCriterion::PricingR2),
+            proto::CvCriterion::PricingR2Gls => Some(CvCriterion::PricingR2Gls),
+        })?,
+        normalization: enum_from("normalization", normalization, |n| match n {
+            proto::Normalization::Unspecified => None,
+            proto::Normalization::TargetVolatility => Some(Normalization::TargetVolatility),
+            proto::Normalization::RiskAversion => Some(Normalization::RiskAversion),
+            proto::Normalization::GrossExposure => Some(Normalization::GrossExposure),
+        })?,
+        target_volatility,
+        risk_aversion,
+        periods_per_year,
+        demarket,
+        missing_policy: enum_from("missing_policy", missing_policy, |m| match m {
+            proto::MissingPolicy::Unspecified => None,
+            proto::MissingPolicy::DropFactor => Some(MissingPolicy::DropFactor),
+            proto::MissingPolicy::Reject => Some(MissingPolicy::Reject),
+        })?,
+        rp_gamma,
+        min_periods,
+        held_out_check,
+    })
+}
+
+/// Applies a proto `Settings` on top of `base`: unset fields keep the base value.
+///
+/// # Errors
+/// As [`patch_from_proto`].
+pub fn settings_from_proto(p: &proto::Settings, base: &Settings) -> Result<Settings, SettingsError> {
+    let mut s = base.clone();
+    s.apply(&patch_from_proto(p)?);
+    Ok(s)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn settings_round_trip_through_proto() {
+        let s = Settings {
+            scaling: Scaling::RiskPremium,
+            components: Choice::Fixed(4),
+            kappa: Choice::Fixed(0.7),
+            normalization: Normalization::GrossExposure,
+            method: Method::PlugIn,
+            ..Settings::default()
+        };
+        let back = settings_from_proto(&settings_to_proto(&s), &Settings::default()).unwrap();
+        assert_eq!(back, s);
+    }
+
+    #[test]
+    fn only_named_keys_are_sent() {
+        let s = Settings { scaling: Scaling::Covariance, folds: 5, ..Settings::default() };
+        let p = settings_to_proto_only(&s, &["scaling"]);
+        assert_eq!(p.scaling, proto::Scaling::Covariance as i32);
+        assert_eq!(p.folds, None);
+        assert_eq!(p.components_choice, None);
+        // Every key of Settings is handled.
+        let all = settings_to_proto_only(&s, Settings::KEYS);
+        assert_eq!(all, settings_to_proto(&s));
+    }
+
+    #[test]
+    fn unset_proto_settings_keep_the_base_and_unknown_enums_fail() {
+        let base = Settings::default();
+        assert_eq!(settings_from_proto(&proto::Settings::default(), &base).unwrap(), base);
+        // A base with every field changed: an empty message changes none of them.
+        let other = Settings {
+            method: Method::KnsRidge,
+            scaling: Scaling::Covariance,
+            components: Choice::Fixed(3),
+            kappa: Choice::Fixed(0.7),
+            folds: 4,
+            demarket: false,
+            ..Settings::default()
+        };
+        assert_eq!(settings_from_proto(&proto::Settings::default(), &other).unwrap(), other);
+        let bad = proto::Settings { scaling: 99, ..Default::default() };
+        assert!(matches!(settings_from_proto(&bad, &base), Err(SettingsError::InvalidValue { field: "scaling", .. })));
+        let no =
+            proto::Settings { components_choice: Some(ComponentsChoice::ComponentsAuto(false)), ..Default::default() };
+        assert!(matches!(patch_from_proto(&no), Err(SettingsError::InvalidValue { field: "components_auto", .. })));
+    }
+}

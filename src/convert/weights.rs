@@ -1,0 +1,191 @@
+//! `ComputeWeightsRequest` ⇄ the window, and a [`WeightSet`] → `ComputeWeightsResponse`.
+
+use super::settings::{criterion_to_proto, settings_to_proto};
+use crate::estimator::{
+    ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, ReturnPanel, Settings, Warning, WeightSet,
+};
+use crate::proto;
+
+fn surface_to_proto(s: &CvSurface) -> proto::CvSurface {
+    let CvSurface { components, kappas, scores, criterion, folds } = s;
+    proto::CvSurface {
+        components: components.iter().map(|&k| k as u32).collect(),
+        kappas: kappas.clone(),
+        scores: Some(proto::Matrix {
+            rows: components.len() as u32,
+            cols: kappas.len() as u32,
+            values: scores.clone(),
+        }),
+        criterion: criterion_to_proto(*criterion).into(),
+        folds: *folds as u32,
+    }
+}
+
+fn factor_to_proto(f: &FactorReport) -> proto::FactorWeight {
+    let FactorReport {
+        name,
+        weight,
+        mean_annualized,
+        volatility_annualized,
+        sharpe_annualized,
+        market_beta,
+        scale,
+        risk_contribution,
+        excluded,
+    } = f;
+    proto::FactorWeight {
+        factor: name.clone(),
+        weight: *weight,
+        mean_annualized: *mean_annualized,
+        volatility_annualized: *volatility_annualized,
+        sharpe_annualized: *sharpe_annualized,
+        market_beta: *market_beta,
+        scale: *scale,
+        risk_contribution: *risk_contribution,
+        excluded: excluded.is_some(),
+        exclusion_reason: excluded.as_ref().map(|(_, r)| r.clone()).unwrap_or_default(),
+    }
+}
+
+fn component_to_proto(c: &ComponentReport) -> proto::ComponentDiagnostics {
+    let ComponentReport { index, eigenvalue, trace_share, sharpe_annualized, coefficient, shrinkage_factor, loadings } =
+        c;
+    proto::ComponentDiagnostics {
+        index: *index as u32,
+        eigenvalue: *eigenvalue,
+        trace_share: *trace_share,
+        sharpe_annualized: *sharpe_annualized,
+        coefficient: *coefficient,
+        shrinkage_factor: *shrinkage_factor,
+        loadings: loadings.clone(),
+    }
+}
+
+fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnostics {
+    let Diagnostics {
+        num_components,
+        kappa,
+        gamma,
+        components_cross_validated,
+        kappa_cross_validated,
+        cv_surface,
+        cv_best_score,
+        cv_sharpe,
+        in_sample_sharpe,
+        ex_ante_volatility,
+        effective_factors,
+        top_sharpe_gross_share,
+        turnover,
+        covariance_condition_number,
+        excluded,
+        warnings,
+        periods,
+        factors_used,
+    } = d;
+    proto::Diagnostics {
+        num_components: *num_components as u32,
+        kappa: *kappa,
+        gamma: *gamma,
+        components_cross_validated: *components_cross_validated,
+        kappa_cross_validated: *kappa_cross_validated,
+        cv_surface: cv_surface.as_ref().map(surface_to_proto),
+        cv_best_score: *cv_best_score,
+        cv_sharpe: *cv_sharpe,
+        in_sample_sharpe: *in_sample_sharpe,
+        ex_ante_volatility: *ex_ante_volatility,
+        effective_factors: *effective_factors,
+        top_sharpe_gross_share: *top_sharpe_gross_share,
+        turnover: *turnover,
+        covariance_condition_number: *covariance_condition_number,
+        excluded: excluded
+            .iter()
+            .map(|ExcludedReport { factor, code, reason }| proto::ExcludedFactor {
+                factor: factor.clone(),
+                reason: reason.clone(),
+                code: (*code).to_owned(),
+            })
+            .collect(),
+        warnings: warnings
+            .iter()
+            .map(|Warning { code, message }| proto::Warning { code: (*code).to_owned(), message: message.clone() })
+            .collect(),
+        periods: *periods as u32,
+        factors_used: *factors_used as u32,
+        effective_settings: Some(settings_to_proto(settings)),
+    }
+}
+
+/// The proto response for a weight set.
+pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWeightsResponse {
+    let WeightSet { factors, market_weight, components, diagnostics, fingerprint, estimator_version, settings } = ws;
+    proto::ComputeWeightsResponse {
+        weights: factors.iter().map(factor_to_proto).collect(),
+        market_weight: *market_weight,
+        components: components.iter().map(component_to_proto).collect(),
+        diagnostics: Some(diagnostics_to_proto(diagnostics, settings)),
+        fingerprint: fingerprint.clone(),
+        estimator_version: (*estimator_version).to_owned(),
+        request_id: request_id.to_owned(),
+    }
+}
+
+/// Splits a request into its window, its settings and its id, without
+/// copying the returns. Validation is the estimator's job.
+pub fn request_into_parts(req: proto::ComputeWeightsRequest) -> (ReturnPanel, proto::Settings, String) {
+    let proto::ComputeWeightsRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        previous_weights,
+        settings,
+        request_id,
+    } = req;
+    let (rows, cols, values) = returns.map_or((0, 0, Vec::new()), |m| (m.rows as usize, m.cols as usize, m.values));
+    let panel = ReturnPanel {
+        factor_names,
+        period_labels,
+        returns: values,
+        rows,
+        cols,
+        // An empty list means "no market" (SPEC §1).
+        market: (!market_returns.is_empty()).then_some(market_returns),
+        previous_weights: previous_weights.into_iter().map(|w| (w.factor, w.weight)).collect(),
+    };
+    (panel, settings.unwrap_or_default(), request_id)
+}
+
+/// A request carrying `panel` with the given settings.
+pub fn request_from_panel(
+    panel: &ReturnPanel,
+    settings: proto::Settings,
+    request_id: &str,
+) -> proto::ComputeWeightsRequest {
+    let ReturnPanel { factor_names, period_labels, returns, rows, cols, market, previous_weights } = panel;
+    proto::ComputeWeightsRequest {
+        factor_names: factor_names.clone(),
+        period_labels: period_labels.clone(),
+        returns: Some(proto::Matrix { rows: *rows as u32, cols: *cols as u32, values: returns.clone() }),
+        market_returns: market.clone().unwrap_or_default(),
+        previous_weights: previous_weights
+            .iter()
+            .map(|(f, w)| proto::FactorWeight { factor: f.clone(), weight: *w, ..Default::default() })
+            .collect(),
+        settings: Some(settings),
+        request_id: request_id.to_owned(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn request_round_trip() {
+        let panel = crate::demo::synthetic_panel(1, 30, 4);
+        let req = request_from_panel(&panel, proto::Settings::default(), "r1");
+        let (back, _, id) = request_into_parts(req);
+        assert_eq!(back, panel);
+        assert_eq!(id, "r1");
+    }
+}
