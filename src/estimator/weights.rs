@@ -168,40 +168,130 @@ pub(crate) fn assemble(
     let n = window.factors_used();
     let t = window.periods();
     let p = f64::from(settings.periods_per_year);
-    let var_dir = mom.portfolio_variance(direction);
-    if !(var_dir > 0.0 && var_dir.is_finite()) {
-        return Err(EstimateError::DegeneratePortfolio {
-            reason: if direction.iter().all(|&w| w == 0.0) {
-                "every weight is zero (for example the L1 penalty removed every component; lower l1_penalty)".into()
-            } else {
-                "the portfolio has zero in-window variance".into()
-            },
-        });
-    }
-    let mean_dir: f64 = direction.iter().zip(&mom.mean).map(|(w, m)| w * m).sum();
-    let hedge_dir: f64 = -direction.iter().zip(&mom.beta).map(|(w, b)| w * b).sum::<f64>();
-    let c = match settings.normalization {
-        Normalization::TargetVolatility => settings.target_volatility / (p * var_dir).sqrt(),
-        Normalization::RiskAversion => match settings.method {
-            // b-implied mean–variance weights divided by γ (SPEC §7).
-            Method::Components | Method::KnsRidge | Method::PlugIn | Method::PlugInLedoitWolf => {
-                1.0 / settings.risk_aversion
-            }
-            // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
-            Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
-        },
-        Normalization::GrossExposure => 1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs()),
-    };
-    if !(c.is_finite() && c != 0.0) {
-        return Err(EstimateError::DegeneratePortfolio { reason: format!("normalisation scale {c} is not usable") });
-    }
-    let w: Vec<f64> = direction.iter().map(|x| c * x).collect();
-    let market_weight = if settings.demarket && window.market.is_some() { c * hedge_dir } else { 0.0 };
-    let sigma_w = mom.sigma_times(&w);
+    let scaled = Normalized::new(window, mom, settings, direction)?;
+    let w = &scaled.weights;
+    let sigma_w = mom.sigma_times(w);
     let var_w: f64 = w.iter().zip(&sigma_w).map(|(a, b)| a * b).sum();
     let gross: f64 = w.iter().map(|x| x.abs()).sum();
+    let sharpe_ann: Vec<f64> = (0..n).map(|j| p.sqrt() * mom.sharpe(j)).collect();
+    let (factors, excluded) = factor_reports(window, mom, model.as_ref(), w, &sigma_w, var_w, &sharpe_ann, p);
+    data_warnings(window, mom, excluded.len(), &mut warnings);
+    let turnover = turnover(panel, &factors, &mut warnings)?;
+    let covariance_condition_number = condition_number(mom, t, n)?;
+    spectrum_warnings(model.as_ref(), covariance_condition_number, t, n, &mut warnings);
 
-    // Per-factor reports in panel order.
+    // Concentration diagnostics.
+    let effective_factors = 1.0 / w.iter().map(|x| (x.abs() / gross).powi(2)).sum::<f64>();
+    let top = (0.3 * n as f64).ceil() as usize;
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&a, &b| sharpe_ann[b].total_cmp(&sharpe_ann[a]));
+    let top_sharpe_gross_share = order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross;
+
+    let mut diagnostics = Diagnostics {
+        num_components: 0,
+        kappa: 0.0,
+        gamma: 0.0,
+        components_cross_validated: false,
+        kappa_cross_validated: false,
+        cv_surface: None,
+        cv_best_score: f64::NAN,
+        cv_sharpe: f64::NAN,
+        in_sample_sharpe: p.sqrt() * scaled.mean_dir * scaled.scale.signum() / scaled.var_dir.sqrt(),
+        ex_ante_volatility: (p * var_w).sqrt(),
+        effective_factors,
+        top_sharpe_gross_share,
+        turnover,
+        covariance_condition_number,
+        excluded,
+        warnings,
+        periods: t,
+        factors_used: n,
+    };
+    let components = match model {
+        Some(m) => model_reports(m, window, settings, p, &mut diagnostics),
+        None => Vec::new(),
+    };
+    Ok(WeightSet {
+        factors,
+        market_weight: scaled.market_weight,
+        components,
+        diagnostics,
+        fingerprint: fingerprint(panel, settings.settings()),
+        estimator_version: super::ESTIMATOR_VERSION,
+        settings: settings.settings().clone(),
+    })
+}
+
+/// The direction scaled by the normalisation (SPEC §7), with its hedge.
+struct Normalized {
+    weights: Vec<f64>,
+    market_weight: f64,
+    /// The scale c applied to the direction.
+    scale: f64,
+    /// Mean and variance of the unscaled direction.
+    mean_dir: f64,
+    var_dir: f64,
+}
+
+impl Normalized {
+    fn new(
+        window: &ReturnWindow,
+        mom: &Moments,
+        settings: &ValidSettings,
+        direction: &[f64],
+    ) -> Result<Normalized, EstimateError> {
+        let p = f64::from(settings.periods_per_year);
+        let var_dir = mom.portfolio_variance(direction);
+        if !(var_dir > 0.0 && var_dir.is_finite()) {
+            return Err(EstimateError::DegeneratePortfolio {
+                reason: if direction.iter().all(|&w| w == 0.0) {
+                    "every weight is zero (for example the L1 penalty removed every component; lower l1_penalty)".into()
+                } else {
+                    "the portfolio has zero in-window variance".into()
+                },
+            });
+        }
+        let mean_dir: f64 = direction.iter().zip(&mom.mean).map(|(w, m)| w * m).sum();
+        let hedge_dir: f64 = -direction.iter().zip(&mom.beta).map(|(w, b)| w * b).sum::<f64>();
+        let c = match settings.normalization {
+            Normalization::TargetVolatility => settings.target_volatility / (p * var_dir).sqrt(),
+            Normalization::RiskAversion => match settings.method {
+                // b-implied mean–variance weights divided by γ (SPEC §7).
+                Method::Components | Method::KnsRidge | Method::PlugIn | Method::PlugInLedoitWolf => {
+                    1.0 / settings.risk_aversion
+                }
+                // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
+                Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
+            },
+            Normalization::GrossExposure => {
+                1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs())
+            }
+        };
+        if !(c.is_finite() && c != 0.0) {
+            return Err(EstimateError::DegeneratePortfolio { reason: format!("normalisation scale {c} is not usable") });
+        }
+        Ok(Normalized {
+            weights: direction.iter().map(|x| c * x).collect(),
+            market_weight: if settings.demarket && window.market.is_some() { c * hedge_dir } else { 0.0 },
+            scale: c,
+            mean_dir,
+            var_dir,
+        })
+    }
+}
+
+/// Per-factor reports in panel order, and the excluded factors.
+#[allow(clippy::too_many_arguments)]
+fn factor_reports(
+    window: &ReturnWindow,
+    mom: &Moments,
+    model: Option<&ComponentModel>,
+    w: &[f64],
+    sigma_w: &[f64],
+    var_w: f64,
+    sharpe_ann: &[f64],
+    p: f64,
+) -> (Vec<FactorReport>, Vec<ExcludedReport>) {
     let mut factors: Vec<FactorReport> = window
         .names
         .iter()
@@ -217,7 +307,6 @@ pub(crate) fn assemble(
             excluded: None,
         })
         .collect();
-    let sharpe_ann: Vec<f64> = (0..n).map(|j| p.sqrt() * mom.sharpe(j)).collect();
     for (j, &col) in window.used.iter().enumerate() {
         let f = &mut factors[col];
         f.weight = w[j];
@@ -225,7 +314,7 @@ pub(crate) fn assemble(
         f.volatility_annualized = p.sqrt() * mom.sd[j];
         f.sharpe_annualized = sharpe_ann[j];
         f.market_beta = mom.beta[j];
-        f.scale = model.as_ref().map_or(0.0, |m| m.basis.scale[j]);
+        f.scale = model.map_or(0.0, |m| m.basis.scale[j]);
         f.risk_contribution = w[j] * sigma_w[j] / var_w;
     }
     let excluded: Vec<ExcludedReport> = window
@@ -240,10 +329,16 @@ pub(crate) fn assemble(
     for (e, r) in window.excluded.iter().zip(&excluded) {
         factors[e.column].excluded = Some((r.code, r.reason.clone()));
     }
-    if !excluded.is_empty() {
+    (factors, excluded)
+}
+
+/// Warnings about the data: exclusions, units, a short window.
+fn data_warnings(window: &ReturnWindow, mom: &Moments, excluded: usize, warnings: &mut Vec<Warning>) {
+    let (n, t) = (window.factors_used(), window.periods());
+    if excluded > 0 {
         warnings.push(Warning {
             code: "factors-excluded",
-            message: format!("{} of {} factors were excluded; see `excluded`", excluded.len(), window.names.len()),
+            message: format!("{excluded} of {} factors were excluded; see `excluded`", window.names.len()),
         });
     }
     // Units: decimal returns have per-period volatilities far inside (1e-6, 1).
@@ -273,37 +368,34 @@ pub(crate) fn assemble(
             ),
         });
     }
+}
 
-    // Concentration diagnostics.
-    let effective_factors = 1.0 / w.iter().map(|x| (x.abs() / gross).powi(2)).sum::<f64>();
-    let top = (0.3 * n as f64).ceil() as usize;
-    let mut order: Vec<usize> = (0..n).collect();
-    order.sort_by(|&a, &b| sharpe_ann[b].total_cmp(&sharpe_ann[a]));
-    let top_sharpe_gross_share = order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross;
-
-    let turnover = turnover(panel, &factors, &mut warnings)?;
-
-    let covariance_condition_number = if t <= n {
+/// The condition number of the factor covariance (infinite when T ≤ N).
+fn condition_number(mom: &Moments, t: usize, n: usize) -> Result<f64, EstimateError> {
+    if t <= n {
         // With T ≤ N the sample covariance is singular: no decomposition needed.
-        f64::INFINITY
-    } else {
-        // The extreme eigenvalues of X'X (the ratio is the same for
-        // Σ = X'X/(T−1)), accurate to about ε·cond relative, so a ratio
-        // beyond N/ε is reported as numerically singular.
-        let gram = dense::gram_tn(mom.centered.as_ref());
-        let (hi, lo) = dense::sym_extreme_eigenvalues(gram.as_ref(), "covariance condition number")?;
-        if lo > hi * n as f64 * f64::EPSILON { hi / lo } else { f64::INFINITY }
-    };
+        return Ok(f64::INFINITY);
+    }
+    // The extreme eigenvalues of X'X (the ratio is the same for
+    // Σ = X'X/(T−1)), accurate to about ε·cond relative, so a ratio
+    // beyond N/ε is reported as numerically singular.
+    let gram = dense::gram_tn(mom.centered.as_ref());
+    let (hi, lo) = dense::sym_extreme_eigenvalues(gram.as_ref(), "covariance condition number")?;
+    Ok(if lo > hi * n as f64 * f64::EPSILON { hi / lo } else { f64::INFINITY })
+}
 
-    if t > n && covariance_condition_number > ILL_CONDITIONED {
+/// Warnings about the spectrum: near-collinear factors, components that are
+/// not separated at the chosen K.
+fn spectrum_warnings(model: Option<&ComponentModel>, cond: f64, t: usize, n: usize, warnings: &mut Vec<Warning>) {
+    if t > n && cond > ILL_CONDITIONED {
         warnings.push(Warning {
             code: "ill-conditioned-covariance",
             message: format!(
-                "the factor covariance has condition number {covariance_condition_number:.2e} (above {ILL_CONDITIONED:.0e}): some factors are nearly collinear, and weights along the weakest directions are unreliable"
+                "the factor covariance has condition number {cond:.2e} (above {ILL_CONDITIONED:.0e}): some factors are nearly collinear, and weights along the weakest directions are unreliable"
             ),
         });
     }
-    if let Some(m) = &model
+    if let Some(m) = model
         && let (Some(&lk), Some(&lnext), Some(&l1)) = (
             m.k.checked_sub(1).and_then(|i| m.basis.eigenvalues.get(i)),
             m.basis.eigenvalues.get(m.k),
@@ -322,67 +414,43 @@ pub(crate) fn assemble(
             ),
         });
     }
+}
 
-    let mut components = Vec::new();
-    let mut diag = Diagnostics {
-        num_components: 0,
-        kappa: 0.0,
-        gamma: 0.0,
-        components_cross_validated: false,
-        kappa_cross_validated: false,
-        cv_surface: None,
-        cv_best_score: f64::NAN,
-        cv_sharpe: f64::NAN,
-        in_sample_sharpe: p.sqrt() * mean_dir * c.signum() / var_dir.sqrt(),
-        ex_ante_volatility: (p * var_w).sqrt(),
-        effective_factors,
-        top_sharpe_gross_share,
-        turnover,
-        covariance_condition_number,
-        excluded,
-        warnings: Vec::new(),
-        periods: t,
-        factors_used: n,
-    };
-    if let Some(m) = model {
-        for k in 0..m.k {
+/// The component reports, and the model's choices in the diagnostics.
+fn model_reports(
+    m: ComponentModel,
+    window: &ReturnWindow,
+    settings: &ValidSettings,
+    p: f64,
+    diag: &mut Diagnostics,
+) -> Vec<ComponentReport> {
+    let components = (0..m.k)
+        .map(|k| {
             let sf = m.basis.sigma_f[(k, k)];
-            components.push(ComponentReport {
+            let mut loadings = vec![0.0; window.names.len()];
+            for (j, &col) in window.used.iter().enumerate() {
+                loadings[col] = m.basis.q[(j, k)];
+            }
+            ComponentReport {
                 index: k + 1,
                 eigenvalue: m.basis.eigenvalues[k],
                 trace_share: m.basis.eigenvalues[k] / m.basis.trace,
                 sharpe_annualized: if sf > 0.0 { p.sqrt() * m.basis.mu_f[k] / sf.sqrt() } else { 0.0 },
                 coefficient: m.b[k],
                 shrinkage_factor: sf / (sf + m.gamma),
-                loadings: {
-                    let mut l = vec![0.0; window.names.len()];
-                    for (j, &col) in window.used.iter().enumerate() {
-                        l[col] = m.basis.q[(j, k)];
-                    }
-                    l
-                },
-            });
-        }
-        diag.num_components = m.k;
-        diag.kappa = m.kappa;
-        diag.gamma = m.gamma;
-        diag.components_cross_validated = settings.components.fixed().is_none();
-        diag.kappa_cross_validated = settings.kappa.fixed().is_none();
-        diag.cv_best_score = m.best_score;
-        diag.cv_sharpe = m.held_out_sharpe;
-        diag.cv_surface = m.surface;
-    }
-    diag.warnings = warnings;
-
-    Ok(WeightSet {
-        factors,
-        market_weight,
-        components,
-        diagnostics: diag,
-        fingerprint: fingerprint(panel, settings.settings()),
-        estimator_version: super::ESTIMATOR_VERSION,
-        settings: settings.settings().clone(),
-    })
+                loadings,
+            }
+        })
+        .collect();
+    diag.num_components = m.k;
+    diag.kappa = m.kappa;
+    diag.gamma = m.gamma;
+    diag.components_cross_validated = settings.components.fixed().is_none();
+    diag.kappa_cross_validated = settings.kappa.fixed().is_none();
+    diag.cv_best_score = m.best_score;
+    diag.cv_sharpe = m.held_out_sharpe;
+    diag.cv_surface = m.surface;
+    components
 }
 
 fn turnover(
