@@ -290,9 +290,35 @@ pub fn summary_table(r: &BacktestResult) -> String {
 /// I/O errors with the path, or a chart that could not be drawn.
 pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> {
     std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
-    let chart = |res: Result<String, String>| res.map_err(|e| anyhow::anyhow!("chart: {e}"));
+    std::fs::write(dir.join("returns.csv"), returns_csv(r)).context("writing returns.csv")?;
+    std::fs::write(dir.join("summary.json"), serde_json::to_string_pretty(r)? + "\n")
+        .context("writing summary.json")?;
+    let mut charts = performance_charts(r)?;
+    charts.extend(latest_fit_charts(r)?);
+    charts.extend(over_time_charts(r)?);
+    let mut html = header(r, title);
+    html.push_str(&performance_section(r));
+    html.push_str(&comparison_section(r));
+    html.push_str(&alpha_section(r));
+    html.push_str(&pricing_section(r));
+    html.push_str("<h2>Charts</h2>");
+    for (h, caption, svg) in charts {
+        let _ = write!(html, "<h3>{}</h3><p class=\"note\">{}</p>{}", esc(h), esc(caption), svg);
+    }
+    html.push_str("</body></html>\n");
+    std::fs::write(dir.join("report.html"), html).context("writing report.html")?;
+    Ok(())
+}
 
-    // returns.csv: period, then one column per strategy, the configured method first.
+/// A chart: its heading, caption and SVG.
+type Chart = (&'static str, &'static str, String);
+
+fn chart(res: Result<String, String>) -> anyhow::Result<String> {
+    res.map_err(|e| anyhow::anyhow!("chart: {e}"))
+}
+
+/// returns.csv: period, then one column per strategy, the configured method first.
+fn returns_csv(r: &BacktestResult) -> String {
     let mut csv = String::from("period");
     for s in &r.strategies {
         csv.push(',');
@@ -306,10 +332,11 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
         }
         csv.push('\n');
     }
-    std::fs::write(dir.join("returns.csv"), csv).context("writing returns.csv")?;
-    std::fs::write(dir.join("summary.json"), serde_json::to_string_pretty(r)? + "\n")
-        .context("writing summary.json")?;
+    csv
+}
 
+/// Cumulative returns and the Sharpe-against-K sweep.
+fn performance_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
     let cumulative: Vec<(String, Vec<f64>)> = r
         .strategies
         .iter()
@@ -349,6 +376,12 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
             chart(xy_chart("OOS Sharpe ratio against the number of components", "components K", "annualised Sharpe ratio", &by_scaling))?,
         ));
     }
+    Ok(charts)
+}
+
+/// The latest window's CV surface and weights.
+fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
+    let mut charts = Vec::new();
     if let Some(ws) = &r.last_fit {
         if let Some(s) = &ws.diagnostics.cv_surface {
             let crit =
@@ -367,6 +400,12 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
             chart(weights_chart(&names, &weights, ws.market_weight))?,
         ));
     }
+    Ok(charts)
+}
+
+/// K, κ and concentration at each refit.
+fn over_time_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
+    let mut charts = Vec::new();
     let fits: Vec<&crate::evaluate::StrategyResult> =
         r.strategies.iter().filter(|s| s.chosen_k.iter().any(|&k| k > 0)).collect();
     if let Some(conf) = fits.first() {
@@ -405,7 +444,11 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
             chart(line_chart("Gross weight in the top-30% Sharpe factors (%)", "share of gross weight, %", &refit_labels, &share, false))?,
         ));
     }
+    Ok(charts)
+}
 
+/// The page head, the run's description and the caution.
+fn header(r: &BacktestResult, title: &str) -> String {
     let mut html = String::new();
     let _ = write!(
         html,
@@ -434,6 +477,11 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
         r.nw_lag
     );
     html.push_str("<p class=\"caution\">Caution: a backtest is one path of past data. Out-of-sample results carry estimation error, depend on the period and on the configurations tried (see the deflated Sharpe ratio), and do not predict future returns. Validate before live use and apply your own risk and compliance process.</p>");
+    html
+}
+
+fn performance_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
     html.push_str("<h2>Performance</h2><table><tr><th>strategy</th><th>mean</th><th>vol</th><th>Sharpe</th><th>SE iid</th><th>SE NW</th><th>CER</th><th>max DD</th><th>turnover</th><th>net Sharpe</th></tr>");
     for s in &r.strategies {
         let m = &s.metrics;
@@ -453,6 +501,11 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
         );
     }
     html.push_str("</table><p class=\"note\">Annualised; Sharpe standard errors after Lo (2002), iid and Newey–West; CER = P·(mean − γ/2·var); turnover Σ|Δw| + |Δw_m| per refit; net of linear costs.</p>");
+    html
+}
+
+fn comparison_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
     html.push_str("<h2>Is the configured method better?</h2><table><tr><th>against</th><th>ΔSharpe</th><th>z (JKM)</th><th>p-value</th></tr>");
     for c in &r.comparisons {
         let _ = write!(
@@ -472,6 +525,11 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
         r.trials,
         f(r.dsr, 3)
     );
+    html
+}
+
+fn alpha_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
     if !r.alphas.is_empty() {
         html.push_str("<h2>Alphas against benchmarks</h2><table><tr><th>strategy</th><th>benchmarks</th><th>alpha (ann.)</th><th>t (NW)</th><th>t (robust)</th><th>R²</th></tr>");
         for a in &r.alphas {
@@ -488,6 +546,11 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
         }
         html.push_str("</table>");
     }
+    html
+}
+
+fn pricing_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
     if let Some(p) = &r.pricing {
         let _ = write!(
             html,
@@ -501,11 +564,5 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
             p.grs.as_ref().map_or("n/a".into(), |g| f(g.p_value, 4)),
         );
     }
-    html.push_str("<h2>Charts</h2>");
-    for (h, caption, svg) in charts {
-        let _ = write!(html, "<h3>{}</h3><p class=\"note\">{}</p>{}", esc(h), esc(caption), svg);
-    }
-    html.push_str("</body></html>\n");
-    std::fs::write(dir.join("report.html"), html).context("writing report.html")?;
-    Ok(())
+    html
 }
