@@ -65,46 +65,33 @@ impl fmt::Display for CsvPanel {
     }
 }
 
-/// Splits one CSV record: commas separate fields, double quotes protect
-/// commas, and `""` inside quotes is a quote (RFC 4180, one line per record).
-fn split_record(line: &str) -> Result<Vec<String>, (usize, &'static str)> {
-    let mut fields = Vec::new();
-    let mut cur = String::new();
-    let mut chars = line.chars().peekable();
-    let mut in_quotes = false;
-    let mut quoted_field = false;
-    while let Some(ch) = chars.next() {
-        if in_quotes {
-            if ch == '"' {
-                if chars.peek() == Some(&'"') {
-                    cur.push('"');
-                    chars.next();
-                } else {
-                    in_quotes = false;
-                }
-            } else {
-                cur.push(ch);
-            }
-        } else {
-            match ch {
-                ',' => {
-                    fields.push(std::mem::take(&mut cur));
-                    quoted_field = false;
-                }
-                '"' if cur.trim().is_empty() && !quoted_field => {
-                    cur.clear();
-                    in_quotes = true;
-                    quoted_field = true;
-                }
-                _ => cur.push(ch),
-            }
+/// The records of CSV text (RFC 4180 through the `csv` crate), each with its
+/// one-based line; blank lines are skipped and fields trimmed.
+fn records(text: &str, file: &str) -> Result<Vec<(usize, Vec<String>)>, CsvError> {
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
+    let mut reader =
+        csv::ReaderBuilder::new().has_headers(false).flexible(true).trim(csv::Trim::All).from_reader(text.as_bytes());
+    // Lines from byte offsets: the reader counts neither the blank lines it
+    // skips nor them in a record's start, so step over them here.
+    let bytes = text.as_bytes();
+    let line_at = |p: Option<&csv::Position>| {
+        let mut byte = p.map_or(0, |p| p.byte() as usize).min(bytes.len());
+        while byte < bytes.len() && matches!(bytes[byte], b'\n' | b'\r') {
+            byte += 1;
         }
+        1 + bytes[..byte].iter().filter(|&&b| b == b'\n').count()
+    };
+    let mut out = Vec::new();
+    for record in reader.records() {
+        let record =
+            record.map_err(|e| err(file, line_at(e.position()), 1, None, format!("unreadable record: {e}")))?;
+        let line = line_at(record.position());
+        if record.iter().all(str::is_empty) {
+            continue;
+        }
+        out.push((line, record.iter().map(str::to_owned).collect()));
     }
-    if in_quotes {
-        return Err((fields.len() + 1, "unterminated quoted field"));
-    }
-    fields.push(cur);
-    Ok(fields.into_iter().map(|f| f.trim().to_owned()).collect())
+    Ok(out)
 }
 
 fn err(file: &str, line: usize, column: usize, header: Option<&str>, message: impl Into<String>) -> CsvError {
@@ -134,14 +121,12 @@ fn parse_cell(cell: &str) -> Result<f64, &'static str> {
 /// # Errors
 /// A [`CsvError`] naming the line and column of the first problem.
 pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<CsvPanel, CsvError> {
-    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
-    let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty());
-    let Some((hline, header)) = lines.next() else {
+    let mut rows = records(text, file)?.into_iter();
+    let Some((hline, header)) = rows.next() else {
         return Err(err(file, 1, 1, None, "the file is empty; expected a header row"));
     };
-    let header = split_record(header).map_err(|(c, m)| err(file, hline + 1, c, None, m))?;
     if header.len() < 2 {
-        return Err(err(file, hline + 1, 1, None, "the header needs a period column and at least one factor column"));
+        return Err(err(file, hline, 1, None, "the header needs a period column and at least one factor column"));
     }
     let market_column = match market {
         Some(m) => Some(
@@ -150,7 +135,7 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
                 .skip(1)
                 .position(|h| h == m)
                 .map(|i| i + 2)
-                .ok_or_else(|| err(file, hline + 1, 1, None, format!("no column named \"{m}\" for --market")))?,
+                .ok_or_else(|| err(file, hline, 1, None, format!("no column named \"{m}\" for --market")))?,
         ),
         None => None,
     };
@@ -162,12 +147,12 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
             continue;
         }
         if h.is_empty() {
-            return Err(err(file, hline + 1, col, None, "factor name is empty"));
+            return Err(err(file, hline, col, None, "factor name is empty"));
         }
         if let Some(first) = names.iter().position(|n| n == h) {
             return Err(err(
                 file,
-                hline + 1,
+                hline,
                 col,
                 Some(h),
                 format!("duplicate factor name (first in column {})", factor_columns[first]),
@@ -177,16 +162,14 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
         factor_columns.push(col);
     }
     if names.is_empty() {
-        return Err(err(file, hline + 1, 1, None, "no factor columns besides the market"));
+        return Err(err(file, hline, 1, None, "no factor columns besides the market"));
     }
 
     let mut labels = Vec::new();
     let mut values = Vec::new();
     let mut market_values = market_column.map(|_| Vec::new());
     let mut previous: Option<((u32, u32, u32), String)> = None;
-    for (idx, line) in lines {
-        let lno = idx + 1;
-        let rec = split_record(line).map_err(|(c, m)| err(file, lno, c, None, m))?;
+    for (lno, rec) in rows {
         if rec.len() != header.len() {
             return Err(err(
                 file,
@@ -263,19 +246,15 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
 /// # Errors
 /// A [`CsvError`] naming the line and column of the first problem.
 pub fn parse_weights(text: &str, file: &str) -> Result<Vec<(String, f64)>, CsvError> {
-    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
-    let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty());
-    let Some((hline, header)) = lines.next() else {
+    let mut rows = records(text, file)?.into_iter();
+    let Some((hline, header)) = rows.next() else {
         return Err(err(file, 1, 1, None, "the file is empty; expected the header factor,weight"));
     };
-    let header = split_record(header).map_err(|(c, m)| err(file, hline + 1, c, None, m))?;
     if header.len() != 2 || !header[0].eq_ignore_ascii_case("factor") || !header[1].eq_ignore_ascii_case("weight") {
-        return Err(err(file, hline + 1, 1, None, "expected the header factor,weight"));
+        return Err(err(file, hline, 1, None, "expected the header factor,weight"));
     }
     let mut out: Vec<(String, f64)> = Vec::new();
-    for (idx, line) in lines {
-        let lno = idx + 1;
-        let rec = split_record(line).map_err(|(c, m)| err(file, lno, c, None, m))?;
+    for (lno, rec) in rows {
         if rec.len() != 2 {
             return Err(err(
                 file,
@@ -334,5 +313,11 @@ mod tests {
         assert_eq!((e.line, e.column), (2, 2));
         let e = parse_returns("period,a,a\n", "t.csv", None).unwrap_err();
         assert_eq!((e.line, e.column), (1, 3));
+        // Blank lines keep their place in the count.
+        let e = parse_returns("period,a\n\n2001-01,x\n", "t.csv", None).unwrap_err();
+        assert_eq!((e.line, e.column), (3, 2));
+        // A quote left open swallows the next line into the field, which is then no number.
+        let e = parse_returns("period,a\n2001-01,\"0.1\n2001-02,0.2\n", "t.csv", None).unwrap_err();
+        assert_eq!((e.line, e.column), (2, 2));
     }
 }

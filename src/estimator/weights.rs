@@ -263,12 +263,12 @@ impl Normalized {
                 // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
                 Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
             },
-            Normalization::GrossExposure => {
-                1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs())
-            }
+            Normalization::GrossExposure => 1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs()),
         };
         if !(c.is_finite() && c != 0.0) {
-            return Err(EstimateError::DegeneratePortfolio { reason: format!("normalisation scale {c} is not usable") });
+            return Err(EstimateError::DegeneratePortfolio {
+                reason: format!("normalisation scale {c} is not usable"),
+            });
         }
         Ok(Normalized {
             weights: direction.iter().map(|x| c * x).collect(),
