@@ -32,13 +32,6 @@ pub struct CvSurface {
     pub folds: usize,
 }
 
-impl CvSurface {
-    /// Score at row `ki`, column `ci`.
-    pub fn score(&self, ki: usize, ci: usize) -> f64 {
-        self.scores[ki * self.kappas.len() + ci]
-    }
-}
-
 /// Outcome of cross-validation.
 #[derive(Clone, Debug)]
 pub struct CrossValidation {

@@ -169,17 +169,6 @@ pub enum SettingsError {
     File { message: String },
 }
 
-impl SettingsError {
-    /// The setting the error names, when it names one.
-    pub fn field(&self) -> Option<&str> {
-        match self {
-            SettingsError::UnknownField { field } => Some(field),
-            SettingsError::InvalidValue { field, .. } | SettingsError::OutOfRange { field, .. } => Some(field),
-            SettingsError::File { .. } => None,
-        }
-    }
-}
-
 /// Any failure of an estimation.
 #[derive(Clone, Debug, Error, PartialEq)]
 #[non_exhaustive]

@@ -283,7 +283,7 @@ settings_table! {
 
     /// Largest κ of the CV grid (annualised).
     kappa_grid_max: f64 = 10.0;
-    range "(kappa_grid_min, 100]" if |v| within(*v, 0.0, 100.0);
+    range "(`kappa_grid_min`, 100]" if |v| within(*v, 0.0, 100.0);
     meaning "largest κ of the grid";
 
     /// Number of log-spaced κ values in the CV grid.
@@ -362,6 +362,7 @@ impl Settings {
         let table = toml::Table::try_from(self).ok()?;
         Some(match table.get(key)? {
             toml::Value::String(s) => format!("`{s}`"),
+            toml::Value::Float(f) => format!("{f}"),
             other => other.to_string(),
         })
     }
@@ -415,7 +416,7 @@ impl Settings {
             return Err(SettingsError::OutOfRange {
                 field: "kappa_grid_max",
                 value: self.kappa_grid_max.to_string(),
-                range: "(kappa_grid_min, 100]",
+                range: "(`kappa_grid_min`, 100]",
             });
         }
         Ok(ValidSettings { inner: self })
@@ -510,6 +511,42 @@ mod tests {
         assert_eq!(g.len(), 40);
         assert!((g[0] - 0.01).abs() < 1e-15);
         assert!((g[39] - 10.0).abs() < 1e-12);
+    }
+
+    /// The README's Settings table, row for row, as the declaration renders it.
+    fn table_rows() -> Vec<String> {
+        let d = Settings::default();
+        Settings::TABLE
+            .iter()
+            .map(|i| format!("| `{}` | {} | {} | {} |", i.name, d.shown_value(i.name).unwrap(), i.range, i.meaning))
+            .collect()
+    }
+
+    #[test]
+    fn readme_settings_table_is_the_declared_table() {
+        let readme = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/README.md")).unwrap();
+        let rows: Vec<&str> = readme
+            .lines()
+            .skip_while(|l| !l.starts_with("## Settings"))
+            .skip(1)
+            .take_while(|l| !l.starts_with("## "))
+            .filter(|l| l.starts_with("| `"))
+            .collect();
+        let want = table_rows();
+        assert_eq!(rows, want, "the README's Settings table should read:\n{}", want.join("\n"));
+        assert_eq!(Settings::KEYS.len(), Settings::TABLE.len());
+    }
+
+    #[test]
+    fn every_key_sets_and_every_default_is_in_range() {
+        let d = Settings::default();
+        for &key in Settings::KEYS {
+            let shown = d.shown_value(key).unwrap().replace('`', "");
+            let mut s = Settings::default();
+            s.set(key, &shown).unwrap_or_else(|e| panic!("{key}={shown}: {e}"));
+            assert_eq!(s, d, "{key}: its shown default sets the same value");
+        }
+        assert!(d.check().is_ok());
     }
 
     #[test]

@@ -30,6 +30,15 @@ impl WeightsApi {
                 max_backtest_fits: s.max_backtest_fits,
                 max_request_bytes_estimate: s.max_request_bytes_estimate,
             }),
+            settings: estimator::Settings::TABLE
+                .iter()
+                .map(|info| proto::SettingDescription {
+                    name: info.name.to_owned(),
+                    default_value: c.defaults.shown_value(info.name).unwrap_or_default().replace('`', ""),
+                    range: info.range.to_owned(),
+                    meaning: info.meaning.to_owned(),
+                })
+                .collect(),
         }))
     }
 }

@@ -2,21 +2,25 @@
 //! method and status code under the conventional names
 //! (`grpc_server_started_total`, `grpc_server_handled_total`,
 //! `grpc_server_handling_seconds`), the service's own gauges and histograms,
-//! and a small HTTP/1.1 endpoint that serves them in the text exposition
-//! format (version 0.0.4) at `GET /metrics`.
+//! and a small HTTP/1.1 endpoint that serves them at `GET /metrics`, encoded
+//! by the `prometheus-client` crate in the OpenMetrics text format.
 
-use std::collections::BTreeMap;
 use std::convert::Infallible;
-use std::fmt::Write as _;
 use std::future::Future;
 use std::pin::Pin;
-use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::{Arc, Mutex, PoisonError};
+use std::sync::Arc;
 use std::task::{Context, Poll};
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use bytes::Bytes;
 use http_body::{Body, Frame, SizeHint};
+use prometheus_client::encoding::EncodeLabelSet;
+use prometheus_client::metrics::counter::Counter;
+use prometheus_client::metrics::family::Family;
+use prometheus_client::metrics::gauge::{ConstGauge, Gauge};
+use prometheus_client::metrics::histogram::Histogram;
+use prometheus_client::metrics::info::Info;
+use prometheus_client::registry::{Registry, Unit};
 use tokio::net::TcpListener;
 
 /// Upper bounds (seconds) of `grpc_server_handling_seconds`.
@@ -28,47 +32,32 @@ pub const PHASE_BUCKETS: [f64; 13] =
 /// Upper bounds of `keelson_problem_cells` (periods × factors).
 pub const CELL_BUCKETS: [f64; 10] = [100.0, 1e3, 3e3, 1e4, 3e4, 1e5, 3e5, 1e6, 3e6, 1e7];
 
-#[derive(Clone, Debug)]
-struct Histogram {
-    bounds: &'static [f64],
-    counts: Vec<u64>,
-    sum: f64,
-    count: u64,
-}
-
-impl Histogram {
-    fn new(bounds: &'static [f64]) -> Histogram {
-        Histogram { bounds, counts: vec![0; bounds.len()], sum: 0.0, count: 0 }
-    }
-
-    fn observe(&mut self, v: f64) {
-        if let Some(i) = self.bounds.iter().position(|&b| v <= b) {
-            self.counts[i] += 1;
-        }
-        self.sum += v;
-        self.count += 1;
-    }
-
-    fn render(&self, out: &mut String, name: &str, labels: &str) {
-        let sep = if labels.is_empty() { "" } else { "," };
-        let mut cumulative = 0;
-        for (b, c) in self.bounds.iter().zip(&self.counts) {
-            cumulative += c;
-            let _ = writeln!(out, "{name}_bucket{{{labels}{sep}le=\"{b}\"}} {cumulative}");
-        }
-        let _ = writeln!(out, "{name}_bucket{{{labels}{sep}le=\"+Inf\"}} {}", self.count);
-        let braces = if labels.is_empty() { String::new() } else { format!("{{{labels}}}") };
-        let _ = writeln!(out, "{name}_sum{braces} {}", self.sum);
-        let _ = writeln!(out, "{name}_count{braces} {}", self.count);
-    }
-}
-
-/// Service, method and RPC type of a call, from its HTTP/2 path.
-#[derive(Clone, Debug, PartialEq, Eq, PartialOrd, Ord)]
+/// Service, method and RPC type of a call, from its HTTP/2 path: the labels
+/// of the `grpc_server_*` series.
+#[derive(Clone, Debug, PartialEq, Eq, Hash, EncodeLabelSet)]
 struct Rpc {
-    service: String,
-    method: String,
-    kind: &'static str,
+    grpc_service: String,
+    grpc_method: String,
+    grpc_type: &'static str,
+}
+
+/// [`Rpc`] and the status code of a finished call.
+#[derive(Clone, Debug, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct Handled {
+    grpc_service: String,
+    grpc_method: String,
+    grpc_type: &'static str,
+    grpc_code: &'static str,
+}
+
+#[derive(Clone, Debug, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct ReasonLabel {
+    reason: &'static str,
+}
+
+#[derive(Clone, Debug, PartialEq, Eq, Hash, EncodeLabelSet)]
+struct PhaseLabel {
+    phase: &'static str,
 }
 
 impl Rpc {
@@ -83,23 +72,19 @@ impl Rpc {
         };
         // Bound the label set: anything that is not a gRPC path shares one series.
         if service.is_empty() || method.is_empty() || service.len() > 100 || method.len() > 100 {
-            return Rpc { service: "unknown".into(), method: "unknown".into(), kind: "unary" };
+            return Rpc { grpc_service: "unknown".into(), grpc_method: "unknown".into(), grpc_type: "unary" };
         }
-        Rpc { service, method, kind }
+        Rpc { grpc_service: service, grpc_method: method, grpc_type: kind }
     }
 
-    fn labels(&self) -> String {
-        format!(
-            "grpc_service=\"{}\",grpc_method=\"{}\",grpc_type=\"{}\"",
-            escape(&self.service),
-            escape(&self.method),
-            self.kind
-        )
+    fn with_code(&self, grpc_code: &'static str) -> Handled {
+        Handled {
+            grpc_service: self.grpc_service.clone(),
+            grpc_method: self.grpc_method.clone(),
+            grpc_type: self.grpc_type,
+            grpc_code,
+        }
     }
-}
-
-fn escape(v: &str) -> String {
-    v.replace('\\', "\\\\").replace('"', "\\\"").replace('\n', "\\n")
 }
 
 /// gRPC status code names as conventionally used in metric labels.
@@ -137,37 +122,115 @@ pub enum ShedReason {
     OverBudget,
 }
 
-#[derive(Debug, Default)]
-struct Calls {
-    started: BTreeMap<Rpc, u64>,
-    handled: BTreeMap<(Rpc, &'static str), u64>,
-    handling: BTreeMap<Rpc, Histogram>,
+type Histograms<L> = Family<L, Histogram, fn() -> Histogram>;
+
+fn handling_histogram() -> Histogram {
+    Histogram::new(HANDLING_BUCKETS.iter().copied())
 }
 
-/// Every metric the server exports.
+fn phase_histogram() -> Histogram {
+    Histogram::new(PHASE_BUCKETS.iter().copied())
+}
+
+/// Every metric the server exports, registered once in a `prometheus-client`
+/// registry; the gauges read at scrape time are set just before encoding.
 #[derive(Debug)]
 pub struct Metrics {
-    calls: Mutex<Calls>,
-    shed_overloaded: AtomicU64,
-    shed_draining: AtomicU64,
-    shed_budget: AtomicU64,
-    panics: AtomicU64,
-    cells: Mutex<Histogram>,
-    phases: Mutex<BTreeMap<&'static str, Histogram>>,
-    started_at: SystemTime,
+    registry: Registry,
+    started: Family<Rpc, Counter>,
+    handled: Family<Handled, Counter>,
+    handling: Histograms<Rpc>,
+    shed: Family<ReasonLabel, Counter>,
+    panics: Counter,
+    stopped_early: Counter,
+    cells: Histogram,
+    phases: Histograms<PhaseLabel>,
+    in_flight: Gauge,
+    computing: Gauge,
+    max_in_flight: Gauge,
+    draining: Gauge,
+    resident: Gauge,
 }
 
 impl Default for Metrics {
     fn default() -> Self {
+        let started = Family::<Rpc, Counter>::default();
+        let handled = Family::<Handled, Counter>::default();
+        let handling: Histograms<Rpc> = Family::new_with_constructor(handling_histogram);
+        let shed = Family::<ReasonLabel, Counter>::default();
+        let panics = Counter::default();
+        let stopped_early = Counter::default();
+        let cells = Histogram::new(CELL_BUCKETS.iter().copied());
+        let phases: Histograms<PhaseLabel> = Family::new_with_constructor(phase_histogram);
+        let (in_flight, computing, max_in_flight, draining, resident) =
+            (Gauge::default(), Gauge::default(), Gauge::default(), Gauge::default(), Gauge::default());
+        // Every reason is present from the start, at 0.
+        for reason in ["overloaded", "draining", "over_budget"] {
+            let _ = shed.get_or_create(&ReasonLabel { reason });
+        }
+        let mut registry = Registry::default();
+        registry.register("grpc_server_started", "Total number of RPCs started on the server", started.clone());
+        registry.register(
+            "grpc_server_handled",
+            "Total number of RPCs completed on the server, regardless of success or failure",
+            handled.clone(),
+        );
+        registry.register_with_unit(
+            "grpc_server_handling",
+            "Histogram of response latency of gRPC that had been application-level handled by the server",
+            Unit::Seconds,
+            handling.clone(),
+        );
+        registry.register("keelson_requests_in_flight", "Requests admitted and not finished", in_flight.clone());
+        registry.register("keelson_requests_computing", "Requests computing on the worker pool", computing.clone());
+        registry.register("keelson_max_in_flight", "Configured admission limit", max_in_flight.clone());
+        registry.register("keelson_draining", "1 while the server drains for shutdown", draining.clone());
+        registry.register("keelson_requests_shed", "Requests refused before any work, by reason", shed.clone());
+        registry.register(
+            "keelson_request_panics",
+            "Requests whose computation panicked (answered INTERNAL)",
+            panics.clone(),
+        );
+        registry.register(
+            "keelson_computations_stopped_early",
+            "Computations stopped by a deadline or a cancellation",
+            stopped_early.clone(),
+        );
+        registry.register("keelson_problem_cells", "Periods times factors of admitted windows", cells.clone());
+        registry.register_with_unit(
+            "keelson_estimator_phase",
+            "Time per estimator phase of each fit",
+            Unit::Seconds,
+            phases.clone(),
+        );
+        registry.register_with_unit("process_resident_memory", "Resident memory size", Unit::Bytes, resident.clone());
+        let start = SystemTime::now().duration_since(UNIX_EPOCH).unwrap_or_default().as_secs() as i64;
+        registry.register_with_unit(
+            "process_start_time",
+            "Start time of the process since the Unix epoch",
+            Unit::Seconds,
+            ConstGauge::new(start),
+        );
+        registry.register(
+            "keelson_build",
+            "Build of the running server",
+            Info::new(vec![("version", env!("CARGO_PKG_VERSION")), ("estimator", crate::estimator::ESTIMATOR_VERSION)]),
+        );
         Metrics {
-            calls: Mutex::default(),
-            shed_overloaded: AtomicU64::new(0),
-            shed_draining: AtomicU64::new(0),
-            shed_budget: AtomicU64::new(0),
-            panics: AtomicU64::new(0),
-            cells: Mutex::new(Histogram::new(&CELL_BUCKETS)),
-            phases: Mutex::default(),
-            started_at: SystemTime::now(),
+            registry,
+            started,
+            handled,
+            handling,
+            shed,
+            panics,
+            stopped_early,
+            cells,
+            phases,
+            in_flight,
+            computing,
+            max_in_flight,
+            draining,
+            resident,
         }
     }
 }
@@ -188,134 +251,61 @@ pub struct Gauges {
 }
 
 impl Metrics {
-    fn calls(&self) -> std::sync::MutexGuard<'_, Calls> {
-        // A panic while holding the lock cannot leave counters inconsistent enough to matter.
-        self.calls.lock().unwrap_or_else(PoisonError::into_inner)
-    }
-
     fn start(&self, rpc: &Rpc) {
-        *self.calls().started.entry(rpc.clone()).or_default() += 1;
+        self.started.get_or_create(rpc).inc();
     }
 
     fn handled(&self, rpc: &Rpc, code: &'static str, elapsed: Duration) {
-        let mut c = self.calls();
-        *c.handled.entry((rpc.clone(), code)).or_default() += 1;
-        c.handling
-            .entry(rpc.clone())
-            .or_insert_with(|| Histogram::new(&HANDLING_BUCKETS))
-            .observe(elapsed.as_secs_f64());
+        self.handled.get_or_create(&rpc.with_code(code)).inc();
+        self.handling.get_or_create(rpc).observe(elapsed.as_secs_f64());
     }
 
     /// Counts a refused request.
     pub fn shed(&self, reason: ShedReason) {
-        match reason {
-            ShedReason::Overloaded => self.shed_overloaded.fetch_add(1, Ordering::Relaxed),
-            ShedReason::Draining => self.shed_draining.fetch_add(1, Ordering::Relaxed),
-            ShedReason::OverBudget => self.shed_budget.fetch_add(1, Ordering::Relaxed),
+        let reason = match reason {
+            ShedReason::Overloaded => "overloaded",
+            ShedReason::Draining => "draining",
+            ShedReason::OverBudget => "over_budget",
         };
+        self.shed.get_or_create(&ReasonLabel { reason }).inc();
     }
 
     /// Counts a request whose computation panicked.
     pub fn panicked(&self) {
-        self.panics.fetch_add(1, Ordering::Relaxed);
+        self.panics.inc();
     }
 
     /// Records the size of an admitted problem.
     pub fn problem_size(&self, periods: usize, factors: usize) {
-        self.cells.lock().unwrap_or_else(PoisonError::into_inner).observe((periods * factors) as f64);
+        self.cells.observe(periods.saturating_mul(factors) as f64);
     }
 
     /// Records the estimator's phase timings of one fit.
     pub fn phases(&self, phases: &crate::estimator::PhaseTimes) {
-        let mut m = self.phases.lock().unwrap_or_else(PoisonError::into_inner);
-        for (name, d) in phases.named() {
+        for (phase, d) in phases.named() {
             if !d.is_zero() {
-                m.entry(name).or_insert_with(|| Histogram::new(&PHASE_BUCKETS)).observe(d.as_secs_f64());
+                self.phases.get_or_create(&PhaseLabel { phase }).observe(d.as_secs_f64());
             }
         }
     }
 
-    /// The exposition text.
+    /// The exposition text (OpenMetrics), with the live gauges set first.
     pub fn render(&self, g: Gauges) -> String {
+        let gauge = |v: usize| i64::try_from(v).unwrap_or(i64::MAX);
+        self.in_flight.set(gauge(g.in_flight));
+        self.computing.set(gauge(g.computing));
+        self.max_in_flight.set(gauge(g.max_in_flight));
+        self.draining.set(i64::from(g.draining));
+        self.resident.set(resident_bytes().map_or(0, |b| i64::try_from(b).unwrap_or(i64::MAX)));
+        // The counter follows the service's own count, which it may only raise.
+        let stopped = self.stopped_early.get();
+        if g.stopped_early > stopped {
+            self.stopped_early.inc_by(g.stopped_early - stopped);
+        }
         let mut out = String::with_capacity(8192);
-        {
-            let c = self.calls();
-            out.push_str("# HELP grpc_server_started_total Total number of RPCs started on the server.\n");
-            out.push_str("# TYPE grpc_server_started_total counter\n");
-            for (rpc, n) in &c.started {
-                let _ = writeln!(out, "grpc_server_started_total{{{}}} {n}", rpc.labels());
-            }
-            out.push_str(
-                "# HELP grpc_server_handled_total Total number of RPCs completed on the server, regardless of success or failure.\n",
-            );
-            out.push_str("# TYPE grpc_server_handled_total counter\n");
-            for ((rpc, code), n) in &c.handled {
-                let _ = writeln!(out, "grpc_server_handled_total{{{},grpc_code=\"{code}\"}} {n}", rpc.labels());
-            }
-            out.push_str(
-                "# HELP grpc_server_handling_seconds Histogram of response latency (seconds) of gRPC that had been application-level handled by the server.\n",
-            );
-            out.push_str("# TYPE grpc_server_handling_seconds histogram\n");
-            for (rpc, h) in &c.handling {
-                h.render(&mut out, "grpc_server_handling_seconds", &rpc.labels());
-            }
+        if prometheus_client::encoding::text::encode(&mut out, &self.registry).is_err() {
+            out.clear();
         }
-        let gauge = |out: &mut String, name: &str, help: &str, v: f64| {
-            let _ = write!(out, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}\n");
-        };
-        gauge(&mut out, "keelson_requests_in_flight", "Requests admitted and not finished.", g.in_flight as f64);
-        gauge(&mut out, "keelson_requests_computing", "Requests computing on the worker pool.", g.computing as f64);
-        gauge(&mut out, "keelson_max_in_flight", "Configured admission limit.", g.max_in_flight as f64);
-        gauge(
-            &mut out,
-            "keelson_draining",
-            "1 while the server drains for shutdown.",
-            if g.draining { 1.0 } else { 0.0 },
-        );
-        out.push_str("# HELP keelson_requests_shed_total Requests refused before any work, by reason.\n");
-        out.push_str("# TYPE keelson_requests_shed_total counter\n");
-        let _ = writeln!(
-            out,
-            "keelson_requests_shed_total{{reason=\"overloaded\"}} {}",
-            self.shed_overloaded.load(Ordering::Relaxed)
-        );
-        let _ = writeln!(
-            out,
-            "keelson_requests_shed_total{{reason=\"draining\"}} {}",
-            self.shed_draining.load(Ordering::Relaxed)
-        );
-        let _ = writeln!(
-            out,
-            "keelson_requests_shed_total{{reason=\"over_budget\"}} {}",
-            self.shed_budget.load(Ordering::Relaxed)
-        );
-        out.push_str("# HELP keelson_request_panics_total Requests whose computation panicked (answered INTERNAL).\n");
-        out.push_str("# TYPE keelson_request_panics_total counter\n");
-        let _ = writeln!(out, "keelson_request_panics_total {}", self.panics.load(Ordering::Relaxed));
-        out.push_str(
-            "# HELP keelson_computations_stopped_early_total Computations stopped by a deadline or a cancellation.\n",
-        );
-        out.push_str("# TYPE keelson_computations_stopped_early_total counter\n");
-        let _ = writeln!(out, "keelson_computations_stopped_early_total {}", g.stopped_early);
-        out.push_str("# HELP keelson_problem_cells Periods times factors of admitted windows.\n");
-        out.push_str("# TYPE keelson_problem_cells histogram\n");
-        self.cells.lock().unwrap_or_else(PoisonError::into_inner).render(&mut out, "keelson_problem_cells", "");
-        out.push_str("# HELP keelson_estimator_phase_seconds Time per estimator phase of each fit.\n");
-        out.push_str("# TYPE keelson_estimator_phase_seconds histogram\n");
-        for (phase, h) in self.phases.lock().unwrap_or_else(PoisonError::into_inner).iter() {
-            h.render(&mut out, "keelson_estimator_phase_seconds", &format!("phase=\"{phase}\""));
-        }
-        if let Some(rss) = resident_bytes() {
-            gauge(&mut out, "process_resident_memory_bytes", "Resident memory size in bytes.", rss as f64);
-        }
-        let start = self.started_at.duration_since(UNIX_EPOCH).unwrap_or_default().as_secs_f64();
-        gauge(&mut out, "process_start_time_seconds", "Start time of the process since the Unix epoch.", start);
-        let _ = write!(
-            out,
-            "# HELP keelson_build_info Build of the running server.\n# TYPE keelson_build_info gauge\nkeelson_build_info{{version=\"{}\",estimator=\"{}\"}} 1\n",
-            env!("CARGO_PKG_VERSION"),
-            crate::estimator::ESTIMATOR_VERSION
-        );
         out
     }
 }
@@ -474,7 +464,10 @@ pub async fn serve_http(listener: TcpListener, scrape: Arc<dyn Fn() -> String + 
                 async move {
                     let resp = if req.method() == http::Method::GET && req.uri().path() == "/metrics" {
                         http::Response::builder()
-                            .header(http::header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")
+                            .header(
+                                http::header::CONTENT_TYPE,
+                                "application/openmetrics-text; version=1.0.0; charset=utf-8",
+                            )
                             .body(http_body_util::Full::new(Bytes::from(scrape())))
                     } else {
                         http::Response::builder()
@@ -503,26 +496,27 @@ mod tests {
     fn paths_become_bounded_labels() {
         let r = Rpc::from_path("/keelson.v1.WeightsService/ComputeWeights");
         assert_eq!(
-            (r.service.as_str(), r.method.as_str(), r.kind),
+            (r.grpc_service.as_str(), r.grpc_method.as_str(), r.grpc_type),
             ("keelson.v1.WeightsService", "ComputeWeights", "unary")
         );
-        assert_eq!(Rpc::from_path("/keelson.v1.WeightsService/RunBacktest").kind, "server_stream");
-        assert_eq!(Rpc::from_path("/nonsense").service, "unknown");
+        assert_eq!(Rpc::from_path("/keelson.v1.WeightsService/RunBacktest").grpc_type, "server_stream");
+        assert_eq!(Rpc::from_path("/nonsense").grpc_service, "unknown");
     }
 
     #[test]
     fn histogram_buckets_are_cumulative() {
-        let mut h = Histogram::new(&CELL_BUCKETS);
-        for v in [50.0, 500.0, 500.0, 2e7] {
-            h.observe(v);
+        let m = Metrics::default();
+        for cells in [50, 500, 500, 20_000_000] {
+            m.problem_size(cells, 1);
         }
-        let mut out = String::new();
-        h.render(&mut out, "x", "");
-        assert!(out.contains("x_bucket{le=\"100\"} 1\n"), "{out}");
-        assert!(out.contains("x_bucket{le=\"1000\"} 3\n"), "{out}");
-        assert!(out.contains("x_bucket{le=\"10000000\"} 3\n"), "{out}");
-        assert!(out.contains("x_bucket{le=\"+Inf\"} 4\n"), "{out}");
-        assert!(out.contains("x_count 4\n"), "{out}");
+        let out = m.render(Gauges::default());
+        assert!(out.contains("keelson_problem_cells_bucket{le=\"100.0\"} 1\n"), "{out}");
+        assert!(out.contains("keelson_problem_cells_bucket{le=\"1000.0\"} 3\n"), "{out}");
+        assert!(out.contains("keelson_problem_cells_bucket{le=\"10000000.0\"} 3\n"), "{out}");
+        assert!(out.contains("keelson_problem_cells_bucket{le=\"+Inf\"} 4\n"), "{out}");
+        assert!(out.contains("keelson_problem_cells_count 4\n"), "{out}");
+        assert!(out.contains("keelson_build_info{version=\""), "{out}");
+        assert!(out.contains("keelson_requests_shed_total{reason=\"overloaded\"} 0\n"), "{out}");
     }
 
     #[test]

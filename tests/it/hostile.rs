@@ -209,6 +209,12 @@ fn unset_settings_take_the_server_defaults_over_grpc() {
         assert_eq!(s.get_details_bad_request().unwrap().field_violations[0].field, "settings.kappa_auto");
         let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
         assert_eq!(info.default_settings.unwrap(), settings_to_proto(&defaults));
+        // The settings table carries this server's defaults beside each range.
+        assert_eq!(info.settings.len(), Settings::KEYS.len());
+        let row = |name: &str| info.settings.iter().find(|d| d.name == name).unwrap().clone();
+        assert_eq!(row("components").default_value, "3");
+        assert_eq!(row("method").default_value, "kns-ridge");
+        assert_eq!(row("folds").range, "2..=20");
         server.shutdown().await;
     });
 }

@@ -240,17 +240,19 @@ async fn metrics_endpoint_counts_calls_by_code() {
 
     let resp = http_get(s.metrics.unwrap(), "/metrics").await;
     assert!(resp.starts_with("HTTP/1.1 200"), "{resp}");
-    assert!(resp.contains("text/plain; version=0.0.4"), "{resp}");
+    // prometheus-client encodes OpenMetrics text (bucket bounds as floats, `# EOF` last).
+    assert!(resp.contains("application/openmetrics-text; version=1.0.0"), "{resp}");
+    assert!(resp.trim_end().ends_with("# EOF"), "{resp}");
     let cw = r#"grpc_service="keelson.v1.WeightsService",grpc_method="ComputeWeights",grpc_type="unary""#;
     assert_eq!(value(&resp, &format!("grpc_server_started_total{{{cw}}}")), Some(5.0), "{resp}");
     assert_eq!(value(&resp, &format!("grpc_server_handled_total{{{cw},grpc_code=\"OK\"}}")), Some(3.0), "{resp}");
     assert_eq!(value(&resp, &format!("grpc_server_handled_total{{{cw},grpc_code=\"InvalidArgument\"}}")), Some(1.0));
     assert_eq!(value(&resp, &format!("grpc_server_handled_total{{{cw},grpc_code=\"Unauthenticated\"}}")), Some(1.0));
     assert_eq!(value(&resp, &format!("grpc_server_handling_seconds_count{{{cw}}}")), Some(5.0));
-    assert_eq!(value(&resp, &format!("grpc_server_handling_seconds_bucket{{{cw},le=\"+Inf\"}}")), Some(5.0));
+    assert_eq!(value(&resp, &format!("grpc_server_handling_seconds_bucket{{le=\"+Inf\",{cw}}}")), Some(5.0));
     // Admitted problems: the three good ones and the one rejected during validation, 96 × 12 cells each.
     assert_eq!(value(&resp, "keelson_problem_cells_count"), Some(4.0), "{resp}");
-    assert_eq!(value(&resp, "keelson_problem_cells_bucket{le=\"3000\"}"), Some(4.0), "{resp}");
+    assert_eq!(value(&resp, "keelson_problem_cells_bucket{le=\"3000.0\"}"), Some(4.0), "{resp}");
     assert_eq!(value(&resp, "keelson_estimator_phase_seconds_count{phase=\"components\"}"), Some(3.0), "{resp}");
     assert_eq!(value(&resp, "keelson_requests_in_flight"), Some(0.0));
     assert_eq!(value(&resp, "keelson_requests_shed_total{reason=\"overloaded\"}"), Some(0.0));
