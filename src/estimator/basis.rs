@@ -171,3 +171,53 @@ impl ComponentBasis {
 pub(crate) fn rank_tolerance(desc: &[f64], dim: usize) -> f64 {
     desc.first().copied().unwrap_or(0.0).max(0.0) * dim as f64 * f64::EPSILON
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn moments(t: usize, n: usize) -> Moments {
+        let panel = crate::demo::synthetic_panel(11, t, n);
+        let r = faer::Mat::from_fn(t, n, |i, j| panel.returns[i * n + j]);
+        Moments::compute(r.as_ref(), panel.market.as_deref())
+    }
+
+    #[test]
+    fn components_are_orthonormal_sorted_and_exhaust_the_trace() {
+        let mom = moments(90, 8);
+        for scaling in [Scaling::Covariance, Scaling::Standardized, Scaling::Sharpe] {
+            let b = ComponentBasis::compute(&mom, scaling, 10.0, 8, EigenPath::Factors).unwrap();
+            assert!(b.eigenvalues.windows(2).all(|w| w[0] >= w[1]), "{scaling:?}: descending");
+            let sum: f64 = b.eigenvalues.iter().sum();
+            assert!((sum - b.trace).abs() <= 1e-10 * b.trace, "{scaling:?}: all eigenvalues sum to tr(C)");
+            for a in 0..b.len() {
+                for c in 0..b.len() {
+                    let dot: f64 = (0..8).map(|i| b.v[(i, a)] * b.v[(i, c)]).sum();
+                    let want = if a == c { 1.0 } else { 0.0 };
+                    assert!((dot - want).abs() < 1e-10, "{scaling:?}: v{a}·v{c} = {dot}");
+                }
+                assert!(b.mu_f[a] >= 0.0, "{scaling:?}: signed so that μ'q ≥ 0");
+                // Σ_F = Q'ΣQ is diagonal for these scalings, so ridge acts per component.
+                for c in 0..b.len() {
+                    if a != c {
+                        let off = b.sigma_f[(a, c)].abs();
+                        assert!(off <= 1e-10 * b.sigma_f[(a, a)].max(b.sigma_f[(c, c)]), "{scaling:?}: Σ_F[{a},{c}]");
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn gram_and_factor_paths_agree() {
+        // T < N: both paths must give the same leading eigenvalues.
+        let mom = moments(30, 40);
+        let f = ComponentBasis::compute(&mom, Scaling::Covariance, 10.0, 5, EigenPath::Factors).unwrap();
+        let g = ComponentBasis::compute(&mom, Scaling::Covariance, 10.0, 5, EigenPath::Gram).unwrap();
+        assert!(g.used_gram && !f.used_gram);
+        for k in 0..5 {
+            assert!((f.eigenvalues[k] - g.eigenvalues[k]).abs() <= 1e-9 * f.eigenvalues[0]);
+        }
+        assert!(f.rank <= 29, "centring and demarketing leave at most T − 1 dimensions");
+    }
+}

@@ -421,3 +421,43 @@ impl ComponentFit {
         Ok(ComponentModel { basis: self.full.clone(), k, kappa, gamma, b, best_score, held_out_sharpe, surface })
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sweep_fits_equal_fixed_fits_and_share_one_basis() {
+        let panel = crate::demo::synthetic_panel(9, 120, 12);
+        let base = Settings { kappa: Choice::Fixed(0.8), held_out_check: false, ..Settings::default() };
+        let s = base.clone().check().unwrap();
+        let ks = [1, 2, 3, 5];
+        let sweep = fit_component_sweep(&panel, &s, &ks, &FitOptions::default()).unwrap();
+        for (&k, got) in ks.iter().zip(&sweep) {
+            let got = got.as_ref().unwrap();
+            let fixed = fit(&panel, &Settings { components: Choice::Fixed(k as u32), ..base.clone() }.check().unwrap())
+                .unwrap();
+            for (a, b) in got.factors.iter().zip(&fixed.factors) {
+                assert!((a.weight - b.weight).abs() <= 1e-12 * b.weight.abs().max(1e-6), "K = {k}");
+            }
+        }
+        // Component c has the same loadings whatever K: the backtest keeps only the largest K's.
+        let largest = sweep.last().unwrap().as_ref().unwrap();
+        for got in &sweep {
+            for (c, comp) in got.as_ref().unwrap().components.iter().enumerate() {
+                assert_eq!(comp.loadings, largest.components[c].loadings);
+            }
+        }
+    }
+
+    #[test]
+    fn a_stopped_fit_says_so() {
+        let panel = crate::demo::synthetic_panel(9, 120, 12);
+        let s = Settings::default().check().unwrap();
+        let flag = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(true));
+        let options = FitOptions { stop: Stop::never().with_flag(flag), ..FitOptions::default() };
+        assert_eq!(fit_with(&panel, &s, &options).unwrap_err(), EstimateError::Cancelled);
+        let sweep = fit_component_sweep(&panel, &s, &[1, 2], &options);
+        assert!(matches!(sweep, Err(EstimateError::Cancelled)));
+    }
+}

@@ -97,3 +97,48 @@ pub fn demarket(r: MatRef<'_, f64>, market: Option<&[f64]>, beta: &[f64]) -> Mat
         None => r.to_owned(),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Four periods, two factors; the first factor is the market itself.
+    fn block() -> (Mat<f64>, Vec<f64>) {
+        let r = Mat::from_fn(4, 2, |i, j| 0.01 * [[1.0, 2.0], [2.0, 1.0], [3.0, 5.0], [4.0, 3.0]][i][j]);
+        (r, vec![0.01, 0.02, 0.03, 0.04])
+    }
+
+    #[test]
+    fn beta_is_the_ols_slope_and_sd_uses_t_minus_one() {
+        let (r, m) = block();
+        // Hand computation with the textbook OLS slope cov(r, m)/var(m):
+        // column 2 in hundredths is (2, 1, 5, 3), mean 2.75; m in hundredths (1, 2, 3, 4), mean 2.5;
+        // cov = 3.5/3, var = 5/3, slope 0.7.
+        let mom = Moments::compute(r.as_ref(), Some(&m));
+        assert!((mom.beta[0] - 1.0).abs() < 1e-12);
+        assert!((mom.beta[1] - 0.7).abs() < 1e-12);
+        // The market itself demarkets to nothing.
+        assert!(mom.sd[0] < 1e-15 && mom.mean[0].abs() < 1e-15);
+        // r − 0.7 m in hundredths: (1.3, −0.4, 2.9, 0.2): mean 1.0, deviations (0.3, −1.4, 1.9, −0.8), sample variance (ddof = 1) 6.3/3 = 2.1.
+        assert!((mom.mean[1] - 0.01).abs() < 1e-14);
+        assert!((mom.sd[1] - 0.01 * 2.1f64.sqrt()).abs() < 1e-14);
+        // Without a market nothing is removed: the sample sd of (1, 2, 3, 4)/100 is sqrt(5/3)/100.
+        let raw = Moments::compute(r.as_ref(), None);
+        assert_eq!(raw.beta, vec![0.0, 0.0]);
+        assert!((raw.sd[0] - 0.01 * (5.0f64 / 3.0).sqrt()).abs() < 1e-15);
+    }
+
+    #[test]
+    fn portfolio_variance_is_the_sample_variance_of_the_portfolio() {
+        let (r, m) = block();
+        let mom = Moments::compute(r.as_ref(), Some(&m));
+        let w = [0.3, -1.2];
+        let series = mom.portfolio_centered(&w);
+        let var = series.iter().map(|x| x * x).sum::<f64>() / 3.0;
+        assert!((mom.portfolio_variance(&w) - var).abs() < 1e-18);
+        let sw = mom.sigma_times(&w);
+        let quad: f64 = w.iter().zip(&sw).map(|(a, b)| a * b).sum();
+        assert!((quad - var).abs() < 1e-18, "w'Σw from Σw agrees");
+        assert_eq!(mom.periods(), 4);
+    }
+}

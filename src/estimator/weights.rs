@@ -543,3 +543,50 @@ pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
     }
     out
 }
+
+#[cfg(test)]
+mod tests {
+    use crate::estimator::{Choice, Normalization, Settings, fit};
+
+    fn fitted(edit: impl FnOnce(&mut Settings)) -> super::WeightSet {
+        let panel = crate::demo::synthetic_panel(5, 120, 10);
+        let mut s = Settings { components: Choice::Fixed(3), kappa: Choice::Fixed(0.5), ..Settings::default() };
+        edit(&mut s);
+        fit(&panel, &s.check().unwrap()).unwrap()
+    }
+
+    #[test]
+    fn each_normalisation_meets_its_definition() {
+        // SPEC §7: target volatility, gross exposure Σ|wᵢ| + |w_m| = 1.
+        let tv = fitted(|s| s.target_volatility = 0.07);
+        assert!((tv.diagnostics.ex_ante_volatility - 0.07).abs() < 1e-12);
+        let gross = fitted(|s| s.normalization = Normalization::GrossExposure);
+        let total: f64 = gross.factors.iter().map(|f| f.weight.abs()).sum::<f64>() + gross.market_weight.abs();
+        assert!((total - 1.0).abs() < 1e-12);
+        // Risk aversion γ scales the same direction by 1/γ.
+        let ra2 = fitted(|s| s.normalization = Normalization::RiskAversion);
+        let ra4 = fitted(|s| {
+            s.normalization = Normalization::RiskAversion;
+            s.risk_aversion = 6.0;
+        });
+        for (a, b) in ra2.factors.iter().zip(&ra4.factors) {
+            assert!((a.weight - 2.0 * b.weight).abs() <= 1e-12 * a.weight.abs().max(1e-12));
+        }
+    }
+
+    #[test]
+    fn reports_agree_with_the_weights() {
+        let ws = fitted(|_| {});
+        let rc: f64 = ws.factors.iter().map(|f| f.risk_contribution).sum();
+        assert!((rc - 1.0).abs() < 1e-12, "risk contributions sum to one");
+        // The hedge removes the portfolio's market beta: w_m = −β'w.
+        let beta_w: f64 = ws.factors.iter().map(|f| f.market_beta * f.weight).sum();
+        assert!((ws.market_weight + beta_w).abs() < 1e-12);
+        assert_eq!(ws.components.len(), 3);
+        assert_eq!(ws.diagnostics.num_components, 3);
+        let d = &ws.diagnostics;
+        assert!(d.effective_factors >= 1.0 && d.effective_factors <= 10.0);
+        assert!((0.0..=1.0).contains(&d.top_sharpe_gross_share));
+        assert_eq!(ws.fingerprint.len(), 71, "sha256: and 64 hex digits");
+    }
+}
