@@ -129,6 +129,34 @@ fn pricing_to_proto(p: &PricingTest) -> proto::PricingTest {
     }
 }
 
+/// A backtest request carrying the history `panel` with the given settings;
+/// every backtest option is unset (the defaults), for the caller to set.
+pub fn backtest_request_from_panel(
+    panel: &ReturnPanel,
+    settings: proto::Settings,
+    request_id: &str,
+) -> proto::RunBacktestRequest {
+    let proto::ComputeWeightsRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        // A backtest starts from nothing held.
+        previous_weights: _,
+        settings,
+        request_id,
+    } = super::weights::request_from_panel(panel, settings, request_id);
+    proto::RunBacktestRequest {
+        factor_names,
+        period_labels,
+        returns,
+        market_returns,
+        settings,
+        request_id,
+        ..Default::default()
+    }
+}
+
 /// The proto message of a backtest result.
 pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::BacktestResult {
     let BacktestResult {

@@ -13,7 +13,7 @@ mod backtest;
 mod settings;
 mod weights;
 
-pub use backtest::{backtest_request_into_parts, backtest_result_to_proto};
+pub use backtest::{backtest_request_from_panel, backtest_request_into_parts, backtest_result_to_proto};
 pub use settings::{
     patch_from_proto, patch_to_proto, scaling_to_proto, settings_from_proto, settings_to_proto, settings_to_proto_only,
 };

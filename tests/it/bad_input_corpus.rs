@@ -657,18 +657,11 @@ fn backtest_corpus() -> Vec<BacktestCase> {
 /// A valid 200-period, 6-factor backtest request: 120-period window, yearly refits, no baselines.
 fn backtest_base() -> (keelson::estimator::ReturnPanel, proto::RunBacktestRequest) {
     let panel = synthetic_panel(5, 200, 6);
-    let r = request_from_panel(&panel, proto::Settings::default(), "bt");
     let req = proto::RunBacktestRequest {
-        factor_names: r.factor_names,
-        period_labels: r.period_labels,
-        returns: r.returns,
-        market_returns: r.market_returns,
-        settings: None,
         window: 60,
         step: 12,
         skip_baselines: true,
-        request_id: "bt".into(),
-        ..Default::default()
+        ..keelson::convert::backtest_request_from_panel(&panel, proto::Settings::default(), "bt")
     };
     (panel, req)
 }

@@ -334,18 +334,11 @@ fn shutdown_drains_an_in_flight_request() {
 }
 
 fn backtest_request(panel: &ReturnPanel) -> proto::RunBacktestRequest {
-    let r = request(panel, proto::Settings::default(), "bt-1");
     proto::RunBacktestRequest {
-        factor_names: r.factor_names,
-        period_labels: r.period_labels,
-        returns: r.returns,
-        market_returns: r.market_returns,
-        settings: r.settings,
         window: 60,
         step: 3,
         sweep_max_k: Some(3),
-        request_id: "bt-1".into(),
-        ..Default::default()
+        ..keelson::convert::backtest_request_from_panel(panel, proto::Settings::default(), "bt-1")
     }
 }
 

@@ -21,18 +21,11 @@ fn run<F: std::future::Future<Output = ()>>(f: F) {
 
 fn backtest_request(periods: usize, factors: usize) -> proto::RunBacktestRequest {
     let panel = synthetic_panel(21, periods, factors);
-    let r = request_from_panel(&panel, proto::Settings::default(), "hostile");
     proto::RunBacktestRequest {
-        factor_names: r.factor_names,
-        period_labels: r.period_labels,
-        returns: r.returns,
-        market_returns: r.market_returns,
-        settings: r.settings,
         window: 60,
         step: 12,
         skip_baselines: true,
-        request_id: "hostile".into(),
-        ..Default::default()
+        ..keelson::convert::backtest_request_from_panel(&panel, proto::Settings::default(), "hostile")
     }
 }
 
@@ -323,18 +316,13 @@ mod random_backtests {
                     if !market {
                         panel.market = None;
                     }
-                    let r = keelson::convert::request_from_panel(&panel, proto::Settings::default(), "p");
+                    let settings = proto::Settings {
+                        kappa_grid_points: Some(8),
+                        max_components: Some(6),
+                        min_periods: Some(12),
+                        ..Default::default()
+                    };
                     proto::RunBacktestRequest {
-                        factor_names: r.factor_names,
-                        period_labels: r.period_labels,
-                        returns: r.returns,
-                        market_returns: r.market_returns,
-                        settings: Some(proto::Settings {
-                            kappa_grid_points: Some(8),
-                            max_components: Some(6),
-                            min_periods: Some(12),
-                            ..Default::default()
-                        }),
                         window,
                         expanding,
                         step,
@@ -343,7 +331,7 @@ mod random_backtests {
                         sweep_max_k: sweep,
                         benchmark_sets: sets.into_iter().map(|names| proto::BenchmarkSet { names }).collect(),
                         skip_baselines: !baselines,
-                        request_id: "p".into(),
+                        ..keelson::convert::backtest_request_from_panel(&panel, settings, "p")
                     }
                 })
         })
