@@ -193,6 +193,10 @@ pub fn bearer(token: &str) -> Result<MetadataValue<Ascii>, ClientError> {
     if token.is_empty() {
         return Err(ClientError::Token("is empty"));
     }
+    // Header values may carry other bytes; a token is printable ASCII (RFC 6750 b64token).
+    if !token.bytes().all(|b| b.is_ascii_graphic()) {
+        return Err(ClientError::Token("is not printable ASCII"));
+    }
     format!("Bearer {token}").parse().map_err(|_| ClientError::Token("is not printable ASCII"))
 }
 

@@ -258,13 +258,19 @@ fn check_market_values(panel: &ReturnPanel, m: &[f64]) -> Result<(), InputError>
     Ok(())
 }
 
-fn check_length(rows: usize, settings: &ValidSettings) -> Result<(), InputError> {
+/// The fewest periods a window may have under `settings`: `min_periods`, and
+/// 8 per cross-validation fold for the component methods.
+pub fn min_periods_required(settings: &ValidSettings) -> usize {
     let per_fold = if matches!(settings.method, Method::Components | Method::KnsRidge) {
         settings.folds as usize * MIN_PERIODS_PER_FOLD
     } else {
         0
     };
-    let min_required = (settings.min_periods as usize).max(per_fold);
+    (settings.min_periods as usize).max(per_fold)
+}
+
+fn check_length(rows: usize, settings: &ValidSettings) -> Result<(), InputError> {
+    let min_required = min_periods_required(settings);
     if rows < min_required {
         let reason = if rows < settings.min_periods as usize {
             "setting min_periods"

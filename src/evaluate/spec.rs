@@ -156,11 +156,15 @@ impl BacktestSpec {
         window::check_structure(panel).map_err(history)?;
         window::check_values(panel, settings.missing_policy).map_err(history)?;
         let periods = panel.rows;
-        let min_window = (settings.min_periods as usize).max(3);
+        let min_window = window::min_periods_required(settings);
         if s.window < min_window {
             return Err(spec_err(
                 "window",
-                format!("{} periods is below the estimator's minimum of {min_window} (settings.min_periods)", s.window),
+                format!(
+                    "{} periods is below the estimator's minimum of {min_window} (settings.min_periods, and 8 \
+                     periods per cross-validation fold)",
+                    s.window
+                ),
             ));
         }
         if s.window >= periods {
@@ -338,6 +342,10 @@ mod tests {
         }
         assert_eq!(field_of(check(BacktestSpec { threads: 0, ..d() })), "threads");
         assert_eq!(field_of(check(BacktestSpec { nw_lag: Some(80), ..d() })), "nw_lag");
+        // Five folds need 40 periods, above min_periods = 24.
+        let five = Settings { folds: 5, ..Settings::default() }.check().unwrap();
+        assert_eq!(field_of(BacktestSpec { window: 30, ..d() }.check(&p, &five)), "window");
+        assert!(BacktestSpec { window: 40, ..d() }.check(&p, &five).is_ok());
     }
 
     #[test]

@@ -4,6 +4,7 @@
 
 use std::time::Duration;
 
+use keelson::client::Target;
 use keelson::proto::weights_service_client::WeightsServiceClient;
 use keelson::service::config::ServerConfig;
 use keelson::service::loopback::LoopbackServer;
@@ -25,9 +26,9 @@ impl Server {
         Server(LoopbackServer::start(edit).await.expect("the loopback server starts"))
     }
 
-    /// A plaintext channel to the gRPC port.
+    /// A plaintext channel to the gRPC port, through the library's client.
     pub async fn channel(&self) -> Channel {
-        Channel::from_shared(self.0.url()).unwrap().connect().await.unwrap()
+        Target::plaintext(self.0.url()).channel(Duration::from_secs(5), None).await.unwrap()
     }
 
     /// A client without message-size limits of its own.
