@@ -79,11 +79,12 @@ impl WeightsApi {
         let admitted = self.admit()?;
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, spec, request_id) = backtest_request_into_parts(req);
+        // Every request within the size limits is recorded, refused ones included.
+        self.shared.metrics.problem_size(panel.rows, panel.cols);
         let settings = self.settings(&proto_settings)?;
         let spec = spec.check(&panel, &settings)?;
         let budget = spec.budget();
         self.check_budget(budget)?;
-        self.shared.metrics.problem_size(panel.rows, panel.cols);
         let deadline = Deadline::new(client_timeout, self.shared.config.raw.server.backtest_timeout_ms);
         let (stop, cancel) = deadline.stop();
         let (tx, rx) = tokio::sync::mpsc::channel::<Message>(32);

@@ -63,8 +63,9 @@ impl WeightsApi {
         let _admitted = self.admit()?;
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, request_id) = request_into_parts(req);
-        let settings = self.settings(&proto_settings)?;
+        // Every request within the size limits is recorded, refused ones included.
         sh.metrics.problem_size(panel.rows, panel.cols);
+        let settings = self.settings(&proto_settings)?;
         let deadline = Deadline::new(client_timeout, sh.config.raw.server.request_timeout_ms);
         let (stop, _cancel) = deadline.stop();
         let shared = sh.clone();

@@ -95,7 +95,9 @@ fn memory_budget_refuses_before_any_work() {
         assert_eq!(info.metadata["what"], "bytes");
         assert_eq!(info.metadata["limit_key"], "server.max_request_bytes_estimate");
         assert_eq!(server.api.computing(), 0, "nothing ran");
-        assert!(server.api.metrics_text().contains("keelson_requests_shed_total{reason=\"over_budget\"} 1"));
+        let text = server.api.metrics_text();
+        assert!(text.contains("keelson_requests_shed_total{reason=\"over_budget\"} 1"), "{text}");
+        assert!(text.contains("keelson_problem_cells_count 1\n"), "a refused backtest's size is recorded: {text}");
         let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
         let limits = info.limits.unwrap();
         assert_eq!(limits.max_request_bytes_estimate, 8 << 20);
