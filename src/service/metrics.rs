@@ -244,8 +244,6 @@ pub struct Gauges {
     pub computing: usize,
     /// Admission limit.
     pub max_in_flight: usize,
-    /// Computations that stopped early on a deadline or cancellation.
-    pub stopped_early: u64,
     /// Whether the server is draining.
     pub draining: bool,
 }
@@ -268,6 +266,16 @@ impl Metrics {
             ShedReason::OverBudget => "over_budget",
         };
         self.shed.get_or_create(&ReasonLabel { reason }).inc();
+    }
+
+    /// Counts a computation that stopped early on a deadline or a cancellation.
+    pub fn stopped_early(&self) {
+        self.stopped_early.inc();
+    }
+
+    /// Computations stopped early since start.
+    pub fn stopped_early_total(&self) -> u64 {
+        self.stopped_early.get()
     }
 
     /// Counts a request whose computation panicked.
@@ -297,11 +305,6 @@ impl Metrics {
         self.max_in_flight.set(gauge(g.max_in_flight));
         self.draining.set(i64::from(g.draining));
         self.resident.set(resident_bytes().map_or(0, |b| i64::try_from(b).unwrap_or(i64::MAX)));
-        // The counter follows the service's own count, which it may only raise.
-        let stopped = self.stopped_early.get();
-        if g.stopped_early > stopped {
-            self.stopped_early.inc_by(g.stopped_early - stopped);
-        }
         let mut out = String::with_capacity(8192);
         if prometheus_client::encoding::text::encode(&mut out, &self.registry).is_err() {
             out.clear();

@@ -25,7 +25,7 @@ pub mod status;
 pub mod telemetry;
 
 use std::sync::Arc;
-use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::SystemTime;
 
 use tokio::sync::Semaphore;
@@ -54,8 +54,6 @@ struct Shared {
     /// Requests computing on the blocking pool.
     workers: Arc<Semaphore>,
     draining: AtomicBool,
-    /// Computations that stopped early on a deadline or a cancellation.
-    stopped_early: AtomicU64,
     metrics: Arc<metrics::Metrics>,
     /// Trace export, set when serving starts (it needs the runtime).
     telemetry: std::sync::OnceLock<telemetry::Telemetry>,
@@ -73,12 +71,9 @@ impl WeightsApi {
         let admission = Arc::new(Semaphore::new(config.raw.server.max_in_flight));
         let workers = Arc::new(Semaphore::new(config.workers));
         let draining = AtomicBool::new(false);
-        let stopped_early = AtomicU64::new(0);
         let metrics = Arc::new(metrics::Metrics::default());
         let telemetry = std::sync::OnceLock::new();
-        WeightsApi {
-            shared: Arc::new(Shared { config, admission, workers, draining, stopped_early, metrics, telemetry }),
-        }
+        WeightsApi { shared: Arc::new(Shared { config, admission, workers, draining, metrics, telemetry }) }
     }
 
     /// The Prometheus exposition text of this server's metrics.
@@ -87,7 +82,6 @@ impl WeightsApi {
             in_flight: self.in_flight(),
             computing: self.computing(),
             max_in_flight: self.shared.config.raw.server.max_in_flight,
-            stopped_early: self.stopped_early(),
             draining: self.shared.draining.load(Ordering::Relaxed),
         })
     }
@@ -100,7 +94,7 @@ impl WeightsApi {
     /// Computations that stopped early because their deadline passed or their
     /// caller went away, since start.
     pub fn stopped_early(&self) -> u64 {
-        self.shared.stopped_early.load(Ordering::Relaxed)
+        self.shared.metrics.stopped_early_total()
     }
 
     /// Refuses new requests from now on (in-flight ones continue).

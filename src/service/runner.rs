@@ -121,7 +121,7 @@ impl WeightsApi {
             assert!(!probe, "panic probe requested (debug builds only)");
             let r = work();
             if r.as_ref().err().is_some_and(ServiceError::stopped_early) {
-                shared.stopped_early.fetch_add(1, Ordering::Relaxed);
+                shared.metrics.stopped_early();
             }
             r
         });

@@ -207,16 +207,12 @@ fn reflection_services(
     Option<Guarded<reflection::v1::ServerReflectionServer<impl reflection::v1::ServerReflection>>>,
     Option<Guarded<reflection::v1alpha::ServerReflectionServer<impl reflection::v1alpha::ServerReflection>>>,
 ) {
-    let guarded = |on: bool| on.then(|| guard.clone());
-    let v1 = guarded(on).and_then(|g| {
-        reflection_builder().build_v1().ok().map(|svc| tonic::service::interceptor::InterceptedService::new(svc, g))
-    });
-    let v1alpha = guarded(on).and_then(|g| {
-        reflection_builder()
-            .build_v1alpha()
-            .ok()
-            .map(|svc| tonic::service::interceptor::InterceptedService::new(svc, g))
-    });
+    if !on {
+        return (None, None);
+    }
+    use tonic::service::interceptor::InterceptedService;
+    let v1 = reflection_builder().build_v1().ok().map(|svc| InterceptedService::new(svc, guard.clone()));
+    let v1alpha = reflection_builder().build_v1alpha().ok().map(|svc| InterceptedService::new(svc, guard.clone()));
     (v1, v1alpha)
 }
 
