@@ -135,6 +135,7 @@ pub fn synthetic_panel(seed: u64, periods: usize, factors: usize) -> ReturnPanel
         cols: factors,
         market: Some(market),
         previous_weights: Vec::new(),
+        market_name: Some(MARKET_COLUMN.to_owned()),
     }
 }
 
@@ -155,8 +156,12 @@ pub fn demo_panel() -> ReturnPanel {
         cols: h.cols,
         market: h.market.map(|m| m[start..].to_vec()),
         previous_weights: Vec::new(),
+        market_name: h.market_name,
     }
 }
+
+/// Name of the demo's market column.
+pub const MARKET_COLUMN: &str = "MKT";
 
 /// Writes a panel as CSV in the format `keelson fit` reads (market column `MKT`).
 pub fn to_csv(panel: &ReturnPanel) -> String {

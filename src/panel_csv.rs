@@ -234,6 +234,7 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
             rows,
             market: market_values,
             previous_weights: Vec::new(),
+            market_name: market.map(str::to_owned),
         },
         file: file.to_owned(),
         factor_columns,

@@ -263,25 +263,59 @@ pub fn summary_table(r: &BacktestResult) -> String {
     let mut out = String::new();
     let _ = writeln!(
         out,
-        "{:<26} {:>7} {:>7} {:>7} {:>9} {:>8} {:>7} {:>9} {:>8}",
-        "strategy", "mean", "vol", "Sharpe", "SE (NW)", "CER", "maxDD", "turnover", "net SR"
+        "{:<28} {:>7} {:>7} {:>6} {:>7} {:>7} {:>8} {:>7} {:>12} {:>8} {:>7}",
+        "strategy", "mean", "vol", "target", "Sharpe", "SE(NW)", "CER", "maxDD", "gross med/max", "turnover", "net SR"
     );
     for s in &r.strategies {
         let _ = writeln!(
             out,
-            "{:<26} {:>6.2}% {:>6.2}% {:>7.2} {:>9.2} {:>7.2}% {:>6.1}% {:>9.3} {:>8.2}",
-            s.name.chars().take(26).collect::<String>(),
+            "{:<28} {:>6.2}% {:>6.2}% {:>6} {:>7.2} {:>7.2} {:>7.2}% {:>6.1}% {:>5.2}/{:<6.2} {:>8.3} {:>7.2}",
+            s.name.chars().take(28).collect::<String>(),
             100.0 * s.metrics.mean,
             100.0 * s.metrics.volatility,
+            s.target_volatility.map_or_else(|| "-".to_owned(), |t| format!("{:.1}%", 100.0 * t)),
             s.metrics.sharpe,
             s.metrics.sharpe_se_nw,
             100.0 * s.metrics.cer,
             100.0 * s.metrics.max_drawdown,
+            s.gross_median,
+            s.gross_max,
             s.average_turnover,
             s.net_metrics.sharpe
         );
     }
+    let _ = writeln!(out, "{}", constraint_line(&r.constraints));
     out
+}
+
+/// The implementation limits of the run, in one line.
+pub fn constraint_line(c: &crate::evaluate::ConstraintSet) -> String {
+    if !c.active() {
+        return format!(
+            "limits: none (model portfolios as estimated){}",
+            if c.volatility_halflife > 0.0 {
+                format!("; volatility target on an EWMA covariance, half-life {} periods", c.volatility_halflife)
+            } else {
+                String::new()
+            }
+        );
+    }
+    let on = |v: Option<f64>| v.map_or_else(|| "off".to_owned(), |x| x.to_string());
+    let l = &c.limits;
+    format!(
+        "limits for every fitted strategy: max_weight {} · max_gross {} · max_market_weight {} · max_turnover {} · cost_bps {} over {} periods{}",
+        on(l.max_weight),
+        on(l.max_gross),
+        on(l.max_market_weight),
+        on(l.max_turnover),
+        l.cost_bps,
+        c.holding_periods,
+        if c.volatility_halflife > 0.0 {
+            format!(" · volatility half-life {} periods", c.volatility_halflife)
+        } else {
+            String::new()
+        }
+    )
 }
 
 /// Writes `report.html`, `summary.json` and `returns.csv` into `dir`.
@@ -482,25 +516,29 @@ fn header(r: &BacktestResult, title: &str) -> String {
 
 fn performance_section(r: &BacktestResult) -> String {
     let mut html = String::new();
-    html.push_str("<h2>Performance</h2><table><tr><th>strategy</th><th>mean</th><th>vol</th><th>Sharpe</th><th>SE iid</th><th>SE NW</th><th>CER</th><th>max DD</th><th>turnover</th><th>net Sharpe</th></tr>");
+    let _ = write!(html, "<h2>Performance</h2><p>{}</p>", esc(&constraint_line(&r.constraints)));
+    html.push_str("<table><tr><th>strategy</th><th>mean</th><th>vol</th><th>vol target</th><th>Sharpe</th><th>SE iid</th><th>SE NW</th><th>CER</th><th>max DD</th><th>gross median</th><th>gross max</th><th>turnover</th><th>net Sharpe</th></tr>");
     for s in &r.strategies {
         let m = &s.metrics;
         let _ = write!(
             html,
-            "<tr><td>{}</td><td>{}%</td><td>{}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}%</td><td>{}%</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td>{}</td><td>{}%</td><td>{}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}%</td><td>{}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             esc(&s.name),
             f(100.0 * m.mean, 2),
             f(100.0 * m.volatility, 2),
+            s.target_volatility.map_or_else(|| "–".to_owned(), |t| format!("{}%", f(100.0 * t, 1))),
             f(m.sharpe, 2),
             f(m.sharpe_se_iid, 2),
             f(m.sharpe_se_nw, 2),
             f(100.0 * m.cer, 2),
             f(100.0 * m.max_drawdown, 1),
+            f(s.gross_median, 2),
+            f(s.gross_max, 2),
             f(s.average_turnover, 3),
             f(s.net_metrics.sharpe, 2)
         );
     }
-    html.push_str("</table><p class=\"note\">Annualised; Sharpe standard errors after Lo (2002), iid and Newey–West; CER = P·(mean − γ/2·var); turnover Σ|Δw| + |Δw_m| per refit; net of linear costs.</p>");
+    html.push_str("</table><p class=\"note\">Annualised; Sharpe standard errors after Lo (2002), iid and Newey–West; CER = P·(mean − γ/2·var); vol is realised, vol target the normalisation's; gross Σ|w| + |w_m| per refit (multiples of NAV); turnover Σ|Δw| + |Δw_m| per refit; net of linear costs at the backtest's evaluation cost.</p>");
     html
 }
 

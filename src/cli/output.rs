@@ -47,26 +47,76 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         }
     }
     let _ = writeln!(out);
-    let width = r.weights.iter().map(|f| f.factor.chars().count()).max().unwrap_or(6).clamp(12, 40);
-    let _ = writeln!(out, "{:<width$}  {:>8}  {:>9}  {:>10}", "factor", "Sharpe", "weight", "risk share");
+    let width = r.weights.iter().map(|f| f.factor.chars().count()).max().unwrap_or(6).clamp(14, 40);
+    let _ =
+        writeln!(out, "{:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "factor", "Sharpe", "model", "weight", "risk share");
     let mut order: Vec<usize> = (0..r.weights.len()).collect();
     order.sort_by(|&a, &b| r.weights[b].weight.abs().total_cmp(&r.weights[a].weight.abs()));
     for &i in &order {
         let f = &r.weights[i];
         let name: String = f.factor.chars().take(width).collect();
         if f.excluded {
-            let _ = writeln!(out, "{name:<width$}  {:>8}  {:>9}  {:>10}", "-", "excluded", "-");
+            let _ = writeln!(out, "{name:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "-", "-", "excluded", "-");
         } else {
             let _ = writeln!(
                 out,
-                "{name:<width$}  {:>8.2}  {:>9.4}  {:>9.1}%",
+                "{name:<width$}  {:>8.2}  {:>9.4}  {:>9.4}  {:>9.1}%",
                 f.sharpe_annualized,
+                f.model_weight,
                 f.weight,
                 100.0 * f.risk_contribution
             );
         }
     }
-    let _ = writeln!(out, "{:<width$}  {:>8}  {:>9.4}", "market hedge", "", r.market_weight);
+    let _ = writeln!(
+        out,
+        "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
+        "market hedge", "", r.model_market_weight, r.market_weight
+    );
+    let exposure = |w: &dyn Fn(&proto::FactorWeight) -> f64, m: f64, abs: bool| -> f64 {
+        let f: f64 = r.weights.iter().map(|x| if abs { w(x).abs() } else { w(x) }).sum();
+        f + if abs { m.abs() } else { m }
+    };
+    let model = |x: &proto::FactorWeight| x.model_weight;
+    let held = |x: &proto::FactorWeight| x.weight;
+    let _ = writeln!(
+        out,
+        "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
+        "gross exposure",
+        "",
+        exposure(&model, r.model_market_weight, true),
+        exposure(&held, r.market_weight, true)
+    );
+    let _ = writeln!(
+        out,
+        "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
+        "net exposure",
+        "",
+        exposure(&model, r.model_market_weight, false),
+        exposure(&held, r.market_weight, false)
+    );
+    if let Some(imp) = &d.implementation {
+        let _ = writeln!(out);
+        let _ = writeln!(
+            out,
+            "implementation: tracking error {:.2}% · turnover {:.4} · cost {:.2} bp of NAV · γ* {:.4} (model Sharpe {:.2}) · solver {} in {} iterations",
+            100.0 * imp.tracking_error,
+            imp.turnover,
+            1e4 * imp.cost,
+            imp.gamma,
+            imp.model_sharpe,
+            imp.solver_status,
+            imp.iterations
+        );
+        if imp.binding.is_empty() {
+            let _ = writeln!(out, "no limit binds");
+        }
+        for b in &imp.binding {
+            let what =
+                if b.factor.is_empty() { b.constraint.clone() } else { format!("{} on {}", b.constraint, b.factor) };
+            let _ = writeln!(out, "binds: {what} at {:.4} (limit {}) · dual {:.3e}", b.value, b.limit, b.dual);
+        }
+    }
     let _ = writeln!(out);
     let _ = writeln!(
         out,

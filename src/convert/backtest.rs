@@ -37,6 +37,7 @@ pub fn backtest_request_into_parts(
         returns,
         market_returns,
         previous_weights: Vec::new(),
+        market_name: String::new(),
         settings,
         request_id,
     });
@@ -67,6 +68,9 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         chosen_k,
         chosen_kappa,
         top_sharpe_share,
+        gross_median,
+        gross_max,
+        target_volatility,
         // Reported in the summary file and the report, not on the wire.
         missing_holding_returns: _,
     } = s;
@@ -88,6 +92,9 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         chosen_components: chosen_k.iter().map(|&k| k as u32).collect(),
         chosen_kappa: chosen_kappa.clone(),
         top_sharpe_share: top_sharpe_share.clone(),
+        gross_median: *gross_median,
+        gross_max: *gross_max,
+        target_volatility: *target_volatility,
     }
 }
 
@@ -143,6 +150,7 @@ pub fn backtest_request_from_panel(
         market_returns,
         // A backtest starts from nothing held.
         previous_weights: _,
+        market_name: _,
         settings,
         request_id,
     } = super::weights::request_from_panel(panel, settings, request_id);
@@ -175,6 +183,8 @@ pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::
         pricing,
         last_fit,
         nw_lag,
+        // The settings in the request are the constraint set; the latest fit echoes them.
+        constraints: _,
     } = r;
     proto::BacktestResult {
         periods: periods.clone(),

@@ -1,10 +1,14 @@
 //! `Settings` messages: the whole settings, a patch of some of them, and the enums.
 
+use crate::estimator::Cap;
 use crate::estimator::{
     Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, SettingsError, SettingsPatch,
 };
 use crate::proto;
-use crate::proto::settings::{ComponentsChoice, KappaChoice};
+use crate::proto::settings::{
+    ComponentsChoice, HoldingPeriodsChoice, KappaChoice, MaxGrossChoice, MaxMarketWeightChoice, MaxTurnoverChoice,
+    MaxWeightChoice,
+};
 
 /// Proto enum for a scaling.
 pub fn scaling_to_proto(s: Scaling) -> proto::Scaling {
@@ -79,6 +83,13 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
         rp_gamma,
         min_periods,
         held_out_check,
+        max_weight,
+        max_gross,
+        max_market_weight,
+        max_turnover,
+        cost_bps,
+        holding_periods,
+        volatility_halflife,
     } = p.clone();
     proto::Settings {
         scaling: enum_or_unset(scaling, scaling_to_proto),
@@ -107,6 +118,28 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
         min_periods,
         method: enum_or_unset(method, method_to_proto),
         held_out_check,
+        max_weight_choice: max_weight.map(|c| match c {
+            Cap::Off => MaxWeightChoice::MaxWeightOff(true),
+            Cap::At(v) => MaxWeightChoice::MaxWeight(v),
+        }),
+        max_gross_choice: max_gross.map(|c| match c {
+            Cap::Off => MaxGrossChoice::MaxGrossOff(true),
+            Cap::At(v) => MaxGrossChoice::MaxGross(v),
+        }),
+        max_market_weight_choice: max_market_weight.map(|c| match c {
+            Cap::Off => MaxMarketWeightChoice::MaxMarketWeightOff(true),
+            Cap::At(v) => MaxMarketWeightChoice::MaxMarketWeight(v),
+        }),
+        max_turnover_choice: max_turnover.map(|c| match c {
+            Cap::Off => MaxTurnoverChoice::MaxTurnoverOff(true),
+            Cap::At(v) => MaxTurnoverChoice::MaxTurnover(v),
+        }),
+        cost_bps,
+        holding_periods_choice: holding_periods.map(|c| match c {
+            Choice::Auto => HoldingPeriodsChoice::HoldingPeriodsAuto(true),
+            Choice::Fixed(h) => HoldingPeriodsChoice::HoldingPeriods(h),
+        }),
+        volatility_halflife,
     }
 }
 
@@ -142,6 +175,14 @@ fn auto_false(field: &'static str) -> SettingsError {
     }
 }
 
+fn off_false(field: &'static str) -> SettingsError {
+    SettingsError::InvalidValue {
+        field,
+        value: "false".into(),
+        reason: "set it to true to switch the limit off, or leave the choice unset for the server's default".into(),
+    }
+}
+
 /// The settings a message sets; unset fields and `_UNSPECIFIED` enums stay unset.
 ///
 /// # Errors
@@ -169,6 +210,13 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         min_periods,
         method,
         held_out_check,
+        max_weight_choice,
+        max_gross_choice,
+        max_market_weight_choice,
+        max_turnover_choice,
+        cost_bps,
+        holding_periods_choice,
+        volatility_halflife,
     } = *p;
     Ok(SettingsPatch {
         method: enum_from("method", method, |m| match m {
@@ -229,6 +277,40 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         rp_gamma,
         min_periods,
         held_out_check,
+        max_weight: match max_weight_choice {
+            None => None,
+            Some(MaxWeightChoice::MaxWeight(v)) => Some(Cap::At(v)),
+            Some(MaxWeightChoice::MaxWeightOff(true)) => Some(Cap::Off),
+            Some(MaxWeightChoice::MaxWeightOff(false)) => return Err(off_false("max_weight_off")),
+        },
+        max_gross: match max_gross_choice {
+            None => None,
+            Some(MaxGrossChoice::MaxGross(v)) => Some(Cap::At(v)),
+            Some(MaxGrossChoice::MaxGrossOff(true)) => Some(Cap::Off),
+            Some(MaxGrossChoice::MaxGrossOff(false)) => return Err(off_false("max_gross_off")),
+        },
+        max_market_weight: match max_market_weight_choice {
+            None => None,
+            Some(MaxMarketWeightChoice::MaxMarketWeight(v)) => Some(Cap::At(v)),
+            Some(MaxMarketWeightChoice::MaxMarketWeightOff(true)) => Some(Cap::Off),
+            Some(MaxMarketWeightChoice::MaxMarketWeightOff(false)) => {
+                return Err(off_false("max_market_weight_off"));
+            }
+        },
+        max_turnover: match max_turnover_choice {
+            None => None,
+            Some(MaxTurnoverChoice::MaxTurnover(v)) => Some(Cap::At(v)),
+            Some(MaxTurnoverChoice::MaxTurnoverOff(true)) => Some(Cap::Off),
+            Some(MaxTurnoverChoice::MaxTurnoverOff(false)) => return Err(off_false("max_turnover_off")),
+        },
+        cost_bps,
+        holding_periods: match holding_periods_choice {
+            None => None,
+            Some(HoldingPeriodsChoice::HoldingPeriods(h)) => Some(Choice::Fixed(h)),
+            Some(HoldingPeriodsChoice::HoldingPeriodsAuto(true)) => Some(Choice::Auto),
+            Some(HoldingPeriodsChoice::HoldingPeriodsAuto(false)) => return Err(auto_false("holding_periods_auto")),
+        },
+        volatility_halflife,
     })
 }
 
@@ -254,6 +336,13 @@ mod tests {
             kappa: Choice::Fixed(0.7),
             normalization: Normalization::GrossExposure,
             method: Method::PlugIn,
+            max_weight: Cap::At(0.2),
+            max_gross: Cap::At(2.0),
+            max_market_weight: Cap::At(0.5),
+            max_turnover: Cap::At(0.4),
+            cost_bps: 25.0,
+            holding_periods: Choice::Fixed(6.0),
+            volatility_halflife: 36.0,
             ..Settings::default()
         };
         let back = settings_from_proto(&settings_to_proto(&s), &Settings::default()).unwrap();
@@ -292,5 +381,11 @@ mod tests {
         let no =
             proto::Settings { components_choice: Some(ComponentsChoice::ComponentsAuto(false)), ..Default::default() };
         assert!(matches!(patch_from_proto(&no), Err(SettingsError::InvalidValue { field: "components_auto", .. })));
+        // A limit switched off by a request overrides a server default that sets it.
+        let capped = Settings { max_gross: Cap::At(3.0), ..Settings::default() };
+        let off = proto::Settings { max_gross_choice: Some(MaxGrossChoice::MaxGrossOff(true)), ..Default::default() };
+        assert_eq!(settings_from_proto(&off, &capped).unwrap().max_gross, Cap::Off);
+        let no = proto::Settings { max_gross_choice: Some(MaxGrossChoice::MaxGrossOff(false)), ..Default::default() };
+        assert!(matches!(patch_from_proto(&no), Err(SettingsError::InvalidValue { field: "max_gross_off", .. })));
     }
 }

@@ -2,7 +2,8 @@
 
 use super::settings::{criterion_to_proto, settings_to_proto};
 use crate::estimator::{
-    ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, ReturnPanel, Settings, Warning, WeightSet,
+    BindingConstraint, ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, Implementation,
+    ReturnPanel, Settings, Warning, WeightSet,
 };
 use crate::proto;
 
@@ -25,6 +26,7 @@ fn factor_to_proto(f: &FactorReport) -> proto::FactorWeight {
     let FactorReport {
         name,
         weight,
+        model_weight,
         mean_annualized,
         volatility_annualized,
         sharpe_annualized,
@@ -44,6 +46,7 @@ fn factor_to_proto(f: &FactorReport) -> proto::FactorWeight {
         risk_contribution: *risk_contribution,
         excluded: excluded.is_some(),
         exclusion_reason: excluded.as_ref().map(|(_, r)| r.clone()).unwrap_or_default(),
+        model_weight: *model_weight,
     }
 }
 
@@ -81,6 +84,7 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnost
         warnings,
         periods,
         factors_used,
+        implementation,
     } = d;
     proto::Diagnostics {
         num_components: *num_components as u32,
@@ -112,15 +116,62 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnost
         periods: *periods as u32,
         factors_used: *factors_used as u32,
         effective_settings: Some(settings_to_proto(settings)),
+        implementation: implementation.as_ref().map(implementation_to_proto),
+    }
+}
+
+fn implementation_to_proto(i: &Implementation) -> proto::Implementation {
+    let Implementation {
+        tracking_error,
+        turnover,
+        cost,
+        gross,
+        model_gross,
+        gamma,
+        model_sharpe,
+        binding,
+        solver_status,
+        iterations,
+    } = i;
+    proto::Implementation {
+        tracking_error: *tracking_error,
+        turnover: *turnover,
+        cost: *cost,
+        gross: *gross,
+        model_gross: *model_gross,
+        gamma: *gamma,
+        model_sharpe: *model_sharpe,
+        binding: binding
+            .iter()
+            .map(|BindingConstraint { constraint, factor, value, limit, dual }| proto::BindingConstraint {
+                constraint: (*constraint).to_owned(),
+                factor: factor.clone().unwrap_or_default(),
+                value: *value,
+                limit: *limit,
+                dual: *dual,
+            })
+            .collect(),
+        solver_status: (*solver_status).to_owned(),
+        iterations: *iterations,
     }
 }
 
 /// The proto response for a weight set.
 pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWeightsResponse {
-    let WeightSet { factors, market_weight, components, diagnostics, fingerprint, estimator_version, settings } = ws;
+    let WeightSet {
+        factors,
+        market_weight,
+        model_market_weight,
+        components,
+        diagnostics,
+        fingerprint,
+        estimator_version,
+        settings,
+    } = ws;
     proto::ComputeWeightsResponse {
         weights: factors.iter().map(factor_to_proto).collect(),
         market_weight: *market_weight,
+        model_market_weight: *model_market_weight,
         components: components.iter().map(component_to_proto).collect(),
         diagnostics: Some(diagnostics_to_proto(diagnostics, settings)),
         fingerprint: fingerprint.clone(),
@@ -140,6 +191,7 @@ pub fn request_into_parts(req: proto::ComputeWeightsRequest) -> (ReturnPanel, pr
         previous_weights,
         settings,
         request_id,
+        market_name,
     } = req;
     let (rows, cols, values) = returns.map_or((0, 0, Vec::new()), |m| (m.rows as usize, m.cols as usize, m.values));
     let panel = ReturnPanel {
@@ -151,6 +203,7 @@ pub fn request_into_parts(req: proto::ComputeWeightsRequest) -> (ReturnPanel, pr
         // An empty list means "no market" (SPEC §1).
         market: (!market_returns.is_empty()).then_some(market_returns),
         previous_weights: previous_weights.into_iter().map(|w| (w.factor, w.weight)).collect(),
+        market_name: (!market_name.is_empty()).then_some(market_name),
     };
     (panel, settings.unwrap_or_default(), request_id)
 }
@@ -161,7 +214,7 @@ pub fn request_from_panel(
     settings: proto::Settings,
     request_id: &str,
 ) -> proto::ComputeWeightsRequest {
-    let ReturnPanel { factor_names, period_labels, returns, rows, cols, market, previous_weights } = panel;
+    let ReturnPanel { factor_names, period_labels, returns, rows, cols, market, previous_weights, market_name } = panel;
     proto::ComputeWeightsRequest {
         factor_names: factor_names.clone(),
         period_labels: period_labels.clone(),
@@ -173,6 +226,7 @@ pub fn request_from_panel(
             .collect(),
         settings: Some(settings),
         request_id: request_id.to_owned(),
+        market_name: market_name.clone().unwrap_or_default(),
     }
 }
 

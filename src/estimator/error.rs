@@ -91,6 +91,9 @@ pub enum InputError {
         "{at}: value {value:e} is not a plausible decimal return (|value| must be at most {limit:e}; 0.01 means 1%)"
     )]
     OutOfRange { at: Location, value: f64, limit: f64 },
+    /// A weight too large to be a position in multiples of NAV.
+    #[error("{at}: weight {value:e} is not a plausible position (|weight| must be at most {limit:e} times NAV)")]
+    WeightOutOfRange { at: Location, value: f64, limit: f64 },
     /// A missing value where the policy (or the field) does not allow one.
     #[error("{at}: value is missing ({rule})")]
     Missing { at: Location, rule: &'static str },
@@ -135,6 +138,7 @@ impl InputError {
             InputError::Shape { at, .. }
             | InputError::NonFinite { at, .. }
             | InputError::OutOfRange { at, .. }
+            | InputError::WeightOutOfRange { at, .. }
             | InputError::Missing { at, .. }
             | InputError::AllMissing { at, .. }
             | InputError::DuplicateName { at, .. }
@@ -197,6 +201,12 @@ pub enum EstimateError {
     /// A decomposition failed to converge.
     #[error("numerical failure in {stage}: {detail}")]
     Numerical { stage: &'static str, detail: String },
+    /// No portfolio satisfies the implementation limits together (SPEC §10).
+    #[error("the limits are infeasible: {detail} (settings involved: {})", constraints.join(", "))]
+    ConstraintsInfeasible { constraints: Vec<String>, detail: String },
+    /// The implementation solver stopped without a usable portfolio.
+    #[error("the implementation solver stopped ({status}): {detail}")]
+    SolverFailed { status: String, detail: String },
     /// The caller cancelled the computation.
     #[error("the computation was cancelled")]
     Cancelled,

@@ -11,6 +11,7 @@
 pub mod basis;
 pub mod cv;
 mod dense;
+pub mod desk;
 pub mod error;
 pub mod moments;
 pub mod settings;
@@ -21,10 +22,11 @@ pub mod window;
 
 pub use basis::{ComponentBasis, EigenPath};
 pub use cv::{CrossValidation, CvSurface};
+pub use desk::{BindingConstraint, Implementation, Limits};
 pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use moments::Moments;
 pub use settings::{
-    Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings, SettingsPatch,
+    Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings, SettingsPatch,
     ValidSettings,
 };
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};

@@ -81,6 +81,18 @@ impl Moments {
         out
     }
 
+    /// Exponentially weighted variance of the portfolio with weights `w`:
+    /// Σ_t a_t (y_t − ȳ_a)², y = X_c w, a_t ∝ 2^(−age/h) with the latest
+    /// period at age 0, Σa_t = 1, ȳ_a = Σ a_t y_t (RiskMetrics 1996; SPEC §10).
+    pub fn portfolio_variance_ew(&self, w: &[f64], halflife: f64) -> f64 {
+        let y = self.portfolio_centered(w);
+        let t = y.len();
+        let a: Vec<f64> = (0..t).map(|i| (-((t - 1 - i) as f64) / halflife).exp2()).collect();
+        let total: f64 = a.iter().sum();
+        let mean = a.iter().zip(&y).map(|(a, y)| a * y).sum::<f64>() / total;
+        a.iter().zip(&y).map(|(a, y)| a * (y - mean) * (y - mean)).sum::<f64>() / total
+    }
+
     /// Σw = X_c'(X_c w)/(T−1).
     pub fn sigma_times(&self, w: &[f64]) -> Vec<f64> {
         let x = self.portfolio_centered(w);
@@ -140,5 +152,22 @@ mod tests {
         let quad: f64 = w.iter().zip(&sw).map(|(a, b)| a * b).sum();
         assert!((quad - var).abs() < 1e-18, "w'Σw from Σw agrees");
         assert_eq!(mom.periods(), 4);
+    }
+
+    #[test]
+    fn ewma_variance_follows_its_definition() {
+        let (r, m) = block();
+        let mom = Moments::compute(r.as_ref(), Some(&m));
+        let w = [0.0, 1.0];
+        // Hand computation, half-life 1: weights ∝ (1/8, 1/4, 1/2, 1), sum 15/8;
+        // deviations of factor 2 in hundredths (0.3, −1.4, 1.9, −0.8) (see above).
+        let a = [1.0 / 15.0, 2.0 / 15.0, 4.0 / 15.0, 8.0 / 15.0];
+        let y = [0.003, -0.014, 0.019, -0.008];
+        let mean: f64 = a.iter().zip(&y).map(|(a, y)| a * y).sum();
+        let want: f64 = a.iter().zip(&y).map(|(a, y)| a * (y - mean).powi(2)).sum();
+        assert!((mom.portfolio_variance_ew(&w, 1.0) - want).abs() < 1e-18);
+        // A very long half-life gives equal weights: the variance with divisor T.
+        let flat = mom.portfolio_variance(&w) * 3.0 / 4.0;
+        assert!((mom.portfolio_variance_ew(&w, 1e12) - flat).abs() < 1e-9 * flat);
     }
 }

@@ -164,6 +164,65 @@ impl<'de, T: Deserialize<'de>> Deserialize<'de> for Choice<T> {
     }
 }
 
+/// A limit of the implementation stage (SPEC §10): off, or a positive bound.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub enum Cap {
+    /// No such constraint.
+    #[default]
+    Off,
+    /// The bound.
+    At(f64),
+}
+
+impl Cap {
+    /// The bound, if the constraint is on.
+    pub fn limit(self) -> Option<f64> {
+        match self {
+            Cap::Off => None,
+            Cap::At(v) => Some(v),
+        }
+    }
+
+    /// Off, or a finite bound in (0, `hi`].
+    fn within(self, hi: f64) -> bool {
+        self.limit().is_none_or(|v| within(v, 0.0, hi))
+    }
+}
+
+impl fmt::Display for Cap {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Cap::Off => f.write_str("off"),
+            Cap::At(v) => v.fmt(f),
+        }
+    }
+}
+
+impl Serialize for Cap {
+    fn serialize<S: Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
+        match self {
+            Cap::Off => serializer.serialize_str("off"),
+            Cap::At(v) => v.serialize(serializer),
+        }
+    }
+}
+
+impl<'de> Deserialize<'de> for Cap {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        #[derive(Deserialize)]
+        #[serde(untagged)]
+        enum Repr {
+            Value(f64),
+            Word(String),
+        }
+        match Repr::deserialize(deserializer)? {
+            Repr::Value(v) => Ok(Cap::At(v)),
+            Repr::Word(w) if w == "off" => Ok(Cap::Off),
+            Repr::Word(w) => Err(serde::de::Error::custom(format!("expected \"off\" or a number, found \"{w}\""))),
+        }
+    }
+}
+
 /// One row of the settings table: what the README and `GetServiceInfo` show.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct SettingInfo {
@@ -353,6 +412,43 @@ settings_table! {
     range "bool" if |_v| true;
     meaning "with `components` and `kappa` both fixed, still refit the folds to report the held-out Sharpe ratio; \
              `false` skips them (about 4× faster for a 50 × 120 window) and leaves `cv_sharpe` unset";
+
+    /// Largest absolute weight on any one factor (SPEC §10).
+    max_weight: Cap = Cap::Off;
+    range "`off` or (0, 100]" if |v| v.within(100.0);
+    meaning "implementation: |wᵢ| ≤ this for every factor";
+
+    /// Largest gross exposure Σ|wᵢ| + |w_m| (SPEC §10).
+    max_gross: Cap = Cap::Off;
+    range "`off` or (0, 1000]" if |v| v.within(1000.0);
+    meaning "implementation: gross exposure Σ|wᵢ| + |w_m| ≤ this (NAV = 1)";
+
+    /// Largest absolute market hedge |w_m| (SPEC §10).
+    max_market_weight: Cap = Cap::Off;
+    range "`off` or (0, 100]" if |v| v.within(100.0);
+    meaning "implementation: |w_m| ≤ this";
+
+    /// Largest turnover against the previous weights (SPEC §10).
+    max_turnover: Cap = Cap::Off;
+    range "`off` or (0, 1000]" if |v| v.within(1000.0);
+    meaning "implementation: Σ|wᵢ − pᵢ| + |w_m − p_m| ≤ this, p the previous weights (0 where none are given)";
+
+    /// Proportional trading cost, in basis points of the weight traded (SPEC §10).
+    cost_bps: f64 = 0.0;
+    range "[0, 10000]" if |v| v.is_finite() && (0.0..=10_000.0).contains(v);
+    meaning "implementation: cost per unit of weight traded, in basis points, priced in the objective; 0 = free";
+
+    /// Periods over which a trade's cost is amortised (SPEC §10).
+    holding_periods: Choice<f64> = Choice::Auto;
+    range "`auto` or [1, 1e6]" if |v| v.fixed().is_none_or(|h| h.is_finite() && (1.0..=1e6).contains(&h));
+    meaning "implementation: periods a trade is expected to be held, over which its cost is amortised; \
+             `auto` = one year (`periods_per_year`)";
+
+    /// Half-life of the volatility estimate used for the volatility target, in periods (SPEC §10).
+    volatility_halflife: f64 = 0.0;
+    range "0 or [1, 1e6]" if |v| *v == 0.0 || (v.is_finite() && (1.0..=1e6).contains(v));
+    meaning "`target-volatility` scales with an exponentially weighted covariance of this half-life (periods); \
+             0 = the sample covariance";
 }
 
 impl Settings {
@@ -460,6 +556,20 @@ impl ValidSettings {
         let step = (hi - lo) / (n - 1) as f64;
         // numpy.linspace sets the last point to the end exactly.
         (0..n).map(|i| if i + 1 == n { hi } else { lo + step * i as f64 }).map(|e| 10f64.powf(e)).collect()
+    }
+
+    /// Whether the implementation stage of SPEC §10 runs: some limit is on
+    /// or trades cost something. Otherwise the weights are the model's.
+    pub fn implementation_active(&self) -> bool {
+        let s = &self.inner;
+        [s.max_weight, s.max_gross, s.max_market_weight, s.max_turnover].iter().any(|c| c.limit().is_some())
+            || s.cost_bps > 0.0
+    }
+
+    /// Cost per unit of weight traded, per period of holding: c_b·1e-4/h (SPEC §10).
+    pub fn cost_per_unit(&self) -> f64 {
+        let h = self.inner.holding_periods.fixed().unwrap_or(f64::from(self.inner.periods_per_year));
+        self.inner.cost_bps * 1e-4 / h
     }
 }
 

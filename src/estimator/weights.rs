@@ -6,6 +6,7 @@ use sha2::{Digest, Sha256};
 use super::basis::ComponentBasis;
 use super::cv::CvSurface;
 use super::dense;
+use super::desk::{self, Implementation, Limits};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
 use super::settings::{Method, Normalization, Settings, ValidSettings};
@@ -16,8 +17,11 @@ use super::window::{ReturnPanel, ReturnWindow};
 pub struct FactorReport {
     /// Factor name.
     pub name: String,
-    /// Portfolio weight (0 when excluded).
+    /// Implemented portfolio weight (0 when excluded).
     pub weight: f64,
+    /// Model portfolio weight w* (SPEC §7), before limits and costs; equal
+    /// to `weight` when the implementation stage is off.
+    pub model_weight: f64,
     /// Annualised mean of the demarketed return, P·μ.
     pub mean_annualized: f64,
     /// Annualised volatility of the demarketed return, √P·σ.
@@ -101,7 +105,7 @@ pub struct Diagnostics {
     pub effective_factors: f64,
     /// Gross-weight share of the ⌈0.3N⌉ highest-Sharpe factors.
     pub top_sharpe_gross_share: f64,
-    /// Σ|w − w_prev| when previous weights were given.
+    /// Σ|w − w_prev| + |w_m − w_m,prev| when previous weights were given.
     pub turnover: Option<f64>,
     /// Condition number of Σ (infinite when singular).
     pub covariance_condition_number: f64,
@@ -113,6 +117,8 @@ pub struct Diagnostics {
     pub periods: usize,
     /// Factors used.
     pub factors_used: usize,
+    /// The implementation stage (SPEC §10), when a limit or a cost is set.
+    pub implementation: Option<Implementation>,
 }
 
 /// Weights and diagnostics for one window: the estimator's answer.
@@ -120,8 +126,10 @@ pub struct Diagnostics {
 pub struct WeightSet {
     /// One entry per panel factor, in panel order.
     pub factors: Vec<FactorReport>,
-    /// Market hedge weight.
+    /// Implemented market hedge weight.
     pub market_weight: f64,
+    /// The model's market hedge weight.
+    pub model_market_weight: f64,
     /// Components used, in order.
     pub components: Vec<ComponentReport>,
     /// Overall diagnostics.
@@ -169,14 +177,52 @@ pub(crate) fn assemble(
     let t = window.periods();
     let p = f64::from(settings.periods_per_year);
     let scaled = Normalized::new(window, mom, settings, direction)?;
-    let w = &scaled.weights;
+    let held = Previous::of(panel, window, &mut warnings)?;
+    let hedged = settings.demarket && window.market.is_some();
+    let (implemented, market_weight, implementation) = if settings.implementation_active() {
+        // The model's own Sharpe ratio: held-out when cross-validated, else in-window.
+        let model_sharpe = model
+            .as_ref()
+            .map(|m| m.held_out_sharpe)
+            .filter(|v| v.is_finite())
+            .unwrap_or_else(|| scaled.in_sample_sharpe(p))
+            / p.sqrt();
+        let omega = super::shrinkage::ledoit_wolf(mom).0;
+        let names: Vec<&str> = window.used.iter().map(|&c| window.names[c].as_str()).collect();
+        let problem = desk::Problem {
+            model: &scaled.weights,
+            beta: hedged.then_some(&mom.beta[..]),
+            omega: &omega,
+            previous: &held.used,
+            previous_market: held.market,
+            forced_turnover: held.outside + if hedged { 0.0 } else { held.market.abs() },
+            model_sharpe,
+            periods_per_year: p,
+            names: &names,
+        };
+        let done = desk::implement(&problem, &Limits::of(settings), &mut warnings)?;
+        (Some(done.weights), done.market_weight, Some(done.report))
+    } else {
+        (None, scaled.market_weight, None)
+    };
+    let w = implemented.as_deref().unwrap_or(&scaled.weights);
     let sigma_w = mom.sigma_times(w);
     let var_w: f64 = w.iter().zip(&sigma_w).map(|(a, b)| a * b).sum();
+    let var_risk = match settings.volatility_halflife {
+        h if h > 0.0 => mom.portfolio_variance_ew(w, h),
+        _ => var_w,
+    };
     let gross: f64 = w.iter().map(|x| x.abs()).sum();
     let sharpe_ann: Vec<f64> = (0..n).map(|j| p.sqrt() * mom.sharpe(j)).collect();
-    let (factors, excluded) = factor_reports(window, mom, model.as_ref(), w, &sigma_w, var_w, &sharpe_ann, p);
+    let (mut factors, excluded) = factor_reports(window, mom, model.as_ref(), w, &sigma_w, var_w, &sharpe_ann, p);
+    for (j, &col) in window.used.iter().enumerate() {
+        factors[col].model_weight = scaled.weights[j];
+    }
     data_warnings(window, mom, excluded.len(), &mut warnings);
-    let turnover = turnover(panel, &factors, &mut warnings)?;
+    let turnover = held.given.then(|| match &implementation {
+        Some(imp) => imp.turnover,
+        None => held.turnover(w, market_weight, hedged),
+    });
     let covariance_condition_number = condition_number(mom, t, n)?;
     spectrum_warnings(model.as_ref(), covariance_condition_number, t, n, &mut warnings);
 
@@ -186,6 +232,13 @@ pub(crate) fn assemble(
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&a, &b| sharpe_ann[b].total_cmp(&sharpe_ann[a]));
     let top_sharpe_gross_share = order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross;
+    let in_sample_sharpe = match implemented {
+        None => scaled.in_sample_sharpe(p),
+        Some(_) => {
+            let mean: f64 = w.iter().zip(&mom.mean).map(|(a, b)| a * b).sum();
+            p.sqrt() * mean / var_w.sqrt()
+        }
+    };
 
     let mut diagnostics = Diagnostics {
         num_components: 0,
@@ -196,8 +249,8 @@ pub(crate) fn assemble(
         cv_surface: None,
         cv_best_score: f64::NAN,
         cv_sharpe: f64::NAN,
-        in_sample_sharpe: p.sqrt() * scaled.mean_dir * scaled.scale.signum() / scaled.var_dir.sqrt(),
-        ex_ante_volatility: (p * var_w).sqrt(),
+        in_sample_sharpe,
+        ex_ante_volatility: (p * var_risk).sqrt(),
         effective_factors,
         top_sharpe_gross_share,
         turnover,
@@ -206,6 +259,7 @@ pub(crate) fn assemble(
         warnings,
         periods: t,
         factors_used: n,
+        implementation,
     };
     let components = match model {
         Some(m) => model_reports(m, window, settings, p, &mut diagnostics),
@@ -213,7 +267,8 @@ pub(crate) fn assemble(
     };
     Ok(WeightSet {
         factors,
-        market_weight: scaled.market_weight,
+        market_weight,
+        model_market_weight: scaled.market_weight,
         components,
         diagnostics,
         fingerprint: fingerprint(panel, settings.settings()),
@@ -234,6 +289,11 @@ struct Normalized {
 }
 
 impl Normalized {
+    /// In-window annualised Sharpe ratio of the scaled direction.
+    fn in_sample_sharpe(&self, p: f64) -> f64 {
+        p.sqrt() * self.mean_dir * self.scale.signum() / self.var_dir.sqrt()
+    }
+
     fn new(
         window: &ReturnWindow,
         mom: &Moments,
@@ -254,7 +314,14 @@ impl Normalized {
         let mean_dir: f64 = direction.iter().zip(&mom.mean).map(|(w, m)| w * m).sum();
         let hedge_dir: f64 = -direction.iter().zip(&mom.beta).map(|(w, b)| w * b).sum::<f64>();
         let c = match settings.normalization {
-            Normalization::TargetVolatility => settings.target_volatility / (p * var_dir).sqrt(),
+            Normalization::TargetVolatility => {
+                // Honest risk (SPEC §10): the target on an exponentially weighted covariance.
+                let var_risk = match settings.volatility_halflife {
+                    h if h > 0.0 => mom.portfolio_variance_ew(direction, h),
+                    _ => var_dir,
+                };
+                settings.target_volatility / (p * var_risk).sqrt()
+            }
             Normalization::RiskAversion => match settings.method {
                 // b-implied mean–variance weights divided by γ (SPEC §7).
                 Method::Components | Method::KnsRidge | Method::PlugIn | Method::PlugInLedoitWolf => {
@@ -298,6 +365,7 @@ fn factor_reports(
         .map(|name| FactorReport {
             name: name.clone(),
             weight: 0.0,
+            model_weight: 0.0,
             mean_annualized: 0.0,
             volatility_annualized: 0.0,
             sharpe_annualized: 0.0,
@@ -453,44 +521,77 @@ fn model_reports(
     components
 }
 
-fn turnover(
-    panel: &ReturnPanel,
-    factors: &[FactorReport],
-    warnings: &mut Vec<Warning>,
-) -> Result<Option<f64>, EstimateError> {
-    if panel.previous_weights.is_empty() {
-        return Ok(None);
-    }
-    let mut prev = std::collections::HashMap::with_capacity(panel.previous_weights.len());
-    for (i, (name, w)) in panel.previous_weights.iter().enumerate() {
-        if let Some(first) = prev.insert(name.as_str(), (*w, i)) {
-            return Err(InputError::DuplicateName {
-                at: Location::field("previous_weights").column(i, Some(name)),
-                name: name.clone(),
-                first_column: first.1,
-            }
-            .into());
+/// The positions held before this fit, as the implementation stage and the
+/// turnover diagnostic need them.
+struct Previous {
+    /// Whether previous weights were given at all.
+    given: bool,
+    /// Previous weight of each usable factor.
+    used: Vec<f64>,
+    /// Previous hedge (the entry named after the market; 0 when absent).
+    market: f64,
+    /// Σ|p| over positions in factors that are excluded or not in the window: sold whatever the fit.
+    outside: f64,
+}
+
+impl Previous {
+    fn of(panel: &ReturnPanel, window: &ReturnWindow, warnings: &mut Vec<Warning>) -> Result<Previous, EstimateError> {
+        let mut out = Previous {
+            given: !panel.previous_weights.is_empty(),
+            used: vec![0.0; window.used.len()],
+            market: 0.0,
+            outside: 0.0,
+        };
+        if !out.given {
+            return Ok(out);
         }
+        let column: std::collections::HashMap<&str, usize> =
+            window.names.iter().enumerate().map(|(c, n)| (n.as_str(), c)).collect();
+        let slot: std::collections::HashMap<usize, usize> =
+            window.used.iter().enumerate().map(|(j, &c)| (c, j)).collect();
+        let market_name = panel.market_name.as_deref().filter(|_| panel.market.is_some());
+        let mut seen: std::collections::HashMap<&str, usize> = std::collections::HashMap::new();
+        let mut unknown: Vec<&str> = Vec::new();
+        for (i, (name, w)) in panel.previous_weights.iter().enumerate() {
+            if let Some(first) = seen.insert(name.as_str(), i) {
+                return Err(InputError::DuplicateName {
+                    at: Location::field("previous_weights").column(i, Some(name)),
+                    name: name.clone(),
+                    first_column: first,
+                }
+                .into());
+            }
+            match column.get(name.as_str()) {
+                Some(c) => match slot.get(c) {
+                    Some(&j) => out.used[j] = *w,
+                    None => out.outside += w.abs(),
+                },
+                None if Some(name.as_str()) == market_name => out.market = *w,
+                None => {
+                    out.outside += w.abs();
+                    unknown.push(name);
+                }
+            }
+        }
+        if let Some(first) = unknown.first() {
+            warnings.push(Warning {
+                code: "previous-weights-unknown-factor",
+                message: format!(
+                    "{} previous weight(s) name factors not in the window (first: \"{}\"); they count as sold",
+                    unknown.len(),
+                    super::error::truncate_for_display(first)
+                ),
+            });
+        }
+        Ok(out)
     }
-    let mut total = 0.0;
-    for f in factors {
-        let old = prev.remove(f.name.as_str()).map_or(0.0, |(w, _)| w);
-        total += (f.weight - old).abs();
+
+    /// Σ|wᵢ − pᵢ| + |w_m − p_m| + the positions sold outside the window.
+    fn turnover(&self, w: &[f64], market_weight: f64, hedged: bool) -> f64 {
+        let factors: f64 = w.iter().zip(&self.used).map(|(a, b)| (a - b).abs()).sum();
+        let hedge = if hedged { (market_weight - self.market).abs() } else { self.market.abs() };
+        factors + hedge + self.outside
     }
-    if !prev.is_empty() {
-        let mut unknown: Vec<(&str, (f64, usize))> = prev.into_iter().collect();
-        unknown.sort_by_key(|(_, (_, i))| *i);
-        total += unknown.iter().map(|(_, (w, _))| w.abs()).sum::<f64>();
-        warnings.push(Warning {
-            code: "previous-weights-unknown-factor",
-            message: format!(
-                "{} previous weight(s) name factors not in the window (first: \"{}\"); they count as sold",
-                unknown.len(),
-                super::error::truncate_for_display(unknown[0].0)
-            ),
-        });
-    }
-    Ok(Some(total))
 }
 
 /// SHA-256 over a canonical encoding of the window and the settings: equal
@@ -527,6 +628,11 @@ pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
             }
         }
         None => h.update([0]),
+    }
+    // Hashed only when present, so that fingerprints without one are unchanged.
+    if let Some(n) = &panel.market_name {
+        put_str(&mut h, "market_name");
+        put_str(&mut h, n);
     }
     h.update((panel.previous_weights.len() as u64).to_le_bytes());
     for (n, w) in &panel.previous_weights {

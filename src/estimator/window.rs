@@ -31,8 +31,12 @@ pub struct ReturnPanel {
     pub cols: usize,
     /// Market excess return per period, if any.
     pub market: Option<Vec<f64>>,
-    /// Weights currently held, by factor name.
+    /// Weights currently held, by factor name; an entry named
+    /// `market_name` is the hedge currently held.
     pub previous_weights: Vec<(String, f64)>,
+    /// Name of the market series, when it has one (a CSV column, or the
+    /// request's `market_name`).
+    pub market_name: Option<String>,
 }
 
 /// Why a factor was left out of the estimation.
@@ -105,6 +109,9 @@ pub struct ReturnWindow {
 /// that returns in percent and in decimals behave the same.
 const ZERO_VARIANCE_RELATIVE: f64 = 1e-10;
 
+/// Largest |previous weight| accepted, in multiples of NAV.
+pub const MAX_PREVIOUS_WEIGHT: f64 = 1e6;
+
 impl ReturnWindow {
     /// Validates a panel against the settings.
     ///
@@ -120,6 +127,22 @@ impl ReturnWindow {
                     value: w,
                 });
             }
+            if w.abs() > MAX_PREVIOUS_WEIGHT {
+                return Err(InputError::WeightOutOfRange {
+                    at: Location::field("previous_weights").column(i, Some(n)),
+                    value: w,
+                    limit: MAX_PREVIOUS_WEIGHT,
+                });
+            }
+        }
+        if let Some(m) = &panel.market_name
+            && let Some(c) = panel.factor_names.iter().position(|f| f == m)
+        {
+            return Err(InputError::DuplicateName {
+                at: Location::field("market_name"),
+                name: m.clone(),
+                first_column: c,
+            });
         }
         check_length(rows, settings)?;
         let missing = check_values(panel, settings.missing_policy)?;

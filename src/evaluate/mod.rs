@@ -17,12 +17,61 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use serde::Serialize;
 use thiserror::Error;
 
+use crate::estimator::desk::{DeskWindow, Limits};
 use crate::estimator::{
-    self, Choice, EstimateError, FitOptions, Method, ReturnPanel, Scaling, Settings, Stop, ValidSettings, WeightSet,
+    self, Cap, Choice, EstimateError, FitOptions, Method, Normalization, ReturnPanel, Scaling, Settings, Stop,
+    ValidSettings, WeightSet,
 };
 
 /// Name of the market as a benchmark and as a strategy.
 pub const MARKET: &str = "market";
+
+/// Name of the configured method's unconstrained model portfolio, a row of
+/// its own when limits or costs are set (SPEC §10).
+pub const MODEL: &str = "configured, model portfolio";
+
+/// The settings without the implementation stage: the model portfolio.
+pub fn model_settings(s: &ValidSettings) -> ValidSettings {
+    let mut m = s.settings().clone();
+    m.max_weight = Cap::Off;
+    m.max_gross = Cap::Off;
+    m.max_market_weight = Cap::Off;
+    m.max_turnover = Cap::Off;
+    m.cost_bps = 0.0;
+    m.check().unwrap_or_else(|_| s.clone())
+}
+
+/// The implementation limits of a backtest, as run (SPEC §10): the same for
+/// every fitted strategy.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ConstraintSet {
+    /// Limits and the cost priced in the objective.
+    #[serde(flatten)]
+    pub limits: Limits,
+    /// Amortisation horizon of that cost, periods.
+    pub holding_periods: f64,
+    /// Half-life of the volatility target's covariance (0 = sample).
+    pub volatility_halflife: f64,
+    /// Annualised volatility target, when the normalisation has one.
+    pub target_volatility: Option<f64>,
+}
+
+impl ConstraintSet {
+    fn of(s: &ValidSettings) -> ConstraintSet {
+        ConstraintSet {
+            limits: Limits::of(s),
+            holding_periods: s.holding_periods.fixed().unwrap_or(f64::from(s.periods_per_year)),
+            volatility_halflife: s.volatility_halflife,
+            target_volatility: (s.normalization == Normalization::TargetVolatility).then_some(s.target_volatility),
+        }
+    }
+
+    /// Whether any limit or cost is set.
+    pub fn active(&self) -> bool {
+        let l = &self.limits;
+        [l.max_weight, l.max_gross, l.max_market_weight, l.max_turnover].iter().any(Option::is_some) || l.cost_bps > 0.0
+    }
+}
 
 /// A backtest that cannot run.
 #[derive(Debug, Error)]
@@ -77,6 +126,10 @@ fn with(base: &Settings, f: impl FnOnce(&mut Settings)) -> Option<ValidSettings>
 pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool) -> Vec<Strategy> {
     let base = configured.settings();
     let mut out = vec![Strategy { name: "configured".into(), settings: Some(configured.clone()) }];
+    if configured.implementation_active() {
+        // The configured method's model portfolio, before limits and costs (SPEC §10).
+        out.push(Strategy { name: MODEL.into(), settings: Some(model_settings(configured)) });
+    }
     if !baselines {
         return out;
     }
@@ -169,6 +222,13 @@ pub struct StrategyResult {
     pub net_metrics: Metrics,
     /// Average turnover Σ|Δw| + |Δw_m| per refit (after the first).
     pub average_turnover: f64,
+    /// Median gross exposure Σ|wᵢ| + |w_m| over refits.
+    pub gross_median: f64,
+    /// Largest gross exposure over refits.
+    pub gross_max: f64,
+    /// The annualised volatility the strategy targets, when it has a target
+    /// (compare with `metrics.volatility`, the realised one).
+    pub target_volatility: Option<f64>,
     /// K chosen at each refit (0 for methods without components).
     pub chosen_k: Vec<usize>,
     /// Annualised κ chosen at each refit.
@@ -261,6 +321,8 @@ pub struct BacktestResult {
     pub last_fit: Option<WeightSet>,
     /// Newey–West lag used.
     pub nw_lag: usize,
+    /// The implementation limits every fitted strategy ran under (SPEC §10).
+    pub constraints: ConstraintSet,
 }
 
 /// One refit's outcome for one strategy.
@@ -271,6 +333,8 @@ struct Held {
     k: usize,
     kappa: f64,
     top_share: f64,
+    /// The model's annualised Sharpe ratio behind γ* (SPEC §10): held-out when cross-validated.
+    sharpe_model: f64,
     /// Component loadings (configured strategy only) and betas.
     components: Vec<Vec<f64>>,
     betas: Vec<f64>,
@@ -290,6 +354,7 @@ fn sub_panel(panel: &ReturnPanel, start: usize, end: usize) -> ReturnPanel {
         cols: c,
         market: panel.market.as_ref().map(|m| m[start..end].to_vec()),
         previous_weights: Vec::new(),
+        market_name: None,
     }
 }
 
@@ -305,6 +370,11 @@ fn held_weights(ws: &WeightSet) -> Held {
         k: ws.diagnostics.num_components,
         kappa: ws.diagnostics.kappa,
         top_share: ws.diagnostics.top_sharpe_gross_share,
+        sharpe_model: if ws.diagnostics.cv_sharpe.is_finite() {
+            ws.diagnostics.cv_sharpe
+        } else {
+            ws.diagnostics.in_sample_sharpe
+        },
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -367,6 +437,7 @@ fn market_held(cols: usize) -> Held {
         k: 0,
         kappa: 0.0,
         top_share: 0.0,
+        sharpe_model: 0.0,
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -397,6 +468,9 @@ fn fit_date(
         held.push(match &s.settings {
             None => market_held(panel.cols),
             Some(settings) => {
+                // The model portfolios are fitted here, in parallel over dates; the
+                // implementation stage runs after, date by date (see `implement_all`).
+                let settings = &model_settings(settings);
                 let ws = estimator::fit_with(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
                 // Only the configured fits feed the pricing test: the others keep no loadings.
                 let h = if i == 0 { held_from(&ws) } else { held_weights(&ws) };
@@ -413,7 +487,7 @@ fn fit_date(
     for &sc in &plan.sweep_scalings {
         let mut s = configured.settings().clone();
         s.scaling = sc;
-        let settings = s.check().map_err(|e| wrap("sweep", e.into()))?;
+        let settings = model_settings(&s.check().map_err(|e| wrap("sweep", e.into()))?);
         let fits =
             estimator::fit_component_sweep(&window, &settings, &plan.sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
         // The fixed-K fits of one window share one basis, so the largest
@@ -454,19 +528,112 @@ fn fit_all_dates(
                 scope.spawn(move || (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>())
             })
             .collect();
-        handles
-            .into_iter()
-            .flat_map(|h| {
-                h.join().unwrap_or_else(|_| {
-                    vec![Err(BacktestError::Stopped(EstimateError::Numerical {
-                        stage: "backtest",
-                        detail: "worker panicked".into(),
-                    }))]
-                })
-            })
-            .collect()
+        join_workers(handles)
     });
     results.into_iter().collect()
+}
+
+/// Each worker's results in worker order; a worker that panicked gives one error.
+fn join_workers<T>(
+    handles: Vec<std::thread::ScopedJoinHandle<'_, Vec<Result<T, BacktestError>>>>,
+) -> Vec<Result<T, BacktestError>> {
+    handles
+        .into_iter()
+        .flat_map(|h| {
+            h.join().unwrap_or_else(|_| {
+                vec![Err(BacktestError::Stopped(EstimateError::Numerical {
+                    stage: "backtest",
+                    detail: "worker panicked".into(),
+                }))]
+            })
+        })
+        .collect()
+}
+
+/// The implementation stage (SPEC §10), date after date: each fitted
+/// strategy's model weights become the weights held, starting from what it
+/// held after the previous refit (nothing before the first). The model-
+/// portfolio row and the market keep their weights. Strategies are
+/// independent of each other, so they are split across `spec.threads`
+/// workers; each strategy's dates run in order, so results do not depend on
+/// the thread count.
+fn implement_all(
+    panel: &ReturnPanel,
+    configured: &ValidSettings,
+    spec: &ValidBacktestSpec,
+    plan: &Schedule,
+    fits: &mut [DateFits],
+    stop: &Stop,
+) -> Result<(), BacktestError> {
+    let todo: Vec<usize> = plan
+        .strategies
+        .iter()
+        .enumerate()
+        .filter(|(_, s)| s.settings.is_some() && s.name != MODEL)
+        .map(|(i, _)| i)
+        .collect();
+    // Each strategy's model weights, per date, moved out so that workers own them.
+    let mut columns: Vec<Vec<Held>> = todo
+        .iter()
+        .map(|&si| fits.iter_mut().map(|f| std::mem::replace(&mut f.held[si], market_held(0))).collect())
+        .collect();
+    let one = |si: usize, held: &mut [Held]| implement_strategy(panel, configured, spec, plan, si, held, stop);
+    let workers = spec.threads.clamp(1, todo.len().max(1));
+    let results: Vec<Result<(), BacktestError>> = if workers <= 1 {
+        todo.iter().zip(columns.iter_mut()).map(|(&si, col)| one(si, col)).collect()
+    } else {
+        let per = todo.len().div_ceil(workers);
+        std::thread::scope(|scope| {
+            let handles: Vec<_> = todo
+                .chunks(per)
+                .zip(columns.chunks_mut(per))
+                .map(|(sis, cols)| {
+                    let f = &one;
+                    scope
+                        .spawn(move || sis.iter().zip(cols.iter_mut()).map(|(&si, col)| f(si, col)).collect::<Vec<_>>())
+                })
+                .collect();
+            join_workers(handles)
+        })
+    };
+    for (&si, col) in todo.iter().zip(columns) {
+        for (f, h) in fits.iter_mut().zip(col) {
+            f.held[si] = h;
+        }
+    }
+    results.into_iter().collect()
+}
+
+/// One strategy's implemented weights at every date, in date order.
+fn implement_strategy(
+    panel: &ReturnPanel,
+    configured: &ValidSettings,
+    spec: &ValidBacktestSpec,
+    plan: &Schedule,
+    si: usize,
+    held: &mut [Held],
+    stop: &Stop,
+) -> Result<(), BacktestError> {
+    let strategy = &plan.strategies[si];
+    let Some(settings) = &strategy.settings else { return Ok(()) };
+    let mut prev = (vec![0.0; panel.cols], 0.0);
+    for (&t, h) in plan.dates.iter().zip(held.iter_mut()) {
+        stop.check().map_err(BacktestError::Stopped)?;
+        let start = if spec.expanding { 0 } else { t - spec.window };
+        let wrap = |e: EstimateError| match e {
+            EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
+            e => BacktestError::Window { strategy: strategy.name.clone(), period: label(panel, t), source: e },
+        };
+        let desk = DeskWindow::new(&sub_panel(panel, start, t), configured).map_err(wrap)?;
+        let mut warnings = Vec::new();
+        let done =
+            desk.implement(settings, &h.weights, h.sharpe_model, &prev.0, prev.1, &mut warnings).map_err(wrap)?;
+        h.weights = done.weights;
+        h.market = done.market_weight;
+        h.top_share = done.top_sharpe_gross_share;
+        prev = (h.weights.clone(), h.market);
+    }
+    Ok(())
 }
 
 /// The out-of-sample span: its periods and each period's holding.
@@ -537,6 +704,21 @@ fn strategy_results(
             net[plan.dates[d] - spec.window] -= cost * tv;
         }
         let average_turnover = if turnovers.is_empty() { 0.0 } else { stats::mean(&turnovers) };
+        let mut gross: Vec<f64> = fits
+            .iter()
+            .map(|f| f.held[si].weights.iter().map(|w| w.abs()).sum::<f64>() + f.held[si].market.abs())
+            .collect();
+        gross.sort_by(f64::total_cmp);
+        let gross_median = match gross.len() {
+            0 => f64::NAN,
+            n if n % 2 == 1 => gross[n / 2],
+            n => 0.5 * (gross[n / 2 - 1] + gross[n / 2]),
+        };
+        let target_volatility = s
+            .settings
+            .as_ref()
+            .filter(|v| v.normalization == Normalization::TargetVolatility)
+            .map(|v| v.target_volatility);
         results.push(StrategyResult {
             name: s.name.clone(),
             metrics: metrics(&returns, p, spec.cer_risk_aversion, lag),
@@ -544,6 +726,9 @@ fn strategy_results(
             returns,
             net_returns: net,
             average_turnover,
+            gross_median,
+            gross_max: gross.last().copied().unwrap_or(f64::NAN),
+            target_volatility,
             chosen_k: fits.iter().map(|f| f.held[si].k).collect(),
             chosen_kappa: fits.iter().map(|f| f.held[si].kappa).collect(),
             top_sharpe_share: fits.iter().map(|f| f.held[si].top_share).collect(),
@@ -655,7 +840,16 @@ pub fn run(
         });
     }
     let plan = Schedule::new(panel, configured, spec);
-    let fits = fit_all_dates(panel, configured, spec, &plan, progress, stop)?;
+    let mut fits = fit_all_dates(panel, configured, spec, &plan, progress, stop)?;
+    let constraints = ConstraintSet::of(configured);
+    if configured.implementation_active() {
+        implement_all(panel, configured, spec, &plan, &mut fits, stop)?;
+        if let Some(last) = last_implemented(panel, configured, spec, &plan, &fits, stop)?
+            && let Some(f) = fits.last_mut()
+        {
+            f.last = Some(last);
+        }
+    }
     let p = f64::from(configured.periods_per_year);
     let oos = OutOfSample { panel, periods: (spec.window..panel.rows).collect(), window: spec.window, step: spec.step };
     let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.periods.len()));
@@ -687,6 +881,36 @@ pub fn run(
         pricing,
         last_fit,
         nw_lag: lag,
+        constraints,
+    })
+}
+
+/// The configured method's full fit on the latest window, starting from the
+/// weights it held after the previous refit: the portfolio to trade next.
+fn last_implemented(
+    panel: &ReturnPanel,
+    configured: &ValidSettings,
+    spec: &ValidBacktestSpec,
+    plan: &Schedule,
+    fits: &[DateFits],
+    stop: &Stop,
+) -> Result<Option<WeightSet>, BacktestError> {
+    let Some(&t) = plan.dates.last() else { return Ok(None) };
+    let start = if spec.expanding { 0 } else { t - spec.window };
+    let mut window = sub_panel(panel, start, t);
+    if let Some(before) = fits.len().checked_sub(2).map(|d| &fits[d].held[0]) {
+        window.previous_weights =
+            panel.factor_names.iter().cloned().zip(before.weights.iter().copied()).filter(|(_, w)| *w != 0.0).collect();
+        if panel.market.is_some() {
+            let name = panel.market_name.clone().unwrap_or_else(|| MARKET.to_owned());
+            window.previous_weights.push((name.clone(), before.market));
+            window.market_name = Some(name);
+        }
+    }
+    let opts = FitOptions { threads: 1, stop: stop.clone(), ..FitOptions::default() };
+    estimator::fit_with(&window, configured, &opts).map(Some).map_err(|e| match e {
+        EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
+        e => BacktestError::Window { strategy: "configured".into(), period: label(panel, t), source: e },
     })
 }
 

@@ -6,7 +6,7 @@ use std::collections::HashMap;
 
 use thiserror::Error;
 use tonic::{Code, Status};
-use tonic_types::{ErrorDetails, FieldViolation, StatusExt as _};
+use tonic_types::{ErrorDetails, FieldViolation, PreconditionViolation, StatusExt as _};
 
 use crate::estimator::{EstimateError, InputError, Location, SettingsError};
 
@@ -145,6 +145,7 @@ fn input_reason(e: &InputError) -> &'static str {
         InputError::Shape { .. } => "SHAPE_MISMATCH",
         InputError::NonFinite { .. } => "NON_FINITE_VALUE",
         InputError::OutOfRange { .. } => "VALUE_OUT_OF_RANGE",
+        InputError::WeightOutOfRange { .. } => "WEIGHT_OUT_OF_RANGE",
         InputError::Missing { .. } => "MISSING_VALUE",
         InputError::AllMissing { .. } => "ALL_MISSING",
         InputError::DuplicateName { .. } => "DUPLICATE_FACTOR_NAME",
@@ -194,6 +195,7 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
                             | InputError::EmptyName { .. }
                             | InputError::NameTooLong { .. } => "factor_names",
                             InputError::MarketZeroVariance => "market_returns",
+                            InputError::WeightOutOfRange { .. } => "previous_weights",
                         };
                         (field.to_owned(), HashMap::from([("field".to_owned(), field.to_owned())]))
                     }
@@ -220,6 +222,23 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
             EstimateError::DegeneratePortfolio { .. } => {
                 with_info(Code::FailedPrecondition, "DEGENERATE_PORTFOLIO", e.to_string())
             }
+            EstimateError::ConstraintsInfeasible { constraints, .. } => {
+                let mut details = ErrorDetails::with_error_info(
+                    "CONSTRAINTS_INFEASIBLE",
+                    ERROR_DOMAIN,
+                    HashMap::from([("constraints".to_owned(), constraints.join(","))]),
+                );
+                details.set_precondition_failure(
+                    constraints
+                        .iter()
+                        .map(|c| {
+                            PreconditionViolation::new("CONSTRAINTS_INFEASIBLE", format!("settings.{c}"), e.to_string())
+                        })
+                        .collect::<Vec<_>>(),
+                );
+                Status::with_error_details(Code::FailedPrecondition, e.to_string(), details)
+            }
+            EstimateError::SolverFailed { .. } => with_info(Code::Internal, "SOLVER_FAILED", e.to_string()),
             EstimateError::Numerical { .. } => with_info(Code::Internal, "NUMERICAL_FAILURE", e.to_string()),
             EstimateError::Cancelled => with_info(Code::Cancelled, "CANCELLED", e.to_string()),
             EstimateError::DeadlineExceeded => with_info(Code::DeadlineExceeded, "DEADLINE_EXCEEDED", e.to_string()),

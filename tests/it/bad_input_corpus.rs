@@ -382,6 +382,89 @@ fn corpus() -> Vec<Case> {
             Error(INVALID, "ALL_MISSING", Some("returns.cols[5]")),
         ),
         c(
+            "max_weight 0",
+            &["max_weight=0"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.max_weight")),
+        ),
+        c(
+            "max_weight negative",
+            &["max_weight=-0.1"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.max_weight")),
+        ),
+        c(
+            "max_gross NaN",
+            &["max_gross=nan"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.max_gross")),
+        ),
+        c(
+            "max_turnover infinite",
+            &["max_turnover=inf"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.max_turnover")),
+        ),
+        c(
+            "max_market_weight 0",
+            &["max_market_weight=0"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.max_market_weight")),
+        ),
+        c("cost NaN", &["cost_bps=nan"], nothing, Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.cost_bps"))),
+        c(
+            "cost negative",
+            &["cost_bps=-5"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.cost_bps")),
+        ),
+        c(
+            "holding below one period",
+            &["holding_periods=0.5"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.holding_periods")),
+        ),
+        c(
+            "half-life below one period",
+            &["volatility_halflife=0.5"],
+            nothing,
+            Error(INVALID, "SETTING_OUT_OF_RANGE", Some("settings.volatility_halflife")),
+        ),
+        c(
+            "a limit switched off with false",
+            &[],
+            |r| {
+                r.settings.as_mut().unwrap().max_weight_choice =
+                    Some(proto::settings::MaxWeightChoice::MaxWeightOff(false));
+            },
+            Error(INVALID, "INVALID_SETTING", Some("settings.max_weight_off")),
+        ),
+        c(
+            "limits no portfolio meets",
+            &["max_weight=0.1", "max_turnover=0.05"],
+            |r| {
+                // Held far above the cap, with a turnover budget too small to sell down to it.
+                let w = proto::FactorWeight { factor: r.factor_names[0].clone(), weight: 0.5, ..Default::default() };
+                r.previous_weights = vec![w];
+            },
+            Error(Code::FailedPrecondition, "CONSTRAINTS_INFEASIBLE", None),
+        ),
+        c(
+            "previous weight 1e7",
+            &[],
+            |r| {
+                r.previous_weights =
+                    vec![proto::FactorWeight { factor: r.factor_names[1].clone(), weight: 1e7, ..Default::default() }]
+            },
+            Error(INVALID, "WEIGHT_OUT_OF_RANGE", Some("previous_weights[0]")),
+        ),
+        c(
+            "market named like a factor",
+            &[],
+            |r| r.market_name = r.factor_names[2].clone(),
+            Error(INVALID, "DUPLICATE_FACTOR_NAME", Some("market_name")),
+        ),
+        c(
             "huge but valid scale",
             &[],
             |r| {
@@ -483,6 +566,7 @@ fn corpus_through_the_command_line() {
                 || s.normalization > 3
                 || s.missing_policy > 2
                 || s.method > 5
+                || matches!(s.max_weight_choice, Some(proto::settings::MaxWeightChoice::MaxWeightOff(false)))
         }) {
             continue; // enum numbers exist only on the wire
         }
@@ -493,7 +577,7 @@ fn corpus_through_the_command_line() {
             && panel.factor_names.len() == panel.cols
             && panel.market.as_ref().is_some_and(|m| m.len() == panel.rows)
             && panel.factor_names.iter().all(|n| !n.trim().is_empty() && n.len() < 1000 && !n.contains(','))
-            && panel.previous_weights.is_empty();
+            && panel.market_name.as_deref().is_none_or(|m| m == keelson::demo::MARKET_COLUMN);
         if !representable {
             continue;
         }
@@ -501,6 +585,12 @@ fn corpus_through_the_command_line() {
         std::fs::write(&csv, to_csv(&panel)).unwrap();
         let mut args =
             vec!["fit".to_owned(), "--returns".into(), csv.display().to_string(), "--market".into(), "MKT".into()];
+        if !panel.previous_weights.is_empty() {
+            let held = dir.join(format!("{ran}-held.csv"));
+            let rows: String = panel.previous_weights.iter().map(|(n, w)| format!("{n},{w:e}\n")).collect();
+            std::fs::write(&held, format!("factor,weight\n{rows}")).unwrap();
+            args.extend(["--previous-weights".to_owned(), held.display().to_string()]);
+        }
         for kv in case.set {
             args.push("--set".into());
             args.push((*kv).into());
@@ -514,6 +604,9 @@ fn corpus_through_the_command_line() {
             Error(..) => 1,
         };
         assert_eq!(o.status.code(), Some(want), "{}: {err}", case.name);
+        if let Error(_, "CONSTRAINTS_INFEASIBLE", _) = case.expect {
+            assert!(err.contains("infeasible") && err.contains("max_turnover"), "{}: {err}", case.name);
+        }
         if want == 1 && err.contains(", row ") {
             assert!(err.contains("line "), "{}: the file position is named: {err}", case.name);
         }

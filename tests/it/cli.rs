@@ -115,7 +115,7 @@ fn settings_from_flags_and_files_apply() {
 #[test]
 fn previous_weights_give_turnover() {
     let p = file("tw.csv", &window(120, 6));
-    let prev = file("prev.csv", "factor,weight\nharrow_value,0.5\nretired_factor,0.25\n");
+    let prev = file("prev.csv", "factor,weight\nharrow_value,0.5\nretired_factor,0.25\nMKT,-0.1\n");
     let o = keelson(&[
         "fit",
         "--returns",
@@ -130,8 +130,10 @@ fn previous_weights_give_turnover() {
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: Value = serde_json::from_slice(&o.stdout).unwrap();
     let w: Vec<f64> = v["weights"].as_array().unwrap().iter().map(|w| w["weight"].as_f64().unwrap()).collect();
-    // Turnover Σ|w − w_prev| by its definition (SPEC §8); the unknown factor counts as sold.
-    let want = (w[0] - 0.5).abs() + w[1..].iter().map(|x| x.abs()).sum::<f64>() + 0.25;
+    // Turnover Σ|w − w_prev| + |w_m − w_m,prev| by its definition (SPEC §8, §10); the
+    // unknown factor counts as sold and the row named after the market column is the hedge held.
+    let hedge = v["marketWeight"].as_f64().unwrap();
+    let want = (w[0] - 0.5).abs() + w[1..].iter().map(|x| x.abs()).sum::<f64>() + 0.25 + (hedge + 0.1).abs();
     let got = v["diagnostics"]["turnover"].as_f64().unwrap();
     assert!((got - want).abs() < 1e-12, "{got} vs {want}");
     let warnings = v["diagnostics"]["warnings"].as_array().unwrap();
@@ -297,4 +299,73 @@ fn backtest_writes_report_summary_and_returns() {
     ]);
     assert_eq!(bad.status.code(), Some(2));
     assert!(stderr(&bad).contains("--benchmarks") && stderr(&bad).contains("nope"), "{}", stderr(&bad));
+}
+
+/// SPEC §10 from the command line: model and implemented weights side by
+/// side, and `ComputeWeights` answering the same request with the same
+/// bytes as `fit --format json` (after the proto3 JSON mapping).
+#[test]
+fn limits_and_costs_from_the_command_line_match_the_service() {
+    let csv = window(120, 12);
+    let p = file("desk.csv", &csv);
+    let names: Vec<String> = csv.lines().next().unwrap().split(',').skip(2).map(str::to_owned).collect();
+    let held = file("held.csv", &format!("factor,weight\n{},0.15\n{},-0.1\nMKT,-0.02\n", names[0], names[3]));
+    let args = |format: &str| -> Vec<String> {
+        [
+            "fit",
+            "--returns",
+            p.to_str().unwrap(),
+            "--market",
+            "MKT",
+            "--set",
+            "max_weight=0.2",
+            "--set",
+            "max_gross=2",
+            "--set",
+            "cost_bps=25",
+            "--previous-weights",
+            held.to_str().unwrap(),
+            "--format",
+            format,
+        ]
+        .map(str::to_owned)
+        .to_vec()
+    };
+    let run = |a: Vec<String>| keelson(&a.iter().map(String::as_str).collect::<Vec<_>>());
+    let o = run(args("table"));
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let out = stdout(&o);
+    for needle in
+        ["model", "weight", "gross exposure", "net exposure", "implementation: tracking error", "solver solved"]
+    {
+        assert!(out.contains(needle), "table lacks {needle:?}:\n{out}");
+    }
+    let o = run(args("json"));
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+    for w in v["weights"].as_array().unwrap() {
+        assert!(w["weight"].as_f64().unwrap().abs() <= 0.2 + 1e-9, "{w}");
+        assert!(w["modelWeight"].is_number());
+    }
+    assert!(v["diagnostics"]["implementation"]["solverStatus"] == "solved");
+
+    // The same request over gRPC: the proto response in the same JSON mapping, byte for byte.
+    let mut panel = keelson::panel_csv::parse_returns(&csv, "desk.csv", Some("MKT")).unwrap().panel;
+    panel.previous_weights = vec![(names[0].clone(), 0.15), (names[3].clone(), -0.1), ("MKT".into(), -0.02)];
+    let mut s = keelson::estimator::Settings::default();
+    for (k, val) in [("max_weight", "0.2"), ("max_gross", "2"), ("cost_bps", "25")] {
+        s.set(k, val).unwrap();
+    }
+    let proto_settings = keelson::convert::settings_to_proto_only(&s, &["max_weight", "max_gross", "cost_bps"]);
+    let req = keelson::convert::request_from_panel(&panel, proto_settings, "");
+    let rt = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().unwrap();
+    let resp = rt.block_on(async {
+        let server = crate::common::Server::start(|_| {}).await;
+        let mut c = server.client().await;
+        let r = c.compute_weights(req).await.unwrap().into_inner();
+        server.shutdown().await;
+        r
+    });
+    let served = serde_json::to_string_pretty(&resp).unwrap() + "\n";
+    assert_eq!(served, String::from_utf8_lossy(&o.stdout), "ComputeWeights and fit --format json differ");
 }

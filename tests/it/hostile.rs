@@ -9,7 +9,7 @@ use std::time::{Duration, Instant};
 use crate::common::Server;
 use keelson::convert::{request_from_panel, settings_to_proto};
 use keelson::demo::{synthetic_panel, to_csv};
-use keelson::estimator::{Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings};
+use keelson::estimator::{Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings};
 use keelson::proto::{self, weights_service_client::WeightsServiceClient};
 use tonic::Code;
 use tonic::transport::Channel;
@@ -152,6 +152,13 @@ fn server_defaults() -> Settings {
         rp_gamma: 5.0,
         min_periods: 30,
         held_out_check: false,
+        max_weight: Cap::At(5.0),
+        max_gross: Cap::At(50.0),
+        max_market_weight: Cap::At(10.0),
+        max_turnover: Cap::At(100.0),
+        cost_bps: 1.0,
+        holding_periods: Choice::Fixed(26.0),
+        volatility_halflife: 26.0,
     }
 }
 

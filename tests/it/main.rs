@@ -13,6 +13,7 @@ mod backtest_checks;
 mod bad_input_corpus;
 mod cli;
 mod common;
+mod desk_checks;
 mod faults;
 mod grpc;
 mod hostile;

@@ -68,6 +68,7 @@ fn tied_panel() -> ReturnPanel {
         cols,
         market: None,
         previous_weights: Vec::new(),
+        market_name: None,
     }
 }
 

@@ -35,6 +35,7 @@ fn window() -> impl Strategy<Value = ReturnPanel> {
                         cols,
                         market: market.then_some(m),
                         previous_weights: Vec::new(),
+                        market_name: None,
                     }
                 })
         },

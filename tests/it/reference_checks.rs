@@ -21,19 +21,19 @@ fn reference_dir() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/reference")
 }
 
-fn expected() -> Value {
+pub(crate) fn expected() -> Value {
     let text = std::fs::read_to_string(reference_dir().join("expected.json")).expect("expected.json is committed");
     serde_json::from_str(&text).expect("expected.json parses")
 }
 
-fn panel(name: &str) -> ReturnPanel {
+pub(crate) fn panel(name: &str) -> ReturnPanel {
     let path = reference_dir().join("data").join(format!("{name}.csv"));
     let text = std::fs::read_to_string(&path).unwrap();
     let market = text.lines().next().unwrap().split(',').nth(1) == Some("MKT");
     keelson::panel_csv::parse_returns(&text, name, market.then_some("MKT")).unwrap().panel
 }
 
-fn num(v: &Value) -> f64 {
+pub(crate) fn num(v: &Value) -> f64 {
     match v {
         Value::Number(n) => n.as_f64().unwrap(),
         Value::String(s) if s == "nan" => f64::NAN,
@@ -43,7 +43,7 @@ fn num(v: &Value) -> f64 {
     }
 }
 
-fn nums(v: &Value) -> Vec<f64> {
+pub(crate) fn nums(v: &Value) -> Vec<f64> {
     v.as_array().unwrap().iter().map(num).collect()
 }
 
@@ -79,7 +79,7 @@ fn close_vec(what: &str, actual: &[f64], expected: &[f64]) {
     }
 }
 
-fn settings_with(overrides: &Value) -> ValidSettings {
+pub(crate) fn settings_with(overrides: &Value) -> ValidSettings {
     let mut s = Settings::default();
     for (k, v) in overrides.as_object().unwrap() {
         let text = match v {
