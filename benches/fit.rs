@@ -95,5 +95,54 @@ fn backtest(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest);
+/// The implementation stage (SPEC §10) at 50 × 120 with every limit on and
+/// costs against previous weights: the stage alone (its window prepared
+/// once, as a backtest does), and a bare fit with and without it.
+fn implementation(c: &mut Criterion) {
+    use keelson::estimator::Cap;
+    use keelson::estimator::desk::DeskWindow;
+    let mut group = c.benchmark_group("implementation 50x120");
+    group.sample_size(20).measurement_time(Duration::from_secs(3));
+    let mut panel = synthetic_panel(50 * 7919 + 120, 120, 50);
+    panel.previous_weights = panel.factor_names.iter().step_by(3).map(|n| (n.clone(), 0.05)).collect();
+    let bare = settings(Scaling::Sharpe, "bare");
+    let mut limited = bare.settings().clone();
+    limited.max_weight = Cap::At(0.1);
+    limited.max_gross = Cap::At(2.0);
+    limited.max_market_weight = Cap::At(0.2);
+    limited.max_turnover = Cap::At(1.5);
+    limited.cost_bps = 20.0;
+    let limited = limited.check().expect("valid limits");
+    group.bench_function("bare fit", |b| b.iter(|| black_box(estimator::fit(&panel, &bare).expect("fits"))));
+    group.bench_function("bare fit, every limit and costs", |b| {
+        b.iter(|| black_box(estimator::fit(&panel, &limited).expect("fits")))
+    });
+    let model = estimator::fit(&panel, &bare).expect("fits");
+    let w: Vec<f64> = model.factors.iter().map(|f| f.weight).collect();
+    let prev: Vec<f64> = panel
+        .factor_names
+        .iter()
+        .map(|n| panel.previous_weights.iter().find(|(p, _)| p == n).map_or(0.0, |(_, v)| *v))
+        .collect();
+    let desk = DeskWindow::new(&panel, &limited).expect("window");
+    group.bench_function("stage alone", |b| {
+        b.iter(|| {
+            let mut warnings = Vec::new();
+            black_box(
+                desk.implement(
+                    &limited,
+                    &w,
+                    model.diagnostics.in_sample_sharpe,
+                    keelson::estimator::desk::Holdings { weights: &prev, market: 0.0 },
+                    &estimator::Stop::never(),
+                    &mut warnings,
+                )
+                .expect("solves"),
+            )
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest, implementation);
 criterion_main!(benches);

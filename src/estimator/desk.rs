@@ -21,12 +21,15 @@
 use std::panic::{AssertUnwindSafe, catch_unwind};
 
 use clarabel::algebra::CscMatrix;
-use clarabel::solver::{DefaultSettings, DefaultSolver, IPSolver, NonnegativeConeT, SolverStatus, SupportedConeT};
+use clarabel::solver::{
+    DefaultInfo, DefaultSettings, DefaultSolver, IPSolver, NonnegativeConeT, SolverStatus, SupportedConeT,
+};
 use faer::Mat;
 
 use super::error::EstimateError;
 use super::moments::Moments;
 use super::settings::ValidSettings;
+use super::stop::Stop;
 use super::weights::Warning;
 use super::window::{ReturnPanel, ReturnWindow};
 
@@ -289,10 +292,13 @@ fn quad(omega: &Mat<f64>, a: &[f64], b: &[f64]) -> f64 {
 /// [`EstimateError::ConstraintsInfeasible`] naming the constraints no
 /// portfolio can satisfy together, [`EstimateError::SolverFailed`] when the
 /// solver stops without a feasible iterate, and
-/// [`EstimateError::Numerical`] for a model without risk under Ω.
+/// [`EstimateError::Numerical`] for a model without risk under Ω, and
+/// [`EstimateError::Cancelled`] / [`EstimateError::DeadlineExceeded`] when
+/// `stop` fires (polled at every solver iteration).
 pub fn implement(
     problem: &Problem<'_>,
     limits: &Limits,
+    stop: &Stop,
     warnings: &mut Vec<Warning>,
 ) -> Result<Implemented, EstimateError> {
     let n = problem.model.len();
@@ -320,7 +326,7 @@ pub fn implement(
     }
     let layout = Layout::new(n, limits, hedged);
     let program = build(problem, limits, &layout, gamma, sigma2);
-    let x = run(&program, &layout, problem, warnings)?;
+    let x = run(&program, &layout, problem, stop, warnings)?;
     let (w, iterations, status, duals) = x;
     let market_weight = if hedged { -dot(beta, &w) } else { 0.0 };
     let diff: Vec<f64> = w.iter().zip(problem.model).map(|(a, b)| a - b).collect();
@@ -457,6 +463,7 @@ fn run(
     prog: &Program,
     layout: &Layout,
     problem: &Problem<'_>,
+    stop: &Stop,
     warnings: &mut Vec<Warning>,
 ) -> Result<Solved, EstimateError> {
     let p = csc(layout.total, &prog.p_cols);
@@ -474,6 +481,8 @@ fn run(
     let cones: Vec<SupportedConeT<f64>> = if m > 0 { vec![NonnegativeConeT(m)] } else { Vec::new() };
     let outcome = catch_unwind(AssertUnwindSafe(|| -> Result<_, String> {
         let mut solver = DefaultSolver::new(&p, &prog.q, &a, &prog.b, &cones, settings).map_err(|e| e.to_string())?;
+        let poll = stop.clone();
+        solver.set_termination_callback(move |_: &DefaultInfo<f64>| poll.check().is_err());
         solver.solve();
         let s = &solver.solution;
         Ok((s.x.clone(), s.z.clone(), s.status, s.iterations))
@@ -489,6 +498,7 @@ fn run(
     let w: Vec<f64> = x[..layout.n].to_vec();
     match status {
         SolverStatus::Solved => Ok((w, iterations, word, z)),
+        SolverStatus::CallbackTerminated => Err(stop.check().err().unwrap_or(EstimateError::Cancelled)),
         SolverStatus::PrimalInfeasible | SolverStatus::AlmostPrimalInfeasible => Err(infeasible(prog, &z, problem)),
         _ => {
             // Reduced accuracy or a stop before convergence: keep the iterate
@@ -641,6 +651,15 @@ pub struct DeskWindow {
     hedged: bool,
 }
 
+/// Positions held: a weight per panel factor and the hedge.
+#[derive(Clone, Copy, Debug)]
+pub struct Holdings<'a> {
+    /// Weight per panel factor.
+    pub weights: &'a [f64],
+    /// Market hedge.
+    pub market: f64,
+}
+
 /// The stage's answer over the panel's factors.
 pub struct DeskAnswer {
     /// Implemented weight per panel factor (0 for excluded ones).
@@ -668,7 +687,7 @@ impl DeskWindow {
 
     /// The implemented portfolio for model weights `model` (per panel
     /// factor) whose annualised Sharpe ratio is `model_sharpe`, starting
-    /// from `previous` (per panel factor) and `previous_market`.
+    /// from `previous`.
     ///
     /// # Errors
     /// As [`implement`].
@@ -677,10 +696,11 @@ impl DeskWindow {
         settings: &ValidSettings,
         model: &[f64],
         model_sharpe: f64,
-        previous: &[f64],
-        previous_market: f64,
+        previous: Holdings<'_>,
+        stop: &Stop,
         warnings: &mut Vec<Warning>,
     ) -> Result<DeskAnswer, EstimateError> {
+        let Holdings { weights: previous, market: previous_market } = previous;
         let used = &self.window.used;
         let model_used: Vec<f64> = used.iter().map(|&c| model[c]).collect();
         let previous_used: Vec<f64> = used.iter().map(|&c| previous[c]).collect();
@@ -699,7 +719,7 @@ impl DeskWindow {
             periods_per_year: p,
             names: &names,
         };
-        let done = implement(&problem, &Limits::of(settings), warnings)?;
+        let done = implement(&problem, &Limits::of(settings), stop, warnings)?;
         let mut weights = vec![0.0; previous.len()];
         for (j, &c) in used.iter().enumerate() {
             weights[c] = done.weights[j];

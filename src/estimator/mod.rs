@@ -158,7 +158,7 @@ fn fit_phased(
             let model = prepared.solve(settings, policy, options, &mut warnings)?;
             let direction = direction_of(&model);
             lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings);
+            let r = weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
         }
@@ -179,14 +179,14 @@ fn fit_phased(
                 });
             }
             lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &plug.weights, None, warnings);
+            let r = weights::assemble(panel, &window, &mom, settings, &plug.weights, None, warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
         }
         Method::EqualWeight => {
             let n = window.factors_used();
             let direction = vec![1.0 / n as f64; n];
-            let r = weights::assemble(panel, &window, &mom, settings, &direction, None, warnings);
+            let r = weights::assemble(panel, &window, &mom, settings, &direction, None, warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
         }
@@ -220,7 +220,7 @@ pub fn fit_component_sweep(
         let mut warnings = Vec::new();
         let r = prepared.solve(settings, KPolicy::Fixed(k), options, &mut warnings).and_then(|model| {
             let direction = direction_of(&model);
-            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings)
+            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop)
         });
         out.push(r);
     }

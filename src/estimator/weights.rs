@@ -10,6 +10,7 @@ use super::desk::{self, Implementation, Limits};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
 use super::settings::{Method, Normalization, Settings, ValidSettings};
+use super::stop::Stop;
 use super::window::{ReturnPanel, ReturnWindow};
 
 /// Weight and diagnostics of one factor of the panel.
@@ -172,6 +173,7 @@ pub(crate) fn assemble(
     direction: &[f64],
     model: Option<ComponentModel>,
     mut warnings: Vec<Warning>,
+    stop: &Stop,
 ) -> Result<WeightSet, EstimateError> {
     let n = window.factors_used();
     let t = window.periods();
@@ -200,7 +202,7 @@ pub(crate) fn assemble(
             periods_per_year: p,
             names: &names,
         };
-        let done = desk::implement(&problem, &Limits::of(settings), &mut warnings)?;
+        let done = desk::implement(&problem, &Limits::of(settings), stop, &mut warnings)?;
         (Some(done.weights), done.market_weight, Some(done.report))
     } else {
         (None, scaled.market_weight, None)
@@ -629,8 +631,8 @@ pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
         }
         None => h.update([0]),
     }
-    // Hashed only when present, so that fingerprints without one are unchanged.
-    if let Some(n) = &panel.market_name {
+    // The market's name matters only to find the hedge among previous weights.
+    if let Some(n) = panel.market_name.as_ref().filter(|_| !panel.previous_weights.is_empty()) {
         put_str(&mut h, "market_name");
         put_str(&mut h, n);
     }

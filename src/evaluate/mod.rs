@@ -17,7 +17,7 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use serde::Serialize;
 use thiserror::Error;
 
-use crate::estimator::desk::{DeskWindow, Limits};
+use crate::estimator::desk::{DeskWindow, Holdings, Limits};
 use crate::estimator::{
     self, Cap, Choice, EstimateError, FitOptions, Method, Normalization, ReturnPanel, Scaling, Settings, Stop,
     ValidSettings, WeightSet,
@@ -626,8 +626,16 @@ fn implement_strategy(
         };
         let desk = DeskWindow::new(&sub_panel(panel, start, t), configured).map_err(wrap)?;
         let mut warnings = Vec::new();
-        let done =
-            desk.implement(settings, &h.weights, h.sharpe_model, &prev.0, prev.1, &mut warnings).map_err(wrap)?;
+        let done = desk
+            .implement(
+                settings,
+                &h.weights,
+                h.sharpe_model,
+                Holdings { weights: &prev.0, market: prev.1 },
+                stop,
+                &mut warnings,
+            )
+            .map_err(wrap)?;
         h.weights = done.weights;
         h.market = done.market_weight;
         h.top_share = done.top_sharpe_gross_share;

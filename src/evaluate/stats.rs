@@ -290,7 +290,7 @@ mod tests {
 
     #[test]
     fn deflated_sharpe_worked_example() {
-        // Bailey & López de Prado (2014) example, as recalled in SPEC §10 and recomputed:
+        // Bailey & López de Prado (2014) example, as recalled in SPEC §12 and recomputed:
         // 100 trials, variance of (annualised) trial Sharpe ratios 0.5, annual SR 2.5 over
         // 1,250 daily returns at 250 per year, skewness −3, kurtosis 10 → DSR ≈ 0.9004.
         let p = 250.0f64;

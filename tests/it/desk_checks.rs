@@ -299,3 +299,21 @@ fn a_backtest_without_limits_is_unchanged_by_the_stage() {
     assert!(!r.constraints.active());
     assert!(r.strategies[0].gross_median.is_finite() && r.strategies[0].target_volatility == Some(0.10));
 }
+
+#[test]
+fn the_solver_stops_when_asked() {
+    use keelson::estimator::desk::DeskWindow;
+    let p = a_main(&[]);
+    let s = demo_settings(|s| s.max_weight = Cap::At(0.1)).check().unwrap();
+    let model = estimator::fit(&p, &demo_settings(|_| {}).check().unwrap()).unwrap();
+    let w: Vec<f64> = model.factors.iter().map(|f| f.weight).collect();
+    let desk = DeskWindow::new(&p, &s).unwrap();
+    let flag = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(true));
+    let stop = keelson::estimator::Stop::never().with_flag(flag);
+    let none = vec![0.0; w.len()];
+    let held = keelson::estimator::desk::Holdings { weights: &none, market: 0.0 };
+    let r = desk.implement(&s, &w, 1.0, held, &stop, &mut Vec::new());
+    assert!(matches!(r, Err(EstimateError::Cancelled)), "{:?}", r.err());
+    let ok = desk.implement(&s, &w, 1.0, held, &keelson::estimator::Stop::never(), &mut Vec::new()).unwrap();
+    assert!(ok.weights.iter().all(|x| x.abs() <= 0.1 + 1e-9));
+}

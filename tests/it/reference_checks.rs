@@ -14,7 +14,7 @@ use keelson::estimator::{
 };
 use serde_json::Value;
 
-/// Relative agreement required everywhere (SPEC §10 asks for 1e-9 or better).
+/// Relative agreement required everywhere (SPEC §12 asks for 1e-9 or better).
 const RTOL: f64 = 1e-9;
 
 fn reference_dir() -> PathBuf {
@@ -236,7 +236,7 @@ fn ridge_matches_scikit_learn_ridge() {
 
 #[test]
 fn elastic_net_matches_scikit_learn_and_satisfies_kkt() {
-    // Source: scikit-learn ElasticNet(alpha=γ₁/(2K)+γ₂/K, l1_ratio=γ₁/(γ₁+2γ₂), tol=1e-12) (SPEC §5, §10).
+    // Source: scikit-learn ElasticNet(alpha=γ₁/(2K)+γ₂/K, l1_ratio=γ₁/(γ₁+2γ₂), tol=1e-12) (SPEC §5, §12).
     let exp = expected();
     let e = &exp["steps"]["elastic_net_sklearn"];
     let mom = a_main_moments();

@@ -113,6 +113,7 @@ def main():
             period_labels=w["labels"],
             returns=weights_pb2.Matrix(rows=w["rows"], cols=w["cols"], values=w["values"]),
             market_returns=w["market"],
+            market_name=args.market,
             request_id="py-1",
         )
         resp = stub.ComputeWeights(req, timeout=60)
