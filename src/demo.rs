@@ -52,10 +52,11 @@ const NAMES: [&str; 36] = [
 ];
 
 /// SplitMix64 (Steele, Lea & Flood 2014): small, fast, and fully reproducible.
-struct SplitMix(u64);
+pub struct SplitMix(pub u64);
 
 impl SplitMix {
-    fn next_u64(&mut self) -> u64 {
+    /// The next 64 random bits.
+    pub fn next_u64(&mut self) -> u64 {
         self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
         let mut z = self.0;
         z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
@@ -63,12 +64,13 @@ impl SplitMix {
         z ^ (z >> 31)
     }
 
-    fn uniform(&mut self) -> f64 {
+    /// Uniform on (0, 1).
+    pub fn uniform(&mut self) -> f64 {
         ((self.next_u64() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
     }
 
     /// Standard normal by Box–Muller.
-    fn normal(&mut self) -> f64 {
+    pub fn normal(&mut self) -> f64 {
         let (u1, u2) = (self.uniform(), self.uniform());
         (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
     }

@@ -263,14 +263,14 @@ pub fn summary_table(r: &BacktestResult) -> String {
     let mut out = String::new();
     let _ = writeln!(
         out,
-        "{:<28} {:>7} {:>7} {:>6} {:>7} {:>7} {:>8} {:>7} {:>12} {:>8} {:>7}",
+        "{:<40} {:>7} {:>7} {:>6} {:>7} {:>7} {:>8} {:>7} {:>12} {:>8} {:>7}",
         "strategy", "mean", "vol", "target", "Sharpe", "SE(NW)", "CER", "maxDD", "gross med/max", "turnover", "net SR"
     );
     for s in &r.strategies {
         let _ = writeln!(
             out,
-            "{:<28} {:>6.2}% {:>6.2}% {:>6} {:>7.2} {:>7.2} {:>7.2}% {:>6.1}% {:>5.2}/{:<6.2} {:>8.3} {:>7.2}",
-            s.name.chars().take(28).collect::<String>(),
+            "{:<40} {:>6.2}% {:>6.2}% {:>6} {:>7.2} {:>7.2} {:>7.2}% {:>6.1}% {:>5.2}/{:<6.2} {:>8.3} {:>7.2}",
+            s.name.chars().take(40).collect::<String>(),
             100.0 * s.metrics.mean,
             100.0 * s.metrics.volatility,
             s.target_volatility.map_or_else(|| "-".to_owned(), |t| format!("{:.1}%", 100.0 * t)),
@@ -285,6 +285,31 @@ pub fn summary_table(r: &BacktestResult) -> String {
         );
     }
     let _ = writeln!(out, "{}", constraint_line(&r.constraints));
+    for line in edge_lines(r) {
+        let _ = writeln!(out, "{line}");
+    }
+    out
+}
+
+/// Strategies whose cross-validated κ or K sat at an edge of its grid in
+/// most refits: the grid, not the data, made the choice there.
+pub fn edge_lines(r: &BacktestResult) -> Vec<String> {
+    let mut out = Vec::new();
+    for s in &r.strategies {
+        for (count, what) in [
+            (s.kappa_at_edge, "κ at an end of its grid (see kappa_grid_min, kappa_grid_max)"),
+            (s.components_at_cap, "K at the top of its grid (see max_components)"),
+        ] {
+            if 2 * count > r.refits {
+                out.push(format!(
+                    "note: {}: {what} in {count} of {} refits ({:.0}%)",
+                    s.name,
+                    r.refits,
+                    100.0 * count as f64 / r.refits.max(1) as f64
+                ));
+            }
+        }
+    }
     out
 }
 
@@ -517,6 +542,9 @@ fn header(r: &BacktestResult, title: &str) -> String {
 fn performance_section(r: &BacktestResult) -> String {
     let mut html = String::new();
     let _ = write!(html, "<h2>Performance</h2><p>{}</p>", esc(&constraint_line(&r.constraints)));
+    for line in edge_lines(r) {
+        let _ = write!(html, "<p class=\"note\">{}</p>", esc(&line));
+    }
     html.push_str("<table><tr><th>strategy</th><th>mean</th><th>vol</th><th>vol target</th><th>Sharpe</th><th>SE iid</th><th>SE NW</th><th>CER</th><th>max DD</th><th>gross median</th><th>gross max</th><th>turnover</th><th>net Sharpe</th></tr>");
     for s in &r.strategies {
         let m = &s.metrics;

@@ -93,7 +93,7 @@ pub(crate) fn footer(r: &BacktestResult) -> String {
     let mut out = String::new();
     for c in &r.comparisons {
         out.push_str(&format!(
-            "configured vs {:<24} ΔSharpe {:>6.2}  z {:>6.2}  p {:.3}\n",
+            "configured vs {:<40} ΔSharpe {:>6.2}  z {:>6.2}  p {:.3}\n",
             c.against, c.test.difference, c.test.z, c.test.p_value
         ));
     }

@@ -71,6 +71,8 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         gross_median,
         gross_max,
         target_volatility,
+        kappa_at_edge,
+        components_at_cap,
         // Reported in the summary file and the report, not on the wire.
         missing_holding_returns: _,
     } = s;
@@ -95,6 +97,8 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         gross_median: *gross_median,
         gross_max: *gross_max,
         target_volatility: *target_volatility,
+        kappa_at_edge: *kappa_at_edge as u32,
+        components_at_cap: *components_at_cap as u32,
     }
 }
 

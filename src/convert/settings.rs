@@ -18,6 +18,8 @@ pub fn scaling_to_proto(s: Scaling) -> proto::Scaling {
         Scaling::Standardized => proto::Scaling::Standardized,
         Scaling::Covariance => proto::Scaling::Covariance,
         Scaling::RiskPremium => proto::Scaling::RiskPremium,
+        Scaling::SharpeShrunk => proto::Scaling::SharpeShrunk,
+        Scaling::Auto => proto::Scaling::Auto,
     }
 }
 
@@ -51,6 +53,7 @@ fn method_to_proto(m: Method) -> proto::Method {
         Method::EqualWeight => proto::Method::EqualWeight,
         Method::KnsRidge => proto::Method::KnsRidge,
         Method::PlugInLedoitWolf => proto::Method::PlugInLedoitWolf,
+        Method::Ensemble => proto::Method::Ensemble,
     }
 }
 
@@ -226,6 +229,7 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
             proto::Method::EqualWeight => Some(Method::EqualWeight),
             proto::Method::KnsRidge => Some(Method::KnsRidge),
             proto::Method::PlugInLedoitWolf => Some(Method::PlugInLedoitWolf),
+            proto::Method::Ensemble => Some(Method::Ensemble),
         })?,
         scaling: enum_from("scaling", scaling, |s| match s {
             proto::Scaling::Unspecified => None,
@@ -234,6 +238,8 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
             proto::Scaling::Standardized => Some(Scaling::Standardized),
             proto::Scaling::Covariance => Some(Scaling::Covariance),
             proto::Scaling::RiskPremium => Some(Scaling::RiskPremium),
+            proto::Scaling::SharpeShrunk => Some(Scaling::SharpeShrunk),
+            proto::Scaling::Auto => Some(Scaling::Auto),
         })?,
         components: match components_choice {
             None => None,

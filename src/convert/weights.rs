@@ -1,9 +1,9 @@
 //! `ComputeWeightsRequest` ⇄ the window, and a [`WeightSet`] → `ComputeWeightsResponse`.
 
-use super::settings::{criterion_to_proto, settings_to_proto};
+use super::settings::{criterion_to_proto, scaling_to_proto, settings_to_proto};
 use crate::estimator::{
     BindingConstraint, ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, Implementation,
-    ReturnPanel, Settings, Warning, WeightSet,
+    ReturnPanel, ScalingScore, Settings, Warning, WeightSet,
 };
 use crate::proto;
 
@@ -85,6 +85,8 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnost
         periods,
         factors_used,
         implementation,
+        chosen_scaling,
+        scaling_scores,
     } = d;
     proto::Diagnostics {
         num_components: *num_components as u32,
@@ -117,6 +119,16 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnost
         factors_used: *factors_used as u32,
         effective_settings: Some(settings_to_proto(settings)),
         implementation: implementation.as_ref().map(implementation_to_proto),
+        chosen_scaling: chosen_scaling.map_or(0, |sc| scaling_to_proto(sc).into()),
+        scaling_scores: scaling_scores
+            .iter()
+            .map(|ScalingScore { scaling, best_score, components, kappa }| proto::ScalingScore {
+                scaling: scaling_to_proto(*scaling).into(),
+                best_score: *best_score,
+                components: *components as u32,
+                kappa: *kappa,
+            })
+            .collect(),
     }
 }
 

@@ -43,6 +43,27 @@ pub struct ComponentBasis {
     pub used_gram: bool,
 }
 
+/// Per-period Sharpe ratios shrunk toward their cross-sectional mean (SPEC §11):
+/// SR_i ← SR̄ + (1 − B)(SR_i − SR̄), B = (N − 3)/(T·Σ_j(SR_j − SR̄)²) clipped to
+/// [0, 1] (James–Stein with sampling variance 1/T; Efron & Morris 1975). Only
+/// factors with variance in the block take part; N ≤ 3 leaves them unshrunk.
+pub fn shrunk_sharpe(mom: &Moments) -> Vec<f64> {
+    let t = mom.periods() as f64;
+    let live: Vec<usize> = (0..mom.sd.len()).filter(|&j| mom.sd[j] > 0.0).collect();
+    let sr: Vec<f64> = (0..mom.sd.len()).map(|j| mom.sharpe(j)).collect();
+    let n = live.len() as f64;
+    if live.is_empty() {
+        return sr;
+    }
+    let mean = live.iter().map(|&j| sr[j]).sum::<f64>() / n;
+    let spread: f64 = live.iter().map(|&j| (sr[j] - mean).powi(2)).sum();
+    let b = if spread > 0.0 { ((n - 3.0) / (t * spread)).clamp(0.0, 1.0) } else { 1.0 };
+    if b == 0.0 {
+        return sr;
+    }
+    sr.iter().map(|&x| mean + (1.0 - b) * (x - mean)).collect()
+}
+
 impl ComponentBasis {
     /// Computes the first `k` components of the block (fewer when the rank is lower).
     pub fn compute(
@@ -53,6 +74,16 @@ impl ComponentBasis {
         path: EigenPath,
     ) -> Result<ComponentBasis, EstimateError> {
         let (t, n) = mom.centered.shape();
+        let shrunk = match scaling {
+            Scaling::SharpeShrunk => shrunk_sharpe(mom),
+            Scaling::Auto => {
+                return Err(EstimateError::Numerical {
+                    stage: "component basis",
+                    detail: "scaling `auto` is resolved before a basis is computed".into(),
+                });
+            }
+            _ => Vec::new(),
+        };
         let scale: Vec<f64> = (0..n)
             .map(|j| {
                 let (mu, sd) = (mom.mean[j], mom.sd[j]);
@@ -60,8 +91,9 @@ impl ComponentBasis {
                     // Scaled PCA with the Sharpe ratio as the scale: SR_i/σ_i = μ_i/σ_i².
                     Scaling::Sharpe => mu / (sd * sd),
                     Scaling::SharpeRaw => mu / sd,
+                    Scaling::SharpeShrunk => shrunk[j] / sd,
                     Scaling::Standardized => 1.0 / sd,
-                    Scaling::Covariance | Scaling::RiskPremium => 1.0,
+                    Scaling::Covariance | Scaling::RiskPremium | Scaling::Auto => 1.0,
                 };
                 // A factor without variance in this block (possible inside a fold) carries no weight.
                 if sd > 0.0 && s.is_finite() { s } else { 0.0 }
@@ -175,6 +207,28 @@ pub(crate) fn rank_tolerance(desc: &[f64], dim: usize) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn shrunk_sharpe_follows_james_stein() {
+        // Hand computation (SPEC §11): five factors, T = 10, per-period Sharpe ratios
+        // (0.5, 0.3, 0.1, −0.1, 0.2): mean 0.2, Σ(SR − mean)² = 0.09 + 0.01 + 0.01 + 0.09 + 0 = 0.2,
+        // B = (5 − 3)/(10 · 0.2) = 1 − 0 → B = 1: every ratio becomes the mean.
+        let sr = [0.5, 0.3, 0.1, -0.1, 0.2];
+        let make =
+            |t: usize| Moments { beta: vec![0.0; 5], mean: sr.to_vec(), sd: vec![1.0; 5], centered: Mat::zeros(t, 5) };
+        for v in shrunk_sharpe(&make(10)) {
+            assert!((v - 0.2).abs() < 1e-15);
+        }
+        // T = 40: B = 2/(40 · 0.2) = 0.25, SR_i ← 0.2 + 0.75 (SR_i − 0.2).
+        let got = shrunk_sharpe(&make(40));
+        for (g, s) in got.iter().zip(sr) {
+            assert!((g - (0.2 + 0.75 * (s - 0.2))).abs() < 1e-15, "{g} vs {s}");
+        }
+        // Three factors or fewer: no shrinkage (the positive part of N − 3).
+        let three =
+            Moments { beta: vec![0.0; 3], mean: vec![0.5, 0.1, -0.2], sd: vec![1.0; 3], centered: Mat::zeros(40, 3) };
+        assert_eq!(shrunk_sharpe(&three), vec![0.5, 0.1, -0.2]);
+    }
 
     fn moments(t: usize, n: usize) -> Moments {
         let panel = crate::demo::synthetic_panel(11, t, n);

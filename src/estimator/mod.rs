@@ -31,7 +31,7 @@ pub use settings::{
 };
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
-pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, Warning, WeightSet};
+pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, ScalingScore, Warning, WeightSet};
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
 
 use std::time::{Duration, Instant};
@@ -147,6 +147,51 @@ fn fit_phased(
     lap(&mut mark, &mut ph.moments);
     let mut warnings = Vec::new();
     match settings.method {
+        Method::Components if settings.scaling == Scaling::Auto => {
+            let members = scaling_members(&window, &mom, settings, options)?;
+            lap(&mut mark, &mut ph.components);
+            let scores: Vec<ScalingScore> = members.iter().map(Member::score).collect();
+            let best = choose_scaling(&members);
+            let Member { model, warnings: mut chosen_warnings, .. } =
+                members.into_iter().nth(best).ok_or_else(|| EstimateError::NoFiniteScore {
+                    reason: "no scaling gave a finite cross-validation score".into(),
+                })?;
+            warnings.append(&mut chosen_warnings);
+            let chosen = Scaling::ALL[best];
+            let direction = direction_of(&model);
+            lap(&mut mark, &mut ph.solve);
+            let r = weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop)
+                .map(|mut ws| {
+                    ws.diagnostics.chosen_scaling = Some(chosen);
+                    ws.diagnostics.scaling_scores = scores;
+                    ws
+                });
+            lap(&mut mark, &mut ph.assemble);
+            r
+        }
+        Method::Ensemble => {
+            let members = scaling_members(&window, &mom, settings, options)?;
+            lap(&mut mark, &mut ph.components);
+            let scores: Vec<ScalingScore> = members.iter().map(Member::score).collect();
+            // Each member normalised as the settings say, then the equal-weight average.
+            let n = window.factors_used();
+            let mut average = vec![0.0; n];
+            for m in &members {
+                let w = weights::normalized_weights(&window, &mom, &m.settings, &direction_of(&m.model))?;
+                for (a, x) in average.iter_mut().zip(&w) {
+                    *a += x / members.len() as f64;
+                }
+            }
+            lap(&mut mark, &mut ph.solve);
+            let r = weights::assemble(panel, &window, &mom, settings, &average, None, warnings, &options.stop).map(
+                |mut ws| {
+                    ws.diagnostics.scaling_scores = scores;
+                    ws
+                },
+            );
+            lap(&mut mark, &mut ph.assemble);
+            r
+        }
         Method::Components | Method::KnsRidge => {
             let policy = match (settings.method, settings.components.fixed()) {
                 (Method::KnsRidge, _) => KPolicy::All,
@@ -225,6 +270,60 @@ pub fn fit_component_sweep(
         out.push(r);
     }
     Ok(out)
+}
+
+/// One scaling's cross-validated components fit, for `auto` and `ensemble`.
+struct Member {
+    settings: ValidSettings,
+    model: ComponentModel,
+    warnings: Vec<Warning>,
+}
+
+impl Member {
+    fn score(&self) -> ScalingScore {
+        ScalingScore {
+            scaling: self.settings.scaling,
+            best_score: self.model.best_score,
+            components: self.model.k,
+            kappa: self.model.kappa,
+        }
+    }
+}
+
+/// The components method under every concrete scaling, each cross-validated
+/// on its own (the window's validation and moments shared); with K and κ both
+/// fixed the folds still run, since the choice needs their scores.
+fn scaling_members(
+    window: &ReturnWindow,
+    mom: &Moments,
+    settings: &ValidSettings,
+    options: &FitOptions,
+) -> Result<Vec<Member>, EstimateError> {
+    let mut out = Vec::with_capacity(Scaling::ALL.len());
+    for sc in Scaling::ALL {
+        options.stop.check()?;
+        let member =
+            Settings { method: Method::Components, scaling: sc, held_out_check: true, ..settings.settings().clone() }
+                .check()?;
+        let policy = match member.components.fixed() {
+            Some(k) => KPolicy::Fixed(k as usize),
+            None => KPolicy::Grid,
+        };
+        let mut warnings = Vec::new();
+        let prepared = ComponentFit::prepare(window, mom, &member, policy, options)?;
+        let model = prepared.solve(&member, policy, options, &mut warnings)?;
+        out.push(Member { settings: member, model, warnings });
+    }
+    Ok(out)
+}
+
+/// The member with the highest finite score; scores within 1e-10 (relative)
+/// of the best are ties, which go to the earlier scaling of [`Scaling::ALL`]
+/// (the tie rule of SPEC §6 carried over).
+fn choose_scaling(members: &[Member]) -> usize {
+    let top = members.iter().map(|m| m.model.best_score).filter(|v| v.is_finite()).fold(f64::NEG_INFINITY, f64::max);
+    let floor = top - cv::TIE_TOLERANCE * top.abs().max(f64::MIN_POSITIVE);
+    members.iter().position(|m| m.model.best_score.is_finite() && m.model.best_score >= floor).unwrap_or(members.len())
 }
 
 fn direction_of(model: &ComponentModel) -> Vec<f64> {

@@ -21,6 +21,9 @@ pub enum Method {
     Components,
     /// Unshrunk Σ⁻¹μ on all usable factors (a baseline).
     PlugIn,
+    /// The equal-weight average of the normalised component portfolios of
+    /// every scaling, each cross-validated on its own, normalised again (SPEC §11).
+    Ensemble,
     /// Σ_LW⁻¹μ with the Ledoit & Wolf (2004) shrunk covariance (a baseline).
     PlugInLedoitWolf,
     /// KNS ridge on all factors: covariance PCA with every component, κ as set (a baseline).
@@ -44,12 +47,24 @@ pub enum Scaling {
     Covariance,
     /// Risk-premium PCA (Lettau & Pelger 2020).
     RiskPremium,
+    /// As `sharpe`, with the Sharpe ratios shrunk toward their
+    /// cross-sectional mean (James–Stein) before scaling (SPEC §11).
+    SharpeShrunk,
+    /// Chosen by cross-validation among every other scaling (SPEC §11).
+    Auto,
 }
 
 impl Scaling {
-    /// Every scaling, in documentation order.
-    pub const ALL: [Scaling; 5] =
-        [Scaling::Sharpe, Scaling::SharpeRaw, Scaling::Standardized, Scaling::Covariance, Scaling::RiskPremium];
+    /// Every concrete scaling (all but `auto`), in documentation order; `auto`
+    /// chooses among these, and ties go to the earlier one.
+    pub const ALL: [Scaling; 6] = [
+        Scaling::Sharpe,
+        Scaling::SharpeRaw,
+        Scaling::Standardized,
+        Scaling::Covariance,
+        Scaling::RiskPremium,
+        Scaling::SharpeShrunk,
+    ];
 
     /// Whether the component covariance Q'ΣQ is diagonal in the fitting sample,
     /// so that ridge and elastic net have closed forms per component.
@@ -312,13 +327,13 @@ fn within(v: f64, lo_open: f64, hi: f64) -> bool {
 settings_table! {
     /// Portfolio rule.
     method: Method = Method::Components;
-    range "`components`, `kns-ridge`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight`" if |_v| true;
-    meaning "the shrunk component portfolio, or a baseline";
+    range "`components`, `ensemble`, `kns-ridge`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight`" if |_v| true;
+    meaning "the shrunk component portfolio, the equal-weight ensemble of every scaling's, or a baseline";
 
     /// Factor scaling before PCA.
     scaling: Scaling = Scaling::Sharpe;
-    range "`sharpe`, `sharpe-raw`, `standardized`, `covariance`, `risk-premium`" if |_v| true;
-    meaning "factor scaling before PCA (see Method)";
+    range "`sharpe`, `sharpe-raw`, `sharpe-shrunk`, `standardized`, `covariance`, `risk-premium`, `auto`" if |_v| true;
+    meaning "factor scaling before PCA (see Method); `auto` = chosen by cross-validation";
 
     /// Number of components K.
     components: Choice<u32> = Choice::Auto;

@@ -9,7 +9,7 @@ use super::dense;
 use super::desk::{self, Implementation, Limits};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
-use super::settings::{Method, Normalization, Settings, ValidSettings};
+use super::settings::{Method, Normalization, Scaling, Settings, ValidSettings};
 use super::stop::Stop;
 use super::window::{ReturnPanel, ReturnWindow};
 
@@ -120,6 +120,23 @@ pub struct Diagnostics {
     pub factors_used: usize,
     /// The implementation stage (SPEC §10), when a limit or a cost is set.
     pub implementation: Option<Implementation>,
+    /// The scaling cross-validation chose, with `scaling = auto` (SPEC §11).
+    pub chosen_scaling: Option<Scaling>,
+    /// Each scaling's best score, K and κ, with `scaling = auto` or `method = ensemble`.
+    pub scaling_scores: Vec<ScalingScore>,
+}
+
+/// One scaling's best cross-validation score (SPEC §11).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct ScalingScore {
+    /// The scaling.
+    pub scaling: Scaling,
+    /// Its best mean held-out score.
+    pub best_score: f64,
+    /// K at that score.
+    pub components: usize,
+    /// Annualised κ at that score.
+    pub kappa: f64,
 }
 
 /// Weights and diagnostics for one window: the estimator's answer.
@@ -262,6 +279,8 @@ pub(crate) fn assemble(
         periods: t,
         factors_used: n,
         implementation,
+        chosen_scaling: None,
+        scaling_scores: Vec::new(),
     };
     let components = match model {
         Some(m) => model_reports(m, window, settings, p, &mut diagnostics),
@@ -277,6 +296,17 @@ pub(crate) fn assemble(
         estimator_version: super::ESTIMATOR_VERSION,
         settings: settings.settings().clone(),
     })
+}
+
+/// The direction scaled by the normalisation (SPEC §7): the weights over the
+/// usable factors (what an ensemble averages).
+pub(crate) fn normalized_weights(
+    window: &ReturnWindow,
+    mom: &Moments,
+    settings: &ValidSettings,
+    direction: &[f64],
+) -> Result<Vec<f64>, EstimateError> {
+    Normalized::new(window, mom, settings, direction).map(|n| n.weights)
 }
 
 /// The direction scaled by the normalisation (SPEC §7), with its hedge.
@@ -329,8 +359,9 @@ impl Normalized {
                 Method::Components | Method::KnsRidge | Method::PlugIn | Method::PlugInLedoitWolf => {
                     1.0 / settings.risk_aversion
                 }
-                // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃).
-                Method::EqualWeight => mean_dir / (settings.risk_aversion * var_dir),
+                // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃); the
+                // ensemble's average of scaled portfolios is one too.
+                Method::EqualWeight | Method::Ensemble => mean_dir / (settings.risk_aversion * var_dir),
             },
             Normalization::GrossExposure => 1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs()),
         };

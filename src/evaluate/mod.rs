@@ -19,12 +19,18 @@ use thiserror::Error;
 
 use crate::estimator::desk::{DeskWindow, Holdings, Limits};
 use crate::estimator::{
-    self, Cap, Choice, EstimateError, FitOptions, Method, Normalization, ReturnPanel, Scaling, Settings, Stop,
-    ValidSettings, WeightSet,
+    self, Cap, Choice, CvCriterion, EstimateError, FitOptions, Method, Normalization, ReturnPanel, Scaling, Settings,
+    Stop, ValidSettings, WeightSet,
 };
 
 /// Name of the market as a benchmark and as a strategy.
 pub const MARKET: &str = "market";
+
+/// The ridge on all factors as published: κ chosen by the held-out pricing R².
+pub const KNS_PUBLISHED: &str = "KNS ridge, all factors (pricing R²)";
+
+/// The ridge on all factors with κ chosen by the held-out Sharpe ratio.
+pub const KNS_SHARPE: &str = "KNS ridge, all factors (held-out Sharpe)";
 
 /// Name of the configured method's unconstrained model portfolio, a row of
 /// its own when limits or costs are set (SPEC §10).
@@ -133,12 +139,15 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
     if !baselines {
         return out;
     }
-    if base.method == Method::Components {
+    if matches!(base.method, Method::Components | Method::Ensemble) {
+        // Each scaling on its own (for an ensemble or `auto`, each of its members).
         for sc in Scaling::ALL {
-            if sc != base.scaling {
-                let name =
-                    serde_json::to_value(sc).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default();
-                out.push(Strategy { name: format!("scaling {name}"), settings: with(base, |s| s.scaling = sc) });
+            if sc != base.scaling || base.method == Method::Ensemble {
+                let settings = with(base, |s| {
+                    s.method = Method::Components;
+                    s.scaling = sc;
+                });
+                out.push(Strategy { name: format!("scaling {sc}"), settings });
             }
         }
     }
@@ -150,7 +159,17 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
     };
     out.push(Strategy { name: "plug-in".into(), settings: baseline(Method::PlugIn) });
     out.push(Strategy { name: "plug-in Ledoit-Wolf".into(), settings: baseline(Method::PlugInLedoitWolf) });
-    out.push(Strategy { name: "KNS ridge, all factors".into(), settings: baseline(Method::KnsRidge) });
+    // KNS ridge on all factors as published: κ by the held-out pricing R² (Kozak, Nagel &
+    // Santosh 2020); beside it the same with the held-out Sharpe ratio as the criterion.
+    let kns = |criterion: CvCriterion| {
+        with(base, |s| {
+            s.method = Method::KnsRidge;
+            s.components = Choice::Auto;
+            s.cv_criterion = criterion;
+        })
+    };
+    out.push(Strategy { name: KNS_PUBLISHED.into(), settings: kns(CvCriterion::PricingR2) });
+    out.push(Strategy { name: KNS_SHARPE.into(), settings: kns(CvCriterion::Sharpe) });
     out.push(Strategy { name: "equal weight".into(), settings: baseline(Method::EqualWeight) });
     if has_market {
         out.push(Strategy { name: MARKET.into(), settings: None });
@@ -229,6 +248,10 @@ pub struct StrategyResult {
     /// The annualised volatility the strategy targets, when it has a target
     /// (compare with `metrics.volatility`, the realised one).
     pub target_volatility: Option<f64>,
+    /// Refits whose cross-validated κ sat at an end of its grid.
+    pub kappa_at_edge: usize,
+    /// Refits whose cross-validated K sat at the top of its grid (below N).
+    pub components_at_cap: usize,
     /// K chosen at each refit (0 for methods without components).
     pub chosen_k: Vec<usize>,
     /// Annualised κ chosen at each refit.
@@ -335,6 +358,9 @@ struct Held {
     top_share: f64,
     /// The model's annualised Sharpe ratio behind γ* (SPEC §10): held-out when cross-validated.
     sharpe_model: f64,
+    /// κ at an end of its grid, K at the top of its grid (the fit's warnings).
+    kappa_at_edge: bool,
+    k_at_cap: bool,
     /// Component loadings (configured strategy only) and betas.
     components: Vec<Vec<f64>>,
     betas: Vec<f64>,
@@ -375,6 +401,8 @@ fn held_weights(ws: &WeightSet) -> Held {
         } else {
             ws.diagnostics.in_sample_sharpe
         },
+        kappa_at_edge: ws.diagnostics.warnings.iter().any(|w| w.code == "kappa-at-grid-edge"),
+        k_at_cap: ws.diagnostics.warnings.iter().any(|w| w.code == "components-at-grid-edge"),
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -438,6 +466,8 @@ fn market_held(cols: usize) -> Held {
         kappa: 0.0,
         top_share: 0.0,
         sharpe_model: 0.0,
+        kappa_at_edge: false,
+        k_at_cap: false,
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -737,6 +767,8 @@ fn strategy_results(
             gross_median,
             gross_max: gross.last().copied().unwrap_or(f64::NAN),
             target_volatility,
+            kappa_at_edge: fits.iter().filter(|f| f.held[si].kappa_at_edge).count(),
+            components_at_cap: fits.iter().filter(|f| f.held[si].k_at_cap).count(),
             chosen_k: fits.iter().map(|f| f.held[si].k).collect(),
             chosen_kappa: fits.iter().map(|f| f.held[si].kappa).collect(),
             top_sharpe_share: fits.iter().map(|f| f.held[si].top_share).collect(),
@@ -766,6 +798,15 @@ fn sweep_points(oos: &OutOfSample<'_>, plan: &Schedule, fits: &[DateFits], p: f6
     sweep
 }
 
+/// Configurations the configured method chooses among or combines in every
+/// fit: each scaling for `auto` and the ensemble, else itself.
+fn candidates(configured: &ValidSettings) -> usize {
+    match (configured.method, configured.scaling) {
+        (Method::Ensemble, _) | (Method::Components, Scaling::Auto) => Scaling::ALL.len(),
+        _ => 1,
+    }
+}
+
 /// Luck or skill: JKM tests against every other strategy, and the
 /// probabilistic and deflated Sharpe ratios of the configured method.
 struct Inference {
@@ -775,7 +816,7 @@ struct Inference {
     trials: usize,
 }
 
-fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64) -> Inference {
+fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64, candidates: usize) -> Inference {
     let configured = &results[0].returns;
     let comparisons = results[1..]
         .iter()
@@ -788,7 +829,10 @@ fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64) -> Infere
     let mut trial_srs: Vec<f64> = results.iter().map(|r| r.metrics.sharpe / p.sqrt()).collect();
     trial_srs.extend(sweep.iter().map(|s| s.sharpe / p.sqrt()));
     trial_srs.retain(|v| v.is_finite());
-    let trials = trial_srs.len();
+    // The configured method's own candidates (every scaling for `auto` and the ensemble)
+    // are trials too (SPEC §11); those not already a row add to the count.
+    let rows_of_members = results.iter().filter(|r| r.name.starts_with("scaling ")).count();
+    let trials = trial_srs.len() + candidates.saturating_sub(1).saturating_sub(rows_of_members);
     let dsr = if trials >= 2 {
         stats::deflated_sharpe(sr, configured.len(), skew, kurt, stats::var(&trial_srs), trials)
     } else {
@@ -863,7 +907,7 @@ pub fn run(
     let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.periods.len()));
     let strategies = strategy_results(&oos, &plan, &fits, spec, p, lag);
     let sweep = sweep_points(&oos, &plan, &fits, p);
-    let Inference { comparisons, psr, dsr, trials } = inference(&strategies, &sweep, p);
+    let Inference { comparisons, psr, dsr, trials } = inference(&strategies, &sweep, p, candidates(configured));
     let alphas = alpha_tests(&oos, spec.benchmark_sets(), &strategies, p, lag);
     // The pricing test needs the same K components at every refit: the
     // configured fits when they have them, else the sweep's fixed-K fits.

@@ -154,8 +154,12 @@ fn parallel_backtest_is_identical_to_sequential() {
     };
     assert!(json(&one) == json(&three), "parallel and sequential backtests differ");
     assert!(one.pricing.is_some(), "the pricing test runs");
-    assert_eq!(one.strategies.len(), 10, "configured, 4 scalings, 4 baselines, market");
-    assert_eq!(one.sweep.len(), 15);
+    assert_eq!(
+        one.strategies.len(),
+        12,
+        "configured, 5 scalings, plug-in, Ledoit-Wolf, 2 KNS ridges, equal weight, market"
+    );
+    assert_eq!(one.sweep.len(), 18);
 }
 
 #[test]

@@ -265,7 +265,7 @@ fn backtest_writes_report_summary_and_returns() {
     assert_eq!(lines.count(), 40, "one row per out-of-sample period");
     let summary: Value = serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
     assert_eq!(summary["refits"], 20);
-    assert_eq!(summary["sweep"].as_array().unwrap().len(), 15);
+    assert_eq!(summary["sweep"].as_array().unwrap().len(), 18, "K = 1..3 for six scalings");
     let sets: Vec<&Value> = summary["alphas"].as_array().unwrap().iter().map(|a| &a["benchmarks"]).collect();
     assert!(sets.iter().any(|b| b.as_array().unwrap().len() == 2), "the user's benchmark set is tested");
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();

@@ -125,6 +125,21 @@ fn check_case(case: &Value) {
         .collect();
     assert_eq!(got, excluded, "{name}: excluded factors");
 
+    // scaling = auto and method = ensemble (SPEC §11): every scaling's best score, and the choice.
+    if let Some(rows) = e.get("scaling_scores") {
+        let rows = rows.as_array().unwrap();
+        assert_eq!(d.scaling_scores.len(), rows.len(), "{name}: one score per scaling");
+        for (got, row) in d.scaling_scores.iter().zip(rows) {
+            assert_eq!(got.scaling.to_string(), row[0].as_str().unwrap(), "{name}: scaling order");
+            close(&format!("{name} {} best score", got.scaling), got.best_score, num(&row[1]), 1.0);
+            assert_eq!(got.components as u64, row[2].as_u64().unwrap(), "{name} {}: K", got.scaling);
+            close(&format!("{name} {} kappa", got.scaling), got.kappa, num(&row[3]), 0.0);
+        }
+    }
+    match e.get("chosen_scaling") {
+        Some(c) => assert_eq!(d.chosen_scaling.map(|s| s.to_string()).as_deref(), c.as_str(), "{name}: chosen"),
+        None => assert_eq!(d.chosen_scaling, None, "{name}: no choice"),
+    }
     if e.get("K").is_none() {
         assert_eq!(d.num_components, 0, "{name}: baselines use no components");
         return;
@@ -178,6 +193,7 @@ fn scaling_named(s: &str) -> Scaling {
         "standardized" => Scaling::Standardized,
         "covariance" => Scaling::Covariance,
         "risk-premium" => Scaling::RiskPremium,
+        "sharpe-shrunk" => Scaling::SharpeShrunk,
         other => panic!("unknown scaling {other}"),
     }
 }

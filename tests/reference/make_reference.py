@@ -194,6 +194,8 @@ def basis(Rt, mu, Sigma, scaling, rp_gamma, k):
             s = mu / sd ** 2
         elif scaling == "sharpe-raw":
             s = mu / sd
+        elif scaling == "sharpe-shrunk":
+            s = shrunk_sharpe(mu, sd, T) / sd
         elif scaling == "standardized":
             s = 1.0 / sd
         else:
@@ -226,6 +228,22 @@ def basis(Rt, mu, Sigma, scaling, rp_gamma, k):
     else:
         SigmaF = np.diag(np.maximum(lam[:k], 0.0))
     return dict(s=s, lam=lam, trace=float(np.trace(C)), Q=Q, V=V, muF=muF, SigmaF=SigmaF, rank=rank, C=C)
+
+
+def shrunk_sharpe(mu, sd, T):
+    """James-Stein shrinkage of per-period Sharpe ratios toward their mean
+    (Efron & Morris 1975), sampling variance 1/T: B = (N-3)/(T sum (SR-mean)^2)
+    clipped to [0, 1], over the factors with variance (SPEC section 11)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sr = np.where(sd > 0, mu / sd, 0.0)
+    live = sd > 0
+    n = int(live.sum())
+    if n == 0:
+        return sr
+    mean = sr[live].mean()
+    spread = float(((sr[live] - mean) ** 2).sum())
+    B = min(max((n - 3) / (T * spread), 0.0), 1.0) if spread > 0 else 1.0
+    return mean + (1 - B) * (sr - mean)
 
 
 def soft(x, h):
@@ -270,6 +288,110 @@ def fold_bounds(T, folds):
     return [(int(b[0]), int(b[-1]) + 1) for b in idx]
 
 
+def components_fit(R, mk, Rt, mu, Sigma, s, scaling, diagonal, P, all_components=False):
+    """The components method under one scaling (SPEC sections 4-6): direction and details.
+    With all_components (the KNS ridge on all factors) K is every component the
+    window and its folds support and only kappa is cross-validated."""
+    T, N = R.shape
+    folds = s["folds"]
+    bounds = fold_bounds(T, folds)
+    train_min = T - max(e - b for b, e in bounds)
+    data_cap = min(N, train_min - 2)
+    fixed_k = None if s["components"] == "auto" else int(s["components"])
+    if all_components:
+        fixed_k = None
+        k_need = data_cap
+    else:
+        k_need = fixed_k if fixed_k is not None else min(s["max_components"], data_cap)
+    k_need = max(1, min(k_need, N))
+    full = basis(Rt, mu, Sigma, scaling, s["rp_gamma"], k_need)
+    fold_data = []
+    for (b0, b1) in bounds:
+        tr = np.r_[0:b0, b1:T]
+        mtr = mk[tr] if mk is not None else None
+        beta_f, Rt_f, mu_f, Sig_f = moments(R[tr], mtr)
+        bf = basis(Rt_f, mu_f, Sig_f, scaling, s["rp_gamma"], k_need)
+        R2 = R[b0:b1] - (np.outer(mk[b0:b1], beta_f) if mk is not None else 0.0)
+        fold_data.append((len(tr), bf, R2))
+    fold_rank = min(fd[1]["rank"] for fd in fold_data)
+    allowed = min(data_cap, full["rank"], fold_rank)
+    if all_components:
+        ks = [allowed]
+    elif fixed_k is not None:
+        assert fixed_k <= allowed
+        ks = [fixed_k]
+    else:
+        ks = list(range(1, min(s["max_components"], allowed) + 1))
+    kappas = kappa_grid(s)
+    scores = np.zeros((len(ks), len(kappas)))
+    for (t_train, bf, R2) in fold_data:
+        F2 = R2 @ bf["Q"]
+        mu2 = R2.mean(0)
+        X2 = R2 - mu2
+        S2 = X2.T @ X2 / (R2.shape[0] - 1)
+        if s["cv_criterion"] == "pricing-r2-gls":
+            ev = np.linalg.eigvalsh(S2)
+            assert R2.shape[0] > N and ev[-1] / ev[0] <= GLS_MAX_CONDITION
+        for a, k in enumerate(ks):
+            for c, kap in enumerate(kappas):
+                g = kns_gamma(np.trace(bf["SigmaF"][:k, :k]), kap, P, t_train)
+                bb = coefficients(bf, k, g, s["l1_penalty"], diagonal)
+                if s["cv_criterion"] == "sharpe":
+                    p = F2[:, :k] @ bb
+                    sd = p.std(ddof=1)
+                    sc = math.sqrt(P) * p.mean() / sd if sd > 0 else np.nan
+                else:
+                    # KNS held-out pricing R^2 with C2 = cov(R2, F2).
+                    C2 = S2 @ bf["Q"][:, :k]
+                    e = mu2 - C2 @ bb
+                    if s["cv_criterion"] == "pricing-r2":
+                        sc = 1 - (e @ e) / (mu2 @ mu2)
+                    else:
+                        sc = 1 - (e @ np.linalg.solve(S2, e)) / (mu2 @ np.linalg.solve(S2, mu2))
+                scores[a, c] += sc
+    scores /= folds
+    # Highest finite score; scores within 1e-10 (relative) of it are ties,
+    # which go to the smaller K, then the smaller kappa (SPEC section 6).
+    top = np.nanmax(scores)
+    floor = top - TIE_TOLERANCE * max(abs(top), np.finfo(float).tiny)
+    flat = scores.ravel()
+    i = int(np.flatnonzero(np.isfinite(flat) & (flat >= floor))[0])
+    best = (i // len(kappas), i % len(kappas), float(flat[i]))
+    K, kappa = ks[best[0]], float(kappas[best[1]])
+    # Held-out Sharpe at the chosen point.
+    shs = []
+    for (t_train, bf, R2) in fold_data:
+        g = kns_gamma(np.trace(bf["SigmaF"][:K, :K]), kappa, P, t_train)
+        bb = coefficients(bf, K, g, s["l1_penalty"], diagonal)
+        p = R2 @ bf["Q"][:, :K] @ bb
+        shs.append(math.sqrt(P) * p.mean() / p.std(ddof=1))
+    gamma = kns_gamma(np.trace(full["SigmaF"][:K, :K]), kappa, P, T)
+    bvec = coefficients(full, K, gamma, s["l1_penalty"], diagonal)
+    wdir = full["Q"][:, :K] @ bvec
+    return wdir, dict(K=K, kappa=kappa, gamma=gamma, b=bvec, scores=scores, ks=ks, kappas=list(kappas),
+               best_score=best[2], cv_sharpe=float(np.mean(shs)),
+               eigenvalues=full["lam"][:K], trace=full["trace"], SigmaF_diag=np.diag(full["SigmaF"])[:K],
+               muF=full["muF"][:K], scale=full["s"])
+
+
+SCALINGS = ["sharpe", "sharpe-raw", "standardized", "covariance", "risk-premium", "sharpe-shrunk"]
+
+
+def normalise(wdir, beta, Sigma, mu, s, method, mk):
+    """Weights and hedge scaled by the normalisation (SPEC section 7)."""
+    P = s["periods_per_year"]
+    var = wdir @ Sigma @ wdir
+    hedge = -(beta @ wdir)
+    norm = s["normalization"]
+    if norm == "target-volatility":
+        c = s["target_volatility"] / math.sqrt(P * var)
+    elif norm == "risk-aversion":
+        c = 1 / s["risk_aversion"] if method not in ("equal-weight", "ensemble") else (wdir @ mu) / (s["risk_aversion"] * var)
+    else:
+        c = 1 / (np.abs(wdir).sum() + abs(hedge))
+    return c * wdir, (c * hedge) if mk is not None else 0.0
+
+
 def fit(R_full, m_full, s):
     P = s["periods_per_year"]
     keep, excluded = usable_columns(R_full, m_full, s)
@@ -280,95 +402,37 @@ def fit(R_full, m_full, s):
     out = dict(keep=keep, excluded=excluded)
     diagonal = s["scaling"] != "risk-premium"
 
-    if s["method"] == "components":
-        folds = s["folds"]
-        bounds = fold_bounds(T, folds)
-        train_min = T - max(e - b for b, e in bounds)
-        data_cap = min(N, train_min - 2)
-        fixed_k = None if s["components"] == "auto" else int(s["components"])
-        k_need = fixed_k if fixed_k is not None else min(s["max_components"], data_cap)
-        k_need = max(1, min(k_need, N))
-        full = basis(Rt, mu, Sigma, s["scaling"], s["rp_gamma"], k_need)
-        fold_data = []
-        for (b0, b1) in bounds:
-            tr = np.r_[0:b0, b1:T]
-            mtr = mk[tr] if mk is not None else None
-            beta_f, Rt_f, mu_f, Sig_f = moments(R[tr], mtr)
-            bf = basis(Rt_f, mu_f, Sig_f, s["scaling"], s["rp_gamma"], k_need)
-            R2 = R[b0:b1] - (np.outer(mk[b0:b1], beta_f) if mk is not None else 0.0)
-            fold_data.append((len(tr), bf, R2))
-        fold_rank = min(fd[1]["rank"] for fd in fold_data)
-        allowed = min(data_cap, full["rank"], fold_rank)
-        if fixed_k is not None:
-            assert fixed_k <= allowed
-            ks = [fixed_k]
-        else:
-            ks = list(range(1, min(s["max_components"], allowed) + 1))
-        kappas = kappa_grid(s)
-        scores = np.zeros((len(ks), len(kappas)))
-        for (t_train, bf, R2) in fold_data:
-            F2 = R2 @ bf["Q"]
-            mu2 = R2.mean(0)
-            X2 = R2 - mu2
-            S2 = X2.T @ X2 / (R2.shape[0] - 1)
-            if s["cv_criterion"] == "pricing-r2-gls":
-                ev = np.linalg.eigvalsh(S2)
-                assert R2.shape[0] > N and ev[-1] / ev[0] <= GLS_MAX_CONDITION
-            for a, k in enumerate(ks):
-                for c, kap in enumerate(kappas):
-                    g = kns_gamma(np.trace(bf["SigmaF"][:k, :k]), kap, P, t_train)
-                    bb = coefficients(bf, k, g, s["l1_penalty"], diagonal)
-                    if s["cv_criterion"] == "sharpe":
-                        p = F2[:, :k] @ bb
-                        sd = p.std(ddof=1)
-                        sc = math.sqrt(P) * p.mean() / sd if sd > 0 else np.nan
-                    else:
-                        # KNS held-out pricing R^2 with C2 = cov(R2, F2).
-                        C2 = S2 @ bf["Q"][:, :k]
-                        e = mu2 - C2 @ bb
-                        if s["cv_criterion"] == "pricing-r2":
-                            sc = 1 - (e @ e) / (mu2 @ mu2)
-                        else:
-                            sc = 1 - (e @ np.linalg.solve(S2, e)) / (mu2 @ np.linalg.solve(S2, mu2))
-                    scores[a, c] += sc
-        scores /= folds
-        # Highest finite score; scores within 1e-10 (relative) of it are ties,
-        # which go to the smaller K, then the smaller kappa (SPEC section 6).
-        top = np.nanmax(scores)
+    if s["method"] == "components" and s["scaling"] == "auto":
+        # Every scaling cross-validated on its own; the best score wins, ties to the earlier (SPEC section 11).
+        members = [(sc,) + components_fit(R, mk, Rt, mu, Sigma, dict(s, held_out_check=True), sc, sc != "risk-premium", P)
+                   for sc in SCALINGS]
+        top = max(m[2]["best_score"] for m in members if math.isfinite(m[2]["best_score"]))
         floor = top - TIE_TOLERANCE * max(abs(top), np.finfo(float).tiny)
-        flat = scores.ravel()
-        i = int(np.flatnonzero(np.isfinite(flat) & (flat >= floor))[0])
-        best = (i // len(kappas), i % len(kappas), float(flat[i]))
-        K, kappa = ks[best[0]], float(kappas[best[1]])
-        # Held-out Sharpe at the chosen point.
-        shs = []
-        for (t_train, bf, R2) in fold_data:
-            g = kns_gamma(np.trace(bf["SigmaF"][:K, :K]), kappa, P, t_train)
-            bb = coefficients(bf, K, g, s["l1_penalty"], diagonal)
-            p = R2 @ bf["Q"][:, :K] @ bb
-            shs.append(math.sqrt(P) * p.mean() / p.std(ddof=1))
-        gamma = kns_gamma(np.trace(full["SigmaF"][:K, :K]), kappa, P, T)
-        bvec = coefficients(full, K, gamma, s["l1_penalty"], diagonal)
-        wdir = full["Q"][:, :K] @ bvec
-        out.update(K=K, kappa=kappa, gamma=gamma, b=bvec, scores=scores, ks=ks, kappas=list(kappas),
-                   best_score=best[2], cv_sharpe=float(np.mean(shs)),
-                   eigenvalues=full["lam"][:K], trace=full["trace"], SigmaF_diag=np.diag(full["SigmaF"])[:K],
-                   muF=full["muF"][:K], scale=full["s"])
+        chosen = next(m for m in members if math.isfinite(m[2]["best_score"]) and m[2]["best_score"] >= floor)
+        wdir = chosen[1]
+        out.update(chosen[2])
+        out.update(chosen_scaling=chosen[0],
+                   scaling_scores=[[m[0], m[2]["best_score"], m[2]["K"], m[2]["kappa"]] for m in members])
+    elif s["method"] == "ensemble":
+        # The equal-weight average of each scaling's normalised portfolio, normalised again.
+        members = [(sc,) + components_fit(R, mk, Rt, mu, Sigma, dict(s, held_out_check=True), sc, sc != "risk-premium", P)
+                   for sc in SCALINGS]
+        ws = [normalise(m[1], beta, Sigma, mu, s, "components", mk)[0] for m in members]
+        wdir = np.mean(ws, axis=0)
+        out.update(scaling_scores=[[m[0], m[2]["best_score"], m[2]["K"], m[2]["kappa"]] for m in members])
+    elif s["method"] == "components":
+        wdir, details = components_fit(R, mk, Rt, mu, Sigma, s, s["scaling"], diagonal, P)
+        out.update(details)
+    elif s["method"] == "kns-ridge":
+        # Kozak, Nagel & Santosh (2020): covariance PCA with every component, kappa cross-validated.
+        wdir, details = components_fit(R, mk, Rt, mu, Sigma, s, "covariance", True, P, all_components=True)
+        out.update(details)
     elif s["method"] == "plug-in":
         wdir = plug_in(Sigma, mu)
     else:
         wdir = np.full(N, 1.0 / N)
 
-    var = wdir @ Sigma @ wdir
-    hedge = -(beta @ wdir)
-    norm = s["normalization"]
-    if norm == "target-volatility":
-        c = s["target_volatility"] / math.sqrt(P * var)
-    elif norm == "risk-aversion":
-        c = 1 / s["risk_aversion"] if s["method"] != "equal-weight" else (wdir @ mu) / (s["risk_aversion"] * var)
-    else:
-        c = 1 / (np.abs(wdir).sum() + abs(hedge))
-    w = c * wdir
+    w, market_weight = normalise(wdir, beta, Sigma, mu, s, s["method"], mk)
     Sw = Sigma @ w
     wSw = w @ Sw
     gross = np.abs(w).sum()
@@ -381,7 +445,7 @@ def fit(R_full, m_full, s):
     rc[keep] = w * Sw / wSw
     out.update(
         weights=full_w,
-        market_weight=(c * hedge) if mk is not None else 0.0,
+        market_weight=market_weight,
         risk_contribution=rc,
         in_sample_sharpe=math.sqrt(P) * (w @ mu) / math.sqrt(wSw),
         ex_ante_volatility=math.sqrt(P * wSw),
@@ -422,6 +486,17 @@ CASES = [
     ("a_main", "no_demarket", {"demarket": False}),
     ("a_main", "plug_in", {"method": "plug-in"}),
     ("a_main", "equal_weight", {"method": "equal-weight"}),
+    ("a_main", "kns_ridge", {"method": "kns-ridge"}),
+    ("a_main", "kns_ridge_pricing_r2", {"method": "kns-ridge", "cv_criterion": "pricing-r2"}),
+    ("b_wide", "kns_ridge", {"method": "kns-ridge"}),
+    ("a_main", "sharpe_shrunk", {"scaling": "sharpe-shrunk"}),
+    ("a_main", "sharpe_shrunk_fixed", {"scaling": "sharpe-shrunk", "components": 4, "kappa": 0.6}),
+    ("a_main", "auto", {"scaling": "auto"}),
+    ("a_main", "auto_pricing_r2", {"scaling": "auto", "cv_criterion": "pricing-r2"}),
+    ("a_main", "ensemble", {"method": "ensemble"}),
+    ("a_main", "ensemble_risk_aversion", {"method": "ensemble", "normalization": "risk-aversion"}),
+    ("b_wide", "auto", {"scaling": "auto", "max_components": 10}),
+    ("c_missing", "ensemble", {"method": "ensemble"}),
     ("a_main", "weekly_small_grid", {"periods_per_year": 52, "kappa_grid_points": 7, "folds": 4}),
     ("b_wide", "defaults", {}),
     ("b_wide", "covariance_fixed", {"scaling": "covariance", "components": 5, "kappa": 1.0}),
