@@ -51,30 +51,7 @@ const NAMES: [&str; 36] = [
     "bramble_tangible",
 ];
 
-/// SplitMix64 (Steele, Lea & Flood 2014): small, fast, and fully reproducible.
-pub struct SplitMix(pub u64);
-
-impl SplitMix {
-    /// The next 64 random bits.
-    pub fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-
-    /// Uniform on (0, 1).
-    pub fn uniform(&mut self) -> f64 {
-        ((self.next_u64() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
-    }
-
-    /// Standard normal by Box–Muller.
-    pub fn normal(&mut self) -> f64 {
-        let (u1, u2) = (self.uniform(), self.uniform());
-        (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
-    }
-}
+pub use crate::estimator::bootstrap::SplitMix;
 
 /// Builds a seeded panel of `periods` × `factors` returns with the demo's
 /// latent structure (`factors` ≤ 36 uses the demo's names; more get numbered names).

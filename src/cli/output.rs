@@ -48,8 +48,12 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
     }
     let _ = writeln!(out);
     let width = r.weights.iter().map(|f| f.factor.chars().count()).max().unwrap_or(6).clamp(14, 40);
-    let _ =
-        writeln!(out, "{:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "factor", "Sharpe", "model", "weight", "risk share");
+    let boot = d.bootstrap.as_ref();
+    let _ = write!(out, "{:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "factor", "Sharpe", "model", "weight", "risk share");
+    if boot.is_some() {
+        let _ = write!(out, "  {:>9}  {:>9}  {:>9}  {:>5}", "5%", "median", "95%", "sign");
+    }
+    let _ = writeln!(out);
     let mut order: Vec<usize> = (0..r.weights.len()).collect();
     order.sort_by(|&a, &b| r.weights[b].weight.abs().total_cmp(&r.weights[a].weight.abs()));
     for &i in &order {
@@ -58,7 +62,7 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         if f.excluded {
             let _ = writeln!(out, "{name:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "-", "-", "excluded", "-");
         } else {
-            let _ = writeln!(
+            let _ = write!(
                 out,
                 "{name:<width$}  {:>8.2}  {:>9.4}  {:>9.4}  {:>9.1}%",
                 f.sharpe_annualized,
@@ -66,6 +70,17 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
                 f.weight,
                 100.0 * f.risk_contribution
             );
+            if let Some(iv) = boot.and_then(|b| b.factors.get(i)) {
+                let _ = write!(
+                    out,
+                    "  {:>9.4}  {:>9.4}  {:>9.4}  {:>4.0}%",
+                    iv.q05,
+                    iv.q50,
+                    iv.q95,
+                    100.0 * iv.sign_agreement
+                );
+            }
+            let _ = writeln!(out);
         }
     }
     let _ = writeln!(
@@ -133,6 +148,26 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         d.covariance_condition_number,
         d.turnover.map(|t| format!(" · turnover {t:.4}")).unwrap_or_default()
     );
+    if let Some(b) = boot {
+        let _ = writeln!(
+            out,
+            "bootstrap: {} stationary draws (mean block {} periods, seed {}{}), {} failed; {}; 5% / median / 95% of each weight, sign = share of draws with the fitted sign",
+            b.draws,
+            b.mean_block,
+            b.seed,
+            if b.cross_validated { ", cross-validated in every draw" } else { ", K and κ as fitted" },
+            b.failed,
+            if b.bagged {
+                "weights are the draws' mean, normalised again (bagged)"
+            } else {
+                "weights are the window's own fit"
+            }
+        );
+        if !b.components.is_empty() {
+            let ks: Vec<String> = b.components.iter().map(|c| format!("K={}: {}", c.components, c.draws)).collect();
+            let _ = writeln!(out, "bootstrap K chosen: {}", ks.join(", "));
+        }
+    }
     for e in &d.excluded {
         let _ = writeln!(out, "excluded {}: {}", e.factor, e.reason);
     }

@@ -1,6 +1,6 @@
 //! `Settings` messages: the whole settings, a patch of some of them, and the enums.
 
-use crate::estimator::Cap;
+use crate::estimator::{Aggregate, Cap};
 use crate::estimator::{
     Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, SettingsError, SettingsPatch,
 };
@@ -93,6 +93,11 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
         cost_bps,
         holding_periods,
         volatility_halflife,
+        bootstrap_draws,
+        bootstrap_block,
+        bootstrap_cv,
+        seed,
+        aggregate,
     } = p.clone();
     proto::Settings {
         scaling: enum_or_unset(scaling, scaling_to_proto),
@@ -143,6 +148,14 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
             Choice::Fixed(h) => HoldingPeriodsChoice::HoldingPeriods(h),
         }),
         volatility_halflife,
+        bootstrap_draws,
+        bootstrap_block,
+        bootstrap_cv,
+        seed,
+        aggregate: enum_or_unset(aggregate, |a| match a {
+            Aggregate::Point => proto::Aggregate::Point,
+            Aggregate::Bagged => proto::Aggregate::Bagged,
+        }),
     }
 }
 
@@ -220,6 +233,11 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         cost_bps,
         holding_periods_choice,
         volatility_halflife,
+        bootstrap_draws,
+        bootstrap_block,
+        bootstrap_cv,
+        seed,
+        aggregate,
     } = *p;
     Ok(SettingsPatch {
         method: enum_from("method", method, |m| match m {
@@ -317,6 +335,15 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
             Some(HoldingPeriodsChoice::HoldingPeriodsAuto(false)) => return Err(auto_false("holding_periods_auto")),
         },
         volatility_halflife,
+        bootstrap_draws,
+        bootstrap_block,
+        bootstrap_cv,
+        seed,
+        aggregate: enum_from("aggregate", aggregate, |a| match a {
+            proto::Aggregate::Unspecified => None,
+            proto::Aggregate::Point => Some(Aggregate::Point),
+            proto::Aggregate::Bagged => Some(Aggregate::Bagged),
+        })?,
     })
 }
 
@@ -349,6 +376,11 @@ mod tests {
             cost_bps: 25.0,
             holding_periods: Choice::Fixed(6.0),
             volatility_halflife: 36.0,
+            bootstrap_draws: 50,
+            bootstrap_block: 4.0,
+            bootstrap_cv: true,
+            seed: 42,
+            aggregate: Aggregate::Bagged,
             ..Settings::default()
         };
         let back = settings_from_proto(&settings_to_proto(&s), &Settings::default()).unwrap();

@@ -1,6 +1,7 @@
 //! `ComputeWeightsRequest` ⇄ the window, and a [`WeightSet`] → `ComputeWeightsResponse`.
 
 use super::settings::{criterion_to_proto, scaling_to_proto, settings_to_proto};
+use crate::estimator::bootstrap::{BootstrapReport, FactorInterval};
 use crate::estimator::{
     BindingConstraint, ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, Implementation,
     ReturnPanel, ScalingScore, Settings, Warning, WeightSet,
@@ -64,7 +65,7 @@ fn component_to_proto(c: &ComponentReport) -> proto::ComponentDiagnostics {
     }
 }
 
-fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnostics {
+fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings, names: &[String]) -> proto::Diagnostics {
     let Diagnostics {
         num_components,
         kappa,
@@ -87,6 +88,7 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnost
         implementation,
         chosen_scaling,
         scaling_scores,
+        bootstrap,
     } = d;
     proto::Diagnostics {
         num_components: *num_components as u32,
@@ -128,6 +130,34 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings) -> proto::Diagnost
                 components: *components as u32,
                 kappa: *kappa,
             })
+            .collect(),
+        bootstrap: bootstrap.as_ref().map(|b| bootstrap_to_proto(b, names)),
+    }
+}
+
+fn bootstrap_to_proto(b: &BootstrapReport, names: &[String]) -> proto::Bootstrap {
+    let BootstrapReport { draws, failed, mean_block, seed, cross_validated, bagged, factors, components } = b;
+    proto::Bootstrap {
+        draws: *draws as u32,
+        failed: *failed as u32,
+        mean_block: *mean_block,
+        seed: *seed,
+        cross_validated: *cross_validated,
+        bagged: *bagged,
+        factors: factors
+            .iter()
+            .zip(names)
+            .map(|(FactorInterval { q05, q50, q95, sign_agreement }, name)| proto::FactorInterval {
+                factor: name.clone(),
+                q05: *q05,
+                q50: *q50,
+                q95: *q95,
+                sign_agreement: *sign_agreement,
+            })
+            .collect(),
+        components: components
+            .iter()
+            .map(|&(k, n)| proto::ComponentCount { components: k as u32, draws: n as u32 })
             .collect(),
     }
 }
@@ -185,7 +215,11 @@ pub fn weight_set_to_proto(ws: &WeightSet, request_id: &str) -> proto::ComputeWe
         market_weight: *market_weight,
         model_market_weight: *model_market_weight,
         components: components.iter().map(component_to_proto).collect(),
-        diagnostics: Some(diagnostics_to_proto(diagnostics, settings)),
+        diagnostics: Some(diagnostics_to_proto(
+            diagnostics,
+            settings,
+            &factors.iter().map(|f| f.name.clone()).collect::<Vec<_>>(),
+        )),
         fingerprint: fingerprint.clone(),
         estimator_version: (*estimator_version).to_owned(),
         request_id: request_id.to_owned(),

@@ -9,6 +9,7 @@
 //! the result into a [`WeightSet`].
 
 pub mod basis;
+pub mod bootstrap;
 pub mod cv;
 mod dense;
 pub mod desk;
@@ -26,8 +27,8 @@ pub use desk::{BindingConstraint, Implementation, Limits};
 pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use moments::Moments;
 pub use settings::{
-    Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings, SettingsPatch,
-    ValidSettings,
+    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings,
+    SettingsPatch, ValidSettings,
 };
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
@@ -122,7 +123,57 @@ pub fn fit_with_phases(
 ) -> (Result<WeightSet, EstimateError>, PhaseTimes) {
     let mut phases = PhaseTimes::default();
     let r = fit_phased(panel, settings, options, &mut phases);
+    if settings.bootstrap_draws == 0 {
+        return (r, phases);
+    }
+    let mut mark = Instant::now();
+    let r = r.and_then(|point| with_bootstrap(panel, settings, point, options));
+    lap(&mut mark, &mut phases.solve);
     (r, phases)
+}
+
+/// The stationary bootstrap around a point fit (SPEC §11): intervals, and
+/// with `aggregate = bagged` the draws' mean weights, normalised again, in
+/// place of the point fit's (the point fit's choices stay in the diagnostics).
+fn with_bootstrap(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    point: WeightSet,
+    options: &FitOptions,
+) -> Result<WeightSet, EstimateError> {
+    let (report, mean) = bootstrap::run(panel, settings, &point, options)?;
+    if settings.aggregate == Aggregate::Point {
+        let mut ws = point;
+        ws.diagnostics.bootstrap = Some(report);
+        return Ok(ws);
+    }
+    let window = ReturnWindow::new(panel, settings)?;
+    let market = if settings.demarket { window.market.as_deref() } else { None };
+    let mom = Moments::compute(window.returns.as_ref(), market);
+    let direction: Vec<f64> = window.used.iter().map(|&c| mean[c]).collect();
+    // The mean of scaled portfolios is renormalised as a fixed direction (as the ensemble is).
+    let as_average = Settings { method: Method::Ensemble, ..settings.settings().clone() }.check()?;
+    let warnings = point.diagnostics.warnings.clone();
+    let mut ws = weights::assemble(panel, &window, &mom, &as_average, &direction, None, warnings, &options.stop)?;
+    let d = &point.diagnostics;
+    ws.diagnostics.num_components = d.num_components;
+    ws.diagnostics.kappa = d.kappa;
+    ws.diagnostics.gamma = d.gamma;
+    ws.diagnostics.components_cross_validated = d.components_cross_validated;
+    ws.diagnostics.kappa_cross_validated = d.kappa_cross_validated;
+    ws.diagnostics.cv_surface = d.cv_surface.clone();
+    ws.diagnostics.cv_best_score = d.cv_best_score;
+    ws.diagnostics.cv_sharpe = d.cv_sharpe;
+    ws.diagnostics.chosen_scaling = d.chosen_scaling;
+    ws.diagnostics.scaling_scores = d.scaling_scores.clone();
+    ws.diagnostics.bootstrap = Some(report);
+    for (f, p) in ws.factors.iter_mut().zip(&point.factors) {
+        f.scale = p.scale;
+    }
+    ws.components = point.components;
+    ws.fingerprint = weights::fingerprint(panel, settings.settings());
+    ws.settings = settings.settings().clone();
+    Ok(ws)
 }
 
 /// Adds the time since `*mark` to `slot` and moves the mark.

@@ -99,6 +99,17 @@ pub enum Normalization {
     GrossExposure,
 }
 
+/// What the weights are when the bootstrap runs (SPEC §11).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Aggregate {
+    /// The fit on the window itself; the draws give intervals only.
+    #[default]
+    Point,
+    /// The mean of the draws' weights, normalised again (bagging; Breiman 1996).
+    Bagged,
+}
+
 /// Rule for missing (NaN) returns (SPEC §1).
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
@@ -123,7 +134,7 @@ macro_rules! display_as_serde_name {
         }
     )+};
 }
-display_as_serde_name!(Method, Scaling, CvCriterion, Normalization, MissingPolicy);
+display_as_serde_name!(Method, Scaling, CvCriterion, Normalization, MissingPolicy, Aggregate);
 
 /// A value that is either chosen by cross-validation or fixed by the user.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
@@ -317,6 +328,8 @@ macro_rules! settings_table {
 
 /// Largest fixed number of components accepted.
 pub const MAX_COMPONENTS_LIMIT: u32 = 1000;
+/// Most bootstrap draws accepted.
+pub const MAX_BOOTSTRAP_DRAWS: u32 = 10_000;
 /// Largest number of κ grid points accepted.
 pub const MAX_KAPPA_POINTS: u32 = 500;
 
@@ -464,6 +477,31 @@ settings_table! {
     range "0 or [1, 1e6]" if |v| *v == 0.0 || (v.is_finite() && (1.0..=1e6).contains(v));
     meaning "`target-volatility` scales with an exponentially weighted covariance of this half-life (periods); \
              0 = the sample covariance";
+
+    /// Stationary-bootstrap draws of the window (SPEC §11); 0 = off.
+    bootstrap_draws: u32 = 0;
+    range "0..=10000" if |v| *v <= MAX_BOOTSTRAP_DRAWS;
+    meaning "stationary-bootstrap draws of whole rows, each refitted: weight intervals and sign agreement; 0 = off";
+
+    /// Mean block length of the stationary bootstrap, periods; 0 = ⌈T^(1/3)⌉.
+    bootstrap_block: f64 = 0.0;
+    range "0 or [1, 1e6]" if |v| *v == 0.0 || (v.is_finite() && (1.0..=1e6).contains(v));
+    meaning "mean block length of the bootstrap in periods; 0 = ⌈T^(1/3)⌉";
+
+    /// Rerun the cross-validation in every draw instead of keeping the chosen K and κ.
+    bootstrap_cv: bool = false;
+    range "bool" if |_v| true;
+    meaning "rerun the cross-validation in every draw (and report the distribution of K) instead of keeping K and κ";
+
+    /// Seed of the bootstrap's random numbers.
+    seed: u64 = 0;
+    range "0..=9223372036854775807" if |v| *v <= i64::MAX as u64;
+    meaning "seed of the bootstrap; equal seeds give equal draws whatever the thread count";
+
+    /// The weights returned when the bootstrap runs.
+    aggregate: Aggregate = Aggregate::Point;
+    range "`point`, `bagged`" if |_v| true;
+    meaning "`point` = the window's own fit (the draws give intervals); `bagged` = the mean of the draws, normalised again";
 }
 
 impl Settings {

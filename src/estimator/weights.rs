@@ -124,6 +124,8 @@ pub struct Diagnostics {
     pub chosen_scaling: Option<Scaling>,
     /// Each scaling's best score, K and κ, with `scaling = auto` or `method = ensemble`.
     pub scaling_scores: Vec<ScalingScore>,
+    /// The stationary bootstrap (SPEC §11), when `bootstrap_draws` > 0.
+    pub bootstrap: Option<super::bootstrap::BootstrapReport>,
 }
 
 /// One scaling's best cross-validation score (SPEC §11).
@@ -281,6 +283,7 @@ pub(crate) fn assemble(
         implementation,
         chosen_scaling: None,
         scaling_scores: Vec::new(),
+        bootstrap: None,
     };
     let components = match model {
         Some(m) => model_reports(m, window, settings, p, &mut diagnostics),

@@ -19,8 +19,8 @@ use thiserror::Error;
 
 use crate::estimator::desk::{DeskWindow, Holdings, Limits};
 use crate::estimator::{
-    self, Cap, Choice, CvCriterion, EstimateError, FitOptions, Method, Normalization, ReturnPanel, Scaling, Settings,
-    Stop, ValidSettings, WeightSet,
+    self, Aggregate, Cap, Choice, CvCriterion, EstimateError, FitOptions, Method, Normalization, ReturnPanel, Scaling,
+    Settings, Stop, ValidSettings, WeightSet,
 };
 
 /// Name of the market as a benchmark and as a strategy.
@@ -44,6 +44,10 @@ pub fn model_settings(s: &ValidSettings) -> ValidSettings {
     m.max_market_weight = Cap::Off;
     m.max_turnover = Cap::Off;
     m.cost_bps = 0.0;
+    // Intervals at every refit serve no one; bagging changes the weights and stays.
+    if m.aggregate == Aggregate::Point {
+        m.bootstrap_draws = 0;
+    }
     m.check().unwrap_or_else(|_| s.clone())
 }
 

@@ -270,7 +270,13 @@ fn estimate(
     let sweep_scalings =
         if sweep_max_k > 0 && settings.method == Method::Components { Scaling::ALL.len() as u64 } else { 0 };
     let k_sweep = sweep_max_k as u64;
-    let fits = refits.saturating_mul(strategies + sweep_scalings * k_sweep);
+    // Bagging refits every strategy once per bootstrap draw as well.
+    let per_strategy = if settings.aggregate == crate::estimator::Aggregate::Bagged {
+        1 + u64::from(settings.bootstrap_draws)
+    } else {
+        1
+    };
+    let fits = refits.saturating_mul(strategies.saturating_mul(per_strategy) + sweep_scalings * k_sweep);
     // Expanding windows grow from L to the whole history: count the mean length.
     let mean_window = if s.expanding { (window + periods - 1) / 2 } else { window };
     let cells = fits.saturating_mul(mean_window.saturating_mul(n));

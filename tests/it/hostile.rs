@@ -9,7 +9,9 @@ use std::time::{Duration, Instant};
 use crate::common::Server;
 use keelson::convert::{request_from_panel, settings_to_proto};
 use keelson::demo::{synthetic_panel, to_csv};
-use keelson::estimator::{Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings};
+use keelson::estimator::{
+    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings,
+};
 use keelson::proto::{self, weights_service_client::WeightsServiceClient};
 use tonic::Code;
 use tonic::transport::Channel;
@@ -159,6 +161,11 @@ fn server_defaults() -> Settings {
         cost_bps: 1.0,
         holding_periods: Choice::Fixed(26.0),
         volatility_halflife: 26.0,
+        bootstrap_draws: 3,
+        bootstrap_block: 2.0,
+        bootstrap_cv: true,
+        seed: 9,
+        aggregate: Aggregate::Bagged,
     }
 }
 
