@@ -14,13 +14,13 @@ use std::time::Duration;
 use criterion::{BenchmarkId, Criterion, criterion_group, criterion_main};
 use faer::Mat;
 use keelson::demo::synthetic_panel;
-use keelson::estimator::{self, Choice, EigenPath, FitOptions, Scaling, Settings, ValidSettings};
+use keelson::estimator::{self, Choice, EigenPath, FitOptions, Method, Scaling, Settings, ValidSettings};
 use keelson::evaluate::{self, BacktestSpec};
 
 /// The three kinds of fit: `fixed` (K = 5, κ = 1, with the held-out check
 /// on the folds), `bare` (the same without the folds) and `cv` (defaults).
 fn settings(scaling: Scaling, kind: &str) -> ValidSettings {
-    let mut s = Settings { scaling, ..Settings::default() };
+    let mut s = Settings { method: Method::Components, scaling, ..Settings::default() };
     if kind != "cv" {
         s.components = Choice::Fixed(5);
         s.kappa = Choice::Fixed(1.0);
@@ -84,7 +84,7 @@ fn backtest(c: &mut Criterion) {
     let mut group = c.benchmark_group("backtest 50x540 rolling 120 monthly CV");
     group.sample_size(10).measurement_time(Duration::from_secs(10));
     let panel = synthetic_panel(540, 540, 50);
-    let s = Settings::default().check().expect("the defaults are valid");
+    let s = Settings { method: Method::Components, ..Settings::default() }.check().expect("valid");
     let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
     let spec = BacktestSpec { baselines: false, sweep_max_k: Some(0), threads, ..BacktestSpec::default() }
         .check(&panel, &s)

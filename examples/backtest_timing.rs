@@ -19,7 +19,8 @@ fn main() -> anyhow::Result<()> {
     let t = args.get(1).copied().unwrap_or(540);
     let threads = args.get(2).copied().unwrap_or(std::thread::available_parallelism().map_or(1, |c| c.get()));
     let panel = synthetic_panel(540, t, n);
-    let settings = Settings::default().check().expect("the defaults are valid");
+    let settings =
+        Settings { method: keelson::estimator::Method::Components, ..Settings::default() }.check().expect("valid");
 
     let window = synthetic_panel(540, 120, n);
     let reps = 50;

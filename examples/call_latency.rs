@@ -42,7 +42,7 @@ async fn main() -> anyhow::Result<()> {
     let t = args.get(2).copied().unwrap_or(120);
     let panel = synthetic_panel(2024, t, n);
 
-    let settings = Settings::default().check()?;
+    let settings = Settings { method: keelson::estimator::Method::Components, ..Settings::default() }.check()?;
     let mut local = Vec::with_capacity(calls);
     for _ in 0..calls {
         let s = Instant::now();
@@ -52,7 +52,11 @@ async fn main() -> anyhow::Result<()> {
 
     let server = LoopbackServer::start(|_| {}).await?;
     let mut client = Target::plaintext(server.url()).weights_client().await?;
-    let request = request_from_panel(&panel, proto::Settings::default(), "latency");
+    let request = request_from_panel(
+        &panel,
+        proto::Settings { method: proto::Method::Components.into(), ..proto::Settings::default() },
+        "latency",
+    );
     for _ in 0..20 {
         client.compute_weights(request.clone()).await?;
     }

@@ -12,7 +12,7 @@
 use std::time::Instant;
 
 use faer::Mat;
-use keelson::estimator::{self, Choice, Settings};
+use keelson::estimator::{self, Choice, Method, Settings};
 
 fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(f64::total_cmp);
@@ -39,15 +39,22 @@ fn main() -> anyhow::Result<()> {
     let eig = time(reps.max(51), || {
         std::hint::black_box(a.self_adjoint_eigen(faer::Side::Lower).expect("converges"));
     });
-    let fixed = Settings { components: Choice::Fixed(5), kappa: Choice::Fixed(1.0), ..Settings::default() }.check()?;
+    let fixed = Settings {
+        method: Method::Components,
+        components: Choice::Fixed(5),
+        kappa: Choice::Fixed(1.0),
+        ..Settings::default()
+    }
+    .check()?;
     let bare = Settings {
+        method: Method::Components,
         components: Choice::Fixed(5),
         kappa: Choice::Fixed(1.0),
         held_out_check: false,
         ..Settings::default()
     }
     .check()?;
-    let cv = Settings::default().check()?;
+    let cv = Settings { method: Method::Components, ..Settings::default() }.check()?;
     for path in args {
         let text = std::fs::read_to_string(&path)?;
         let panel = keelson::panel_csv::parse_returns(&text, &path, Some("MKT"))?.panel;

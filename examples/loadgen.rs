@@ -216,7 +216,11 @@ async fn main() -> anyhow::Result<()> {
     }
     let channel = channel.context("server did not come up within 10 s")?;
     let panel = synthetic_panel(2024, a.periods, a.factors);
-    let req = request_from_panel(&panel, proto::Settings::default(), "load");
+    let req = request_from_panel(
+        &panel,
+        proto::Settings { method: proto::Method::Components.into(), ..proto::Settings::default() },
+        "load",
+    );
     let pid = child.as_ref().map(std::process::Child::id);
     let mem0 = pid.and_then(memory_kib);
     println!("request: {} factors × {} periods, default settings (cross-validated)", a.factors, a.periods);

@@ -8,7 +8,7 @@
 use std::time::Instant;
 
 use keelson::demo::synthetic_panel;
-use keelson::estimator::{self, Choice, Settings};
+use keelson::estimator::{self, Choice, Method, Settings};
 use plotters::prelude::*;
 
 fn median_secs(reps: usize, mut f: impl FnMut()) -> f64 {
@@ -29,8 +29,14 @@ fn main() -> anyhow::Result<()> {
     let out = args.next().unwrap_or_else(|| "docs/fit-scaling.svg".into());
     let reps: usize = args.next().unwrap_or_else(|| "7".into()).parse()?;
     let ns = [25usize, 50, 100, 250, 1000, 2000];
-    let fixed = Settings { components: Choice::Fixed(5), kappa: Choice::Fixed(1.0), ..Settings::default() }.check()?;
-    let cv = Settings::default().check()?;
+    let fixed = Settings {
+        method: Method::Components,
+        components: Choice::Fixed(5),
+        kappa: Choice::Fixed(1.0),
+        ..Settings::default()
+    }
+    .check()?;
+    let cv = Settings { method: Method::Components, ..Settings::default() }.check()?;
     let mut series: Vec<(String, Vec<(f64, f64)>)> = Vec::new();
     println!("{:>6} {:>6} {:>12} {:>12}", "N", "T", "fixed ms", "cv ms");
     for t in [120usize, 600] {

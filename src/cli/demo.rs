@@ -29,13 +29,23 @@ pub(crate) async fn run(a: DemoArgs) -> anyhow::Result<ExitCode> {
         let sent = settings_to_proto_only(&settings, &keys);
         let req = request_from_panel(&panel, sent, "demo");
         let resp = c.compute_weights(req).await.map_err(|s| anyhow::anyhow!(describe_status(&s)))?.into_inner();
-        // Plain PCA on the same window, for the reading below.
-        let plain = if checked.scaling != Scaling::Covariance && checked.method == Method::Components {
-            let mut s = sent;
-            s.scaling = proto::Scaling::Covariance.into();
-            c.compute_weights(request_from_panel(&panel, s, "demo-plain-pca")).await.ok().map(|r| r.into_inner())
-        } else {
-            None
+        // A contrast on the same window, for the reading below: the Sharpe-scaled leading
+        // components beside the ridge on all components, or plain PCA beside another scaling.
+        let contrast = match checked.method {
+            Method::KnsRidge => Some((proto::Method::Components, proto::Scaling::Sharpe)),
+            Method::Components if checked.scaling != Scaling::Covariance => {
+                Some((proto::Method::Components, proto::Scaling::Covariance))
+            }
+            _ => None,
+        };
+        let plain = match contrast {
+            Some((method, scaling)) => {
+                let mut s = sent;
+                s.method = method.into();
+                s.scaling = scaling.into();
+                c.compute_weights(request_from_panel(&panel, s, "demo-contrast")).await.ok().map(|r| r.into_inner())
+            }
+            None => None,
         };
         Ok::<_, anyhow::Error>((resp, plain))
     };
@@ -66,9 +76,11 @@ const DEMO_INTRO: &str = "\
 Demo: the Tessaly Exchange, an invented market. 36 long–short factors over
 120 months load on four loud sector swings that earn nothing and on two quiet
 styles that carry the premium. Keelson removes each factor's market exposure,
-scales every factor by its Sharpe ratio before extracting principal components,
-and shrinks the mean–variance portfolio of the leading components, choosing
-the number of components and the shrinkage by time-series cross-validation.
+takes the principal components of the factors, and shrinks the mean–variance
+portfolio of the components toward zero, more for the quiet ones, with the
+shrinkage chosen by time-series cross-validation (the default `kns-ridge`;
+`--set method=components` keeps only the leading components of a scaling,
+Sharpe-scaled by default, and chooses their number too).
 ";
 
 /// The usual cautions for investment analysis.
@@ -88,7 +100,7 @@ fn explanation(ws: &ComputeWeightsResponse, plain: Option<&ComputeWeightsRespons
     top.sort_by(|a, b| b.weight.abs().total_cmp(&a.weight.abs()));
     let names: Vec<&str> = top.iter().take(3).map(|f| f.factor.as_str()).collect();
     let mut out = format!(
-        "Reading: cross-validation kept {} component(s); the largest positions are in {}. \
+        "Reading: the portfolio uses {} component(s); the largest positions are in {}. \
          The top 30% of factors by Sharpe ratio hold {:.0}% of the gross weight. The held-out \
          Sharpe ratio estimated by cross-validation is {:.2} against {:.2} in the window: the gap \
          is the optimism of fitting and choosing on the same data.",
@@ -99,8 +111,12 @@ fn explanation(ws: &ComputeWeightsResponse, plain: Option<&ComputeWeightsRespons
         d.in_sample_sharpe
     );
     if let Some(pd) = plain.and_then(|p| p.diagnostics.as_ref()) {
+        let what = match pd.effective_settings.map(|s| s.scaling()) {
+            Some(proto::Scaling::Covariance) => "plain PCA (scaling covariance)",
+            _ => "the Sharpe-scaled leading components (method components)",
+        };
         out.push_str(&format!(
-            " For comparison, plain PCA (scaling covariance) on the same window keeps {} component(s), \
+            " For comparison, {what} on the same window keeps {} component(s), \
              puts {:.0}% of gross weight in the top-Sharpe factors and has a cross-validated Sharpe \
              ratio of {:.2}. Which method wins out of sample is a question for a backtest, not for \
              one window.",

@@ -42,6 +42,20 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
                 d.gamma
             );
         }
+        proto::Method::KnsRidge => {
+            let _ = writeln!(
+                out,
+                "method kns-ridge · every component of the covariance (K = {}) · κ = {:.4} annualised ({}) · γ = {:.3e}",
+                d.num_components,
+                d.kappa,
+                how(d.kappa_cross_validated),
+                d.gamma
+            );
+        }
+        proto::Method::Ensemble => {
+            let _ =
+                writeln!(out, "method ensemble · the average of every scaling's cross-validated component portfolio");
+        }
         m => {
             let _ = writeln!(out, "method {} (baseline)", setting_word(m.as_str_name(), "METHOD_"));
         }

@@ -581,7 +581,12 @@ mod tests {
     #[test]
     fn sweep_fits_equal_fixed_fits_and_share_one_basis() {
         let panel = crate::demo::synthetic_panel(9, 120, 12);
-        let base = Settings { kappa: Choice::Fixed(0.8), held_out_check: false, ..Settings::default() };
+        let base = Settings {
+            method: Method::Components,
+            kappa: Choice::Fixed(0.8),
+            held_out_check: false,
+            ..Settings::default()
+        };
         let s = base.clone().check().unwrap();
         let ks = [1, 2, 3, 5];
         let sweep = fit_component_sweep(&panel, &s, &ks, &FitOptions::default()).unwrap();

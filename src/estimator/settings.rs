@@ -16,8 +16,7 @@ use super::error::SettingsError;
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Method {
-    /// Shrunk mean–variance portfolio of the leading components (KNS).
-    #[default]
+    /// Shrunk mean–variance portfolio of the leading components of the chosen scaling.
     Components,
     /// Unshrunk Σ⁻¹μ on all usable factors (a baseline).
     PlugIn,
@@ -26,7 +25,9 @@ pub enum Method {
     Ensemble,
     /// Σ_LW⁻¹μ with the Ledoit & Wolf (2004) shrunk covariance (a baseline).
     PlugInLedoitWolf,
-    /// KNS ridge on all factors: covariance PCA with every component, κ as set (a baseline).
+    /// KNS ridge on all factors: covariance PCA with every component, κ
+    /// cross-validated by `cv_criterion` (the default, chosen by evidence: SPEC §11, README).
+    #[default]
     KnsRidge,
     /// Equal weight over the demarketed factors (DeMiguel, Garlappi & Uppal 2009).
     EqualWeight,
@@ -339,9 +340,11 @@ fn within(v: f64, lo_open: f64, hi: f64) -> bool {
 
 settings_table! {
     /// Portfolio rule.
-    method: Method = Method::Components;
-    range "`components`, `ensemble`, `kns-ridge`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight`" if |_v| true;
-    meaning "the shrunk component portfolio, the equal-weight ensemble of every scaling's, or a baseline";
+    method: Method = Method::KnsRidge;
+    range "`kns-ridge`, `components`, `ensemble`, `plug-in`, `plug-in-ledoit-wolf`, `equal-weight`" if |_v| true;
+    meaning "`kns-ridge` = the ridge on every principal component of the covariance (κ cross-validated); \
+             `components` = the leading components of the chosen scaling (K and κ cross-validated); \
+             `ensemble` = the average of every scaling's; or a baseline";
 
     /// Factor scaling before PCA.
     scaling: Scaling = Scaling::Sharpe;
@@ -566,6 +569,15 @@ impl Settings {
                 field: "kappa_grid_max",
                 value: self.kappa_grid_max.to_string(),
                 range: "(`kappa_grid_min`, 100]",
+            });
+        }
+        if self.method == Method::KnsRidge
+            && let Choice::Fixed(k) = self.components
+        {
+            return Err(SettingsError::InvalidValue {
+                field: "components",
+                value: k.to_string(),
+                reason: "method `kns-ridge` uses every component; a fixed K needs `method = components`".into(),
             });
         }
         Ok(ValidSettings { inner: self })

@@ -692,7 +692,12 @@ mod tests {
 
     fn fitted(edit: impl FnOnce(&mut Settings)) -> super::WeightSet {
         let panel = crate::demo::synthetic_panel(5, 120, 10);
-        let mut s = Settings { components: Choice::Fixed(3), kappa: Choice::Fixed(0.5), ..Settings::default() };
+        let mut s = Settings {
+            method: crate::estimator::Method::Components,
+            components: Choice::Fixed(3),
+            kappa: Choice::Fixed(0.5),
+            ..Settings::default()
+        };
         edit(&mut s);
         fit(&panel, &s.check().unwrap()).unwrap()
     }

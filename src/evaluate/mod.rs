@@ -143,10 +143,10 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
     if !baselines {
         return out;
     }
-    if matches!(base.method, Method::Components | Method::Ensemble) {
-        // Each scaling on its own (for an ensemble or `auto`, each of its members).
+    if matches!(base.method, Method::Components | Method::Ensemble | Method::KnsRidge) {
+        // Each scaling's components method (for an ensemble or `auto`, each of its members).
         for sc in Scaling::ALL {
-            if sc != base.scaling || base.method == Method::Ensemble {
+            if sc != base.scaling || base.method != Method::Components {
                 let settings = with(base, |s| {
                     s.method = Method::Components;
                     s.scaling = sc;
@@ -172,8 +172,13 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
             s.cv_criterion = criterion;
         })
     };
-    out.push(Strategy { name: KNS_PUBLISHED.into(), settings: kns(CvCriterion::PricingR2) });
-    out.push(Strategy { name: KNS_SHARPE.into(), settings: kns(CvCriterion::Sharpe) });
+    for (name, criterion) in [(KNS_PUBLISHED, CvCriterion::PricingR2), (KNS_SHARPE, CvCriterion::Sharpe)] {
+        let settings = kns(criterion);
+        // Not twice: the configured method may be one of them.
+        if settings.as_ref() != Some(configured) {
+            out.push(Strategy { name: name.into(), settings });
+        }
+    }
     out.push(Strategy { name: "equal weight".into(), settings: baseline(Method::EqualWeight) });
     if has_market {
         out.push(Strategy { name: MARKET.into(), settings: None });
@@ -436,11 +441,8 @@ impl Schedule {
         let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
         // Bounded by check(): at most the window's rank and settings.max_components.
         let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k()).collect();
-        let sweep_scalings = if spec.sweep_max_k() > 0 && configured.method == Method::Components {
-            Scaling::ALL.to_vec()
-        } else {
-            Vec::new()
-        };
+        let sweep_scalings =
+            if spec.sweep_max_k() > 0 && has_sweep(configured) { Scaling::ALL.to_vec() } else { Vec::new() };
         let dates = (spec.window..panel.rows).step_by(spec.step).collect();
         Schedule { dates, strategies, sweep_ks, sweep_scalings }
     }
@@ -802,6 +804,12 @@ fn sweep_points(oos: &OutOfSample<'_>, plan: &Schedule, fits: &[DateFits], p: f6
     sweep
 }
 
+/// Whether the backtest sweeps the out-of-sample Sharpe ratio against K:
+/// for every method built on principal components.
+pub(crate) fn has_sweep(configured: &ValidSettings) -> bool {
+    matches!(configured.method, Method::Components | Method::KnsRidge | Method::Ensemble)
+}
+
 /// Configurations the configured method chooses among or combines in every
 /// fit: each scaling for `auto` and the ensemble, else itself.
 fn candidates(configured: &ValidSettings) -> usize {
@@ -990,7 +998,9 @@ fn pricing_test(
     lag: usize,
     configured: &ValidSettings,
 ) -> Option<PricingTest> {
-    if !matches!(configured.method, Method::Components | Method::KnsRidge) {
+    // A K-component model is a statement only where K is chosen: the ridge on
+    // every component spans the factors themselves.
+    if configured.method != Method::Components {
         return None;
     }
     let mut counts = std::collections::BTreeMap::new();

@@ -8,7 +8,7 @@
 use serde::Serialize;
 
 use super::{BacktestError, MARKET, strategies};
-use crate::estimator::{InputError, Method, ReturnPanel, Scaling, ValidSettings, window};
+use crate::estimator::{InputError, ReturnPanel, Scaling, ValidSettings, window};
 
 /// Largest K of the sweep when the caller does not set one.
 pub const DEFAULT_SWEEP_MAX_K: usize = 10;
@@ -267,8 +267,7 @@ fn estimate(
     let out_of_sample = periods - window;
     let refits = out_of_sample.div_ceil(s.step as u64);
     let strategies = strategies(settings, panel.market.is_some(), s.baselines).len() as u64;
-    let sweep_scalings =
-        if sweep_max_k > 0 && settings.method == Method::Components { Scaling::ALL.len() as u64 } else { 0 };
+    let sweep_scalings = if sweep_max_k > 0 && super::has_sweep(settings) { Scaling::ALL.len() as u64 } else { 0 };
     let k_sweep = sweep_max_k as u64;
     // Bagging refits every strategy once per bootstrap draw as well.
     let per_strategy = if settings.aggregate == crate::estimator::Aggregate::Bagged {

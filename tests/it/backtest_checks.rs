@@ -53,7 +53,7 @@ fn real_data_backtest_matches_independent_numpy_backtest() {
     assert_eq!((panel.rows, panel.cols), (819, 33));
     let mut worst = 0.0f64;
     for case in exp["real_data"]["backtests"].as_array().unwrap() {
-        let mut s = Settings::default();
+        let mut s = Settings { method: keelson::estimator::Method::Components, ..Settings::default() };
         for (k, v) in case["settings"].as_object().unwrap() {
             s.set(k, &v.to_string()).unwrap();
         }
@@ -144,7 +144,7 @@ fn inference_matches_statsmodels_linearmodels_scipy_and_formulas() {
 #[test]
 fn parallel_backtest_is_identical_to_sequential() {
     let panel = synthetic_panel(8, 150, 14);
-    let s = Settings::default().check().unwrap();
+    let s = Settings { method: keelson::estimator::Method::Components, ..Settings::default() }.check().unwrap();
     let spec = BacktestSpec { window: 60, step: 2, sweep_max_k: Some(3), ..BacktestSpec::default() };
     let with_threads = |threads| BacktestSpec { threads, ..spec.clone() }.check(&panel, &s).unwrap();
     let one = evaluate::run(&panel, &s, &with_threads(1), &no_progress, &Stop::never()).unwrap();

@@ -241,7 +241,7 @@ fn corpus() -> Vec<Case> {
         },
         c(
             "components above the window",
-            &["components=500"],
+            &["method=components", "components=500"],
             nothing,
             Error(INVALID, "TOO_MANY_COMPONENTS", Some("settings.components")),
         ),

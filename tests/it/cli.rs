@@ -91,7 +91,7 @@ fn fit_prints_a_table_and_proto_json() {
 #[test]
 fn settings_from_flags_and_files_apply() {
     let p = file("set.csv", &window(120, 10));
-    let cfg = file("cfg.toml", "scaling = \"covariance\"\ncomponents = 3\n");
+    let cfg = file("cfg.toml", "method = \"components\"\nscaling = \"covariance\"\ncomponents = 3\n");
     let o = keelson(&[
         "fit",
         "--returns",
@@ -172,7 +172,12 @@ fn bad_data_gives_clear_errors_with_exit_code_1() {
     let one_na = edit_cell(&good, 9, 7, "NA");
     assert_data_error("reject.csv", &one_na, &["--set", "missing_policy=reject"], &["line 9, column 7", "missing"]);
     assert_data_error("empty.csv", "", &[], &["empty"]);
-    assert_data_error("toomanyk.csv", &good, &["--set", "components=40"], &["components", "40 components requested"]);
+    assert_data_error(
+        "toomanyk.csv",
+        &good,
+        &["--set", "method=components", "--set", "components=40"],
+        &["components", "40 components requested"],
+    );
     let nofile = keelson(&["fit", "--returns", "/nonexistent/keelson.csv"]);
     assert_eq!(nofile.status.code(), Some(1));
     assert!(stderr(&nofile).contains("cannot read /nonexistent/keelson.csv"));

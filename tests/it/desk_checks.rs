@@ -138,7 +138,12 @@ fn caps_only_solution_is_a_kkt_point() {
 }
 
 fn demo_settings(edit: impl FnOnce(&mut Settings)) -> Settings {
-    let mut s = Settings { components: Choice::Fixed(4), kappa: Choice::Fixed(0.6), ..Settings::default() };
+    let mut s = Settings {
+        method: keelson::estimator::Method::Components,
+        components: Choice::Fixed(4),
+        kappa: Choice::Fixed(0.6),
+        ..Settings::default()
+    };
     edit(&mut s);
     s
 }

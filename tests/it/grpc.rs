@@ -218,10 +218,20 @@ fn bad_input_returns_invalid_argument_with_field_violations() {
 
         let mut r = base();
         r.settings = Some(proto::Settings {
+            method: proto::Method::Components.into(),
             components_choice: Some(proto::settings::ComponentsChoice::Components(9)),
             ..Default::default()
         });
         expect_invalid(&mut c, r, "settings.components", "TOO_MANY_COMPONENTS").await;
+
+        // A fixed K means nothing to the ridge on every component: said, not ignored.
+        let mut r = base();
+        r.settings = Some(proto::Settings {
+            method: proto::Method::KnsRidge.into(),
+            components_choice: Some(proto::settings::ComponentsChoice::Components(3)),
+            ..Default::default()
+        });
+        expect_invalid(&mut c, r, "settings.components", "INVALID_SETTING").await;
 
         let big = synthetic_panel(2, 600, 200);
         expect_invalid(&mut c, request(&big, proto::Settings::default(), ""), "returns", "REQUEST_TOO_LARGE").await;

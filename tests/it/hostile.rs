@@ -134,7 +134,7 @@ fn a_panic_stays_inside_its_request() {
 /// Every setting changed from its built-in default, to a combination that still fits.
 fn server_defaults() -> Settings {
     Settings {
-        method: Method::KnsRidge,
+        method: Method::Components,
         scaling: Scaling::Covariance,
         components: Choice::Fixed(3),
         max_components: 12,
@@ -222,7 +222,7 @@ fn unset_settings_take_the_server_defaults_over_grpc() {
         assert_eq!(info.settings.len(), Settings::KEYS.len());
         let row = |name: &str| info.settings.iter().find(|d| d.name == name).unwrap().clone();
         assert_eq!(row("components").default_value, "3");
-        assert_eq!(row("method").default_value, "kns-ridge");
+        assert_eq!(row("method").default_value, "components");
         assert_eq!(row("folds").range, "2..=20");
         server.shutdown().await;
     });

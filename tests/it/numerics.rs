@@ -76,6 +76,7 @@ fn tied_panel() -> ReturnPanel {
 fn eigenvalue_ties_at_the_cut_are_flagged() {
     let p = tied_panel();
     let s = Settings {
+        method: keelson::estimator::Method::Components,
         scaling: Scaling::Covariance,
         components: Choice::Fixed(2),
         kappa: Choice::Fixed(1.0),

@@ -81,6 +81,7 @@ use crate::common::Server;
 fn request() -> ComputeWeightsRequest {
     let panel = synthetic_panel(3, 96, 12);
     let settings = proto::Settings {
+        method: proto::Method::Components.into(),
         components_choice: Some(proto::settings::ComponentsChoice::Components(3)),
         kappa_choice: Some(proto::settings::KappaChoice::Kappa(1.0)),
         ..Default::default()

@@ -13,8 +13,9 @@ use keelson::estimator::{
 };
 use prost::Message as _;
 
+/// The components method with `f` applied (the properties concern its scalings).
 fn settings(f: impl FnOnce(&mut Settings)) -> ValidSettings {
-    let mut s = Settings::default();
+    let mut s = Settings { method: keelson::estimator::Method::Components, ..Settings::default() };
     f(&mut s);
     s.check().unwrap()
 }

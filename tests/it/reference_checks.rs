@@ -79,8 +79,10 @@ fn close_vec(what: &str, actual: &[f64], expected: &[f64]) {
     }
 }
 
+/// The reference cases' base is the components method (make_reference.py `DEFAULTS`); each
+/// case names what it changes.
 pub(crate) fn settings_with(overrides: &Value) -> ValidSettings {
-    let mut s = Settings::default();
+    let mut s = Settings { method: keelson::estimator::Method::Components, ..Settings::default() };
     for (k, v) in overrides.as_object().unwrap() {
         let text = match v {
             Value::String(s) => s.clone(),
