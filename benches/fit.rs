@@ -144,5 +144,26 @@ fn implementation(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest, implementation);
+/// SPEC §11 at 50 × 120: 200 bootstrap draws with K and κ fixed beside one
+/// such fit, and `scaling = auto` beside the single-scaling cross-validated fit.
+fn choosing(c: &mut Criterion) {
+    let mut group = c.benchmark_group("choosing 50x120");
+    group.sample_size(10).measurement_time(Duration::from_secs(5));
+    let panel = synthetic_panel(50 * 7919 + 120, 120, 50);
+    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let bare = settings(Scaling::Sharpe, "bare");
+    let boot = Settings { bootstrap_draws: 200, seed: 1, ..bare.settings().clone() }.check().expect("valid");
+    let cv = settings(Scaling::Sharpe, "cv");
+    let auto = Settings { scaling: Scaling::Auto, ..cv.settings().clone() }.check().expect("valid");
+    let options = FitOptions { threads, ..FitOptions::default() };
+    group.bench_function("fixed fit, no folds", |b| b.iter(|| black_box(estimator::fit(&panel, &bare).expect("fits"))));
+    group.bench_function("200 bootstrap draws, all cores", |b| {
+        b.iter(|| black_box(estimator::fit_with(&panel, &boot, &options).expect("fits")))
+    });
+    group.bench_function("CV fit, sharpe", |b| b.iter(|| black_box(estimator::fit(&panel, &cv).expect("fits"))));
+    group.bench_function("CV fit, auto", |b| b.iter(|| black_box(estimator::fit(&panel, &auto).expect("fits"))));
+    group.finish();
+}
+
+criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest, implementation, choosing);
 criterion_main!(benches);

@@ -30,7 +30,7 @@ use keelson::estimator::{self, CvCriterion, Method, ReturnPanel, Scaling, Settin
 
 /// The candidates: every scaling alone, `auto`, the ensemble, and the baselines.
 fn candidates() -> Vec<(String, Settings)> {
-    let base = Settings { demarket: false, ..Settings::default() };
+    let base = Settings { method: Method::Components, demarket: false, ..Settings::default() };
     let mut out: Vec<(String, Settings)> =
         Scaling::ALL.iter().map(|&sc| (format!("scaling {sc}"), Settings { scaling: sc, ..base.clone() })).collect();
     out.push(("scaling auto".into(), Settings { scaling: Scaling::Auto, ..base.clone() }));
@@ -40,6 +40,15 @@ fn candidates() -> Vec<(String, Settings)> {
         Settings { method: Method::KnsRidge, cv_criterion: CvCriterion::PricingR2, ..base.clone() },
     ));
     out.push(("KNS ridge (held-out Sharpe)".into(), Settings { method: Method::KnsRidge, ..base.clone() }));
+    out.push((
+        "KNS ridge (held-out Sharpe), bagged".into(),
+        Settings {
+            method: Method::KnsRidge,
+            bootstrap_draws: 25,
+            aggregate: keelson::estimator::Aggregate::Bagged,
+            ..base.clone()
+        },
+    ));
     out.push(("plug-in Ledoit-Wolf".into(), Settings { method: Method::PlugInLedoitWolf, ..base.clone() }));
     out.push(("plug-in".into(), Settings { method: Method::PlugIn, ..base.clone() }));
     out.push(("equal weight".into(), Settings { method: Method::EqualWeight, ..base }));
