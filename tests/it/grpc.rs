@@ -43,6 +43,30 @@ fn weights_over_grpc_equal_the_library_bit_for_bit() {
             assert_eq!(resp.encode_to_vec(), local.encode_to_vec(), "{scaling:?}");
             assert_eq!(resp.request_id, "req-7");
         }
+        // SPEC §11 over the wire: the scaling chosen by cross-validation, the ensemble, and the
+        // bootstrap with bagging, each byte-identical to the library.
+        let choosing = [
+            proto::Settings {
+                method: proto::Method::Components.into(),
+                scaling: proto::Scaling::Auto.into(),
+                ..Default::default()
+            },
+            proto::Settings { method: proto::Method::Ensemble.into(), ..Default::default() },
+            proto::Settings {
+                bootstrap_draws: Some(20),
+                seed: Some(5),
+                aggregate: proto::Aggregate::Bagged.into(),
+                ..Default::default()
+            },
+        ];
+        for s in choosing {
+            let resp = c.compute_weights(request(&panel, s, "req-8")).await.unwrap().into_inner();
+            let settings = keelson::convert::settings_from_proto(&s, &Settings::default()).unwrap().check().unwrap();
+            let local = weight_set_to_proto(&estimator::fit(&panel, &settings).unwrap(), "req-8");
+            assert_eq!(resp.encode_to_vec(), local.encode_to_vec(), "{s:?}");
+            let d = resp.diagnostics.unwrap();
+            assert!(d.chosen_scaling != 0 || !d.scaling_scores.is_empty() || d.bootstrap.is_some());
+        }
         let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
         assert_eq!(info.estimator_version, estimator::ESTIMATOR_VERSION);
         assert_eq!(info.limits.unwrap().max_message_bytes, 64 << 20);
