@@ -84,7 +84,7 @@ echo "container process $pid runs as uid $uid"
 
 echo "-- one ComputeWeights call from the host"
 "$bin" call --addr "http://127.0.0.1:$port" --returns tests/reference/data/a_main.csv --market MKT \
-  --set components=3 --format json > "$root/response.json"
+  --set method=components --set components=3 --format json > "$root/response.json"
 python3 - "$root/response.json" <<'PY'
 import json, math, sys
 r = json.load(open(sys.argv[1]))

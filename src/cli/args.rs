@@ -72,7 +72,7 @@ pub(crate) struct SettingsArgs {
     /// TOML file of settings; keys not given keep their defaults.
     #[arg(long, value_name = "FILE.toml")]
     pub(crate) config: Option<PathBuf>,
-    /// Override one setting, e.g. `--set scaling=covariance --set components=5`.
+    /// Override one setting, e.g. `--set method=components --set scaling=covariance --set components=5`.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     pub(crate) set: Vec<String>,
 }
@@ -162,7 +162,7 @@ pub(crate) struct CallArgs {
     pub(crate) token_file: Option<PathBuf>,
     #[command(flatten)]
     pub(crate) window: WindowArgs,
-    /// Set one setting in the request, e.g. `--set components=5`; unset ones take the server's defaults.
+    /// Set one setting in the request, e.g. `--set kappa=0.8`; unset ones take the server's defaults.
     #[arg(long = "set", value_name = "KEY=VALUE")]
     pub(crate) set: Vec<String>,
     /// Request id, echoed back and logged by the server.
