@@ -129,14 +129,20 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
         return Err(err(file, hline, 1, None, "the header needs a period column and at least one factor column"));
     }
     let market_column = match market {
-        Some(m) => Some(
-            header
-                .iter()
-                .skip(1)
-                .position(|h| h == m)
-                .map(|i| i + 2)
-                .ok_or_else(|| err(file, hline, 1, None, format!("no column named \"{m}\" for --market")))?,
-        ),
+        Some(m) => Some(header.iter().skip(1).position(|h| h == m).map(|i| i + 2).ok_or_else(|| {
+            let columns: Vec<&str> = header.iter().skip(1).map(String::as_str).take(40).collect();
+            err(
+                file,
+                hline,
+                1,
+                None,
+                format!(
+                    "no column named \"{m}\" for --market (names are case-sensitive); the columns are: {}{}",
+                    columns.join(", "),
+                    if header.len() > 41 { ", …" } else { "" }
+                ),
+            )
+        })?),
         None => None,
     };
     let mut factor_columns = Vec::new();

@@ -71,6 +71,8 @@ pub(crate) fn run(a: BacktestArgs) -> anyhow::Result<ExitCode> {
         Err(BacktestError::History(e)) => return Err(located(e, &csv)),
         Err(e) => return Err(UsageError(option_error(&e)).into()),
     };
+    // The report folder must be writable before any work is done.
+    writable_dir(&a.out).map_err(|e| UsageError(format!("--out {}: {e}", a.out.display())))?;
     let started = std::time::Instant::now();
     let result = evaluate::run(&csv.panel, &settings, &spec, &progress_bar, &Stop::never())
         .with_context(|| format!("backtesting {csv}"))?;
@@ -86,6 +88,14 @@ pub(crate) fn run(a: BacktestArgs) -> anyhow::Result<ExitCode> {
     ));
     print(&text)?;
     Ok(ExitCode::SUCCESS)
+}
+
+/// Creates `dir` if needed and checks that a file can be written in it.
+fn writable_dir(dir: &std::path::Path) -> std::io::Result<()> {
+    std::fs::create_dir_all(dir)?;
+    let probe = dir.join(".keelson-write-check");
+    std::fs::write(&probe, b"")?;
+    std::fs::remove_file(&probe)
 }
 
 /// Inference lines under the summary table.

@@ -160,8 +160,12 @@ impl InputError {
 #[allow(missing_docs)] // variant fields are named in the variant docs and messages
 pub enum SettingsError {
     /// The key is not a setting.
-    #[error("unknown setting `{field}`")]
-    UnknownField { field: String },
+    #[error(
+        "unknown setting `{field}`{}; the settings are: {}",
+        closest.map(|c| format!(" (did you mean `{c}`?)")).unwrap_or_default(),
+        super::settings::Settings::KEYS.join(", ")
+    )]
+    UnknownField { field: String, closest: Option<&'static str> },
     /// The value has the wrong type or is not an accepted word.
     #[error("setting `{field}`: invalid value \"{value}\": {reason}")]
     InvalidValue { field: &'static str, value: String, reason: String },

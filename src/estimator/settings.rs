@@ -528,7 +528,8 @@ impl Settings {
     pub fn set(&mut self, key: &str, value: &str) -> Result<(), SettingsError> {
         let key = key.trim().replace('-', "_");
         let Some(&field) = Self::KEYS.iter().find(|k| **k == key) else {
-            return Err(SettingsError::UnknownField { field: key });
+            let closest = closest_key(&key);
+            return Err(SettingsError::UnknownField { field: key, closest });
         };
         let value = value.trim();
         // Numbers and booleans parse as TOML scalars; anything else is a word.
@@ -582,6 +583,27 @@ impl Settings {
         }
         Ok(ValidSettings { inner: self })
     }
+}
+
+/// The setting nearest to `key` by edit distance, if it is near enough to be a typo
+/// (at most a third of the key's length, and at most 3 edits).
+fn closest_key(key: &str) -> Option<&'static str> {
+    fn distance(a: &str, b: &str) -> usize {
+        let b: Vec<char> = b.chars().collect();
+        let mut row: Vec<usize> = (0..=b.len()).collect();
+        for (i, ca) in a.chars().enumerate() {
+            let mut prev = row[0];
+            row[0] = i + 1;
+            for (j, cb) in b.iter().enumerate() {
+                let cur = row[j + 1];
+                row[j + 1] = (prev + usize::from(ca != *cb)).min(row[j] + 1).min(cur + 1);
+                prev = cur;
+            }
+        }
+        row[b.len()]
+    }
+    let (best, d) = Settings::KEYS.iter().map(|k| (*k, distance(key, k))).min_by_key(|&(_, d)| d)?;
+    (d <= 3 && d * 3 <= key.chars().count().max(3)).then_some(best)
 }
 
 /// Settings that passed [`Settings::check`]: the only form the estimator takes.
@@ -662,7 +684,10 @@ mod tests {
     #[test]
     fn set_rejects_unknown_keys_and_bad_values() {
         let mut s = Settings::default();
-        assert!(matches!(s.set("kapa", "1"), Err(SettingsError::UnknownField { .. })));
+        assert!(matches!(s.set("kapa", "1"), Err(SettingsError::UnknownField { closest: Some("kappa"), .. })));
+        let e = s.set("scalng", "sharpe").unwrap_err().to_string();
+        assert!(e.contains("did you mean `scaling`?") && e.contains("max_components"), "{e}");
+        assert!(matches!(s.set("zzzzzzzz", "1"), Err(SettingsError::UnknownField { closest: None, .. })));
         assert!(matches!(s.set("scaling", "sharp"), Err(SettingsError::InvalidValue { field: "scaling", .. })));
         assert!(matches!(s.set("folds", "-3"), Err(SettingsError::InvalidValue { field: "folds", .. })));
         assert_eq!(s, Settings::default(), "a failed set leaves settings unchanged");

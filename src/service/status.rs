@@ -162,7 +162,7 @@ fn input_reason(e: &InputError) -> &'static str {
 
 fn settings_status(e: &SettingsError) -> Status {
     let (reason, field) = match e {
-        SettingsError::UnknownField { field } => ("UNKNOWN_SETTING", format!("settings.{field}")),
+        SettingsError::UnknownField { field, .. } => ("UNKNOWN_SETTING", format!("settings.{field}")),
         SettingsError::InvalidValue { field, .. } => ("INVALID_SETTING", format!("settings.{field}")),
         SettingsError::OutOfRange { field, .. } => ("SETTING_OUT_OF_RANGE", format!("settings.{field}")),
         SettingsError::File { .. } => ("INVALID_SETTING", "settings".to_owned()),

@@ -374,3 +374,22 @@ fn limits_and_costs_from_the_command_line_match_the_service() {
     let served = serde_json::to_string_pretty(&resp).unwrap() + "\n";
     assert_eq!(served, String::from_utf8_lossy(&o.stdout), "ComputeWeights and fit --format json differ");
 }
+
+/// Mistakes a scheduler must hear about at once: an unwritable report folder before any work,
+/// a misspelt setting with the nearest key and the list, a market column that does not exist
+/// with the columns that do.
+#[test]
+fn mistakes_are_named_before_any_work() {
+    let p = file("mistakes.csv", &window(200, 6));
+    let o = keelson(&["backtest", "--returns", p.to_str().unwrap(), "--market", "MKT", "--out", "/proc/keelson-nope"]);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(stderr(&o).contains("--out /proc/keelson-nope"), "{}", stderr(&o));
+    // Refused before the backtest: no progress or summary was printed.
+    assert!(stdout(&o).is_empty(), "{}", stdout(&o));
+    let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT", "--set", "scalng=sharpe"]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("did you mean `scaling`?") && stderr(&o).contains("kappa_grid_max"), "{}", stderr(&o));
+    let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "Mkt"]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(stderr(&o).contains("the columns are: MKT, "), "{}", stderr(&o));
+}
