@@ -102,49 +102,9 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
         "market hedge", "", r.model_market_weight, r.market_weight
     );
-    let exposure = |w: &dyn Fn(&proto::FactorWeight) -> f64, m: f64, abs: bool| -> f64 {
-        let f: f64 = r.weights.iter().map(|x| if abs { w(x).abs() } else { w(x) }).sum();
-        f + if abs { m.abs() } else { m }
-    };
-    let model = |x: &proto::FactorWeight| x.model_weight;
-    let held = |x: &proto::FactorWeight| x.weight;
-    let _ = writeln!(
-        out,
-        "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
-        "gross exposure",
-        "",
-        exposure(&model, r.model_market_weight, true),
-        exposure(&held, r.market_weight, true)
-    );
-    let _ = writeln!(
-        out,
-        "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
-        "net exposure",
-        "",
-        exposure(&model, r.model_market_weight, false),
-        exposure(&held, r.market_weight, false)
-    );
+    exposure_lines(&mut out, r, width);
     if let Some(imp) = &d.implementation {
-        let _ = writeln!(out);
-        let _ = writeln!(
-            out,
-            "implementation: tracking error {:.2}% · turnover {:.4} · cost {:.2} bp of NAV · γ* {:.4} (model Sharpe {:.2}) · solver {} in {} iterations",
-            100.0 * imp.tracking_error,
-            imp.turnover,
-            1e4 * imp.cost,
-            imp.gamma,
-            imp.model_sharpe,
-            imp.solver_status,
-            imp.iterations
-        );
-        if imp.binding.is_empty() {
-            let _ = writeln!(out, "no limit binds");
-        }
-        for b in &imp.binding {
-            let what =
-                if b.factor.is_empty() { b.constraint.clone() } else { format!("{} on {}", b.constraint, b.factor) };
-            let _ = writeln!(out, "binds: {what} at {:.4} (limit {}) · dual {:.3e}", b.value, b.limit, b.dual);
-        }
+        implementation_lines(&mut out, imp);
     }
     let _ = writeln!(out);
     let _ = writeln!(
@@ -163,24 +123,7 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         d.turnover.map(|t| format!(" · turnover {t:.4}")).unwrap_or_default()
     );
     if let Some(b) = boot {
-        let _ = writeln!(
-            out,
-            "bootstrap: {} stationary draws (mean block {} periods, seed {}{}), {} failed; {}; 5% / median / 95% of each weight, sign = share of draws with the fitted sign",
-            b.draws,
-            b.mean_block,
-            b.seed,
-            if b.cross_validated { ", cross-validated in every draw" } else { ", K and κ as fitted" },
-            b.failed,
-            if b.bagged {
-                "weights are the draws' mean, normalised again (bagged)"
-            } else {
-                "weights are the window's own fit"
-            }
-        );
-        if !b.components.is_empty() {
-            let ks: Vec<String> = b.components.iter().map(|c| format!("K={}: {}", c.components, c.draws)).collect();
-            let _ = writeln!(out, "bootstrap K chosen: {}", ks.join(", "));
-        }
+        bootstrap_lines(&mut out, b);
     }
     for e in &d.excluded {
         let _ = writeln!(out, "excluded {}: {}", e.factor, e.reason);
@@ -190,6 +133,61 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
     }
     let _ = writeln!(out, "fingerprint {} · {}", r.fingerprint, r.estimator_version);
     out
+}
+
+/// Gross (Σ|w| + |w_m|) and net (Σw + w_m) exposure of the model and the implemented weights.
+fn exposure_lines(out: &mut String, r: &ComputeWeightsResponse, width: usize) {
+    for (label, gross) in [("gross exposure", true), ("net exposure", false)] {
+        let size = |v: f64| if gross { v.abs() } else { v };
+        let model = r.weights.iter().map(|f| size(f.model_weight)).sum::<f64>() + size(r.model_market_weight);
+        let held = r.weights.iter().map(|f| size(f.weight)).sum::<f64>() + size(r.market_weight);
+        let _ = writeln!(out, "{label:<width$}  {:>8}  {model:>9.4}  {held:>9.4}", "");
+    }
+}
+
+/// The implementation stage's lines: tracking error, turnover, cost, γ*, solver, binding limits.
+fn implementation_lines(out: &mut String, imp: &proto::Implementation) {
+    let _ = writeln!(out);
+    let _ = writeln!(
+        out,
+        "implementation: tracking error {:.2}% · turnover {:.4} · cost {:.2} bp of NAV · γ* {:.4} (model Sharpe {:.2}) · solver {} in {} iterations",
+        100.0 * imp.tracking_error,
+        imp.turnover,
+        1e4 * imp.cost,
+        imp.gamma,
+        imp.model_sharpe,
+        imp.solver_status,
+        imp.iterations
+    );
+    if imp.binding.is_empty() {
+        let _ = writeln!(out, "no limit binds");
+    }
+    for b in &imp.binding {
+        let what = if b.factor.is_empty() { b.constraint.clone() } else { format!("{} on {}", b.constraint, b.factor) };
+        let _ = writeln!(out, "binds: {what} at {:.4} (limit {}) · dual {:.3e}", b.value, b.limit, b.dual);
+    }
+}
+
+/// The bootstrap's summary lines under the table.
+fn bootstrap_lines(out: &mut String, b: &proto::Bootstrap) {
+    let _ = writeln!(
+        out,
+        "bootstrap: {} stationary draws (mean block {} periods, seed {}{}), {} failed; {}; 5% / median / 95% of each model weight, sign = share of draws with the model weight's sign",
+        b.draws,
+        b.mean_block,
+        b.seed,
+        if b.cross_validated { ", cross-validated in every draw" } else { ", K and κ as fitted" },
+        b.failed,
+        if b.bagged {
+            "weights are the draws' mean, normalised again (bagged)"
+        } else {
+            "weights are the window's own fit"
+        }
+    );
+    if !b.components.is_empty() {
+        let ks: Vec<String> = b.components.iter().map(|c| format!("K={}: {}", c.components, c.draws)).collect();
+        let _ = writeln!(out, "bootstrap K chosen: {}", ks.join(", "));
+    }
 }
 
 /// The response in the proto3 JSON mapping.

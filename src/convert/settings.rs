@@ -126,22 +126,14 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
         min_periods,
         method: enum_or_unset(method, method_to_proto),
         held_out_check,
-        max_weight_choice: max_weight.map(|c| match c {
-            Cap::Off => MaxWeightChoice::MaxWeightOff(true),
-            Cap::At(v) => MaxWeightChoice::MaxWeight(v),
+        max_weight_choice: max_weight
+            .map(|c| cap_to_proto(c, MaxWeightChoice::MaxWeight, MaxWeightChoice::MaxWeightOff)),
+        max_gross_choice: max_gross.map(|c| cap_to_proto(c, MaxGrossChoice::MaxGross, MaxGrossChoice::MaxGrossOff)),
+        max_market_weight_choice: max_market_weight.map(|c| {
+            cap_to_proto(c, MaxMarketWeightChoice::MaxMarketWeight, MaxMarketWeightChoice::MaxMarketWeightOff)
         }),
-        max_gross_choice: max_gross.map(|c| match c {
-            Cap::Off => MaxGrossChoice::MaxGrossOff(true),
-            Cap::At(v) => MaxGrossChoice::MaxGross(v),
-        }),
-        max_market_weight_choice: max_market_weight.map(|c| match c {
-            Cap::Off => MaxMarketWeightChoice::MaxMarketWeightOff(true),
-            Cap::At(v) => MaxMarketWeightChoice::MaxMarketWeight(v),
-        }),
-        max_turnover_choice: max_turnover.map(|c| match c {
-            Cap::Off => MaxTurnoverChoice::MaxTurnoverOff(true),
-            Cap::At(v) => MaxTurnoverChoice::MaxTurnover(v),
-        }),
+        max_turnover_choice: max_turnover
+            .map(|c| cap_to_proto(c, MaxTurnoverChoice::MaxTurnover, MaxTurnoverChoice::MaxTurnoverOff)),
         cost_bps,
         holding_periods_choice: holding_periods.map(|c| match c {
             Choice::Auto => HoldingPeriodsChoice::HoldingPeriodsAuto(true),
@@ -191,11 +183,88 @@ fn auto_false(field: &'static str) -> SettingsError {
     }
 }
 
+/// A limit as its proto oneof: the bound, or `*_off = true`.
+fn cap_to_proto<T>(c: Cap, at: fn(f64) -> T, off: fn(bool) -> T) -> T {
+    match c {
+        Cap::Off => off(true),
+        Cap::At(v) => at(v),
+    }
+}
+
+/// A limit from its proto oneof (`Ok` the bound, `Err` the `*_off` flag); `*_off = false` is rejected.
+fn cap_from_proto(off_field: &'static str, choice: Option<Result<f64, bool>>) -> Result<Option<Cap>, SettingsError> {
+    match choice {
+        None => Ok(None),
+        Some(Ok(v)) => Ok(Some(Cap::At(v))),
+        Some(Err(true)) => Ok(Some(Cap::Off)),
+        Some(Err(false)) => Err(off_false(off_field)),
+    }
+}
+
 fn off_false(field: &'static str) -> SettingsError {
     SettingsError::InvalidValue {
         field,
         value: "false".into(),
         reason: "set it to true to switch the limit off, or leave the choice unset for the server's default".into(),
+    }
+}
+
+fn method_from_proto(m: proto::Method) -> Option<Method> {
+    match m {
+        proto::Method::Unspecified => None,
+        proto::Method::Components => Some(Method::Components),
+        proto::Method::PlugIn => Some(Method::PlugIn),
+        proto::Method::EqualWeight => Some(Method::EqualWeight),
+        proto::Method::KnsRidge => Some(Method::KnsRidge),
+        proto::Method::PlugInLedoitWolf => Some(Method::PlugInLedoitWolf),
+        proto::Method::Ensemble => Some(Method::Ensemble),
+    }
+}
+
+fn scaling_from_proto(s: proto::Scaling) -> Option<Scaling> {
+    match s {
+        proto::Scaling::Unspecified => None,
+        proto::Scaling::Sharpe => Some(Scaling::Sharpe),
+        proto::Scaling::SharpeRaw => Some(Scaling::SharpeRaw),
+        proto::Scaling::Standardized => Some(Scaling::Standardized),
+        proto::Scaling::Covariance => Some(Scaling::Covariance),
+        proto::Scaling::RiskPremium => Some(Scaling::RiskPremium),
+        proto::Scaling::SharpeShrunk => Some(Scaling::SharpeShrunk),
+        proto::Scaling::Auto => Some(Scaling::Auto),
+    }
+}
+
+fn cv_criterion_from_proto(c: proto::CvCriterion) -> Option<CvCriterion> {
+    match c {
+        proto::CvCriterion::Unspecified => None,
+        proto::CvCriterion::Sharpe => Some(CvCriterion::Sharpe),
+        proto::CvCriterion::PricingR2 => Some(CvCriterion::PricingR2),
+        proto::CvCriterion::PricingR2Gls => Some(CvCriterion::PricingR2Gls),
+    }
+}
+
+fn normalization_from_proto(n: proto::Normalization) -> Option<Normalization> {
+    match n {
+        proto::Normalization::Unspecified => None,
+        proto::Normalization::TargetVolatility => Some(Normalization::TargetVolatility),
+        proto::Normalization::RiskAversion => Some(Normalization::RiskAversion),
+        proto::Normalization::GrossExposure => Some(Normalization::GrossExposure),
+    }
+}
+
+fn missing_policy_from_proto(m: proto::MissingPolicy) -> Option<MissingPolicy> {
+    match m {
+        proto::MissingPolicy::Unspecified => None,
+        proto::MissingPolicy::DropFactor => Some(MissingPolicy::DropFactor),
+        proto::MissingPolicy::Reject => Some(MissingPolicy::Reject),
+    }
+}
+
+fn aggregate_from_proto(a: proto::Aggregate) -> Option<Aggregate> {
+    match a {
+        proto::Aggregate::Unspecified => None,
+        proto::Aggregate::Point => Some(Aggregate::Point),
+        proto::Aggregate::Bagged => Some(Aggregate::Bagged),
     }
 }
 
@@ -240,25 +309,8 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         aggregate,
     } = *p;
     Ok(SettingsPatch {
-        method: enum_from("method", method, |m| match m {
-            proto::Method::Unspecified => None,
-            proto::Method::Components => Some(Method::Components),
-            proto::Method::PlugIn => Some(Method::PlugIn),
-            proto::Method::EqualWeight => Some(Method::EqualWeight),
-            proto::Method::KnsRidge => Some(Method::KnsRidge),
-            proto::Method::PlugInLedoitWolf => Some(Method::PlugInLedoitWolf),
-            proto::Method::Ensemble => Some(Method::Ensemble),
-        })?,
-        scaling: enum_from("scaling", scaling, |s| match s {
-            proto::Scaling::Unspecified => None,
-            proto::Scaling::Sharpe => Some(Scaling::Sharpe),
-            proto::Scaling::SharpeRaw => Some(Scaling::SharpeRaw),
-            proto::Scaling::Standardized => Some(Scaling::Standardized),
-            proto::Scaling::Covariance => Some(Scaling::Covariance),
-            proto::Scaling::RiskPremium => Some(Scaling::RiskPremium),
-            proto::Scaling::SharpeShrunk => Some(Scaling::SharpeShrunk),
-            proto::Scaling::Auto => Some(Scaling::Auto),
-        })?,
+        method: enum_from("method", method, method_from_proto)?,
+        scaling: enum_from("scaling", scaling, scaling_from_proto)?,
         components: match components_choice {
             None => None,
             Some(ComponentsChoice::Components(k)) => Some(Choice::Fixed(k)),
@@ -277,56 +329,44 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         kappa_grid_points,
         l1_penalty,
         folds,
-        cv_criterion: enum_from("cv_criterion", cv_criterion, |c| match c {
-            proto::CvCriterion::Unspecified => None,
-            proto::CvCriterion::Sharpe => Some(CvCriterion::Sharpe),
-            proto::CvCriterion::PricingR2 => Some(CvCriterion::PricingR2),
-            proto::CvCriterion::PricingR2Gls => Some(CvCriterion::PricingR2Gls),
-        })?,
-        normalization: enum_from("normalization", normalization, |n| match n {
-            proto::Normalization::Unspecified => None,
-            proto::Normalization::TargetVolatility => Some(Normalization::TargetVolatility),
-            proto::Normalization::RiskAversion => Some(Normalization::RiskAversion),
-            proto::Normalization::GrossExposure => Some(Normalization::GrossExposure),
-        })?,
+        cv_criterion: enum_from("cv_criterion", cv_criterion, cv_criterion_from_proto)?,
+        normalization: enum_from("normalization", normalization, normalization_from_proto)?,
         target_volatility,
         risk_aversion,
         periods_per_year,
         demarket,
-        missing_policy: enum_from("missing_policy", missing_policy, |m| match m {
-            proto::MissingPolicy::Unspecified => None,
-            proto::MissingPolicy::DropFactor => Some(MissingPolicy::DropFactor),
-            proto::MissingPolicy::Reject => Some(MissingPolicy::Reject),
-        })?,
+        missing_policy: enum_from("missing_policy", missing_policy, missing_policy_from_proto)?,
         rp_gamma,
         min_periods,
         held_out_check,
-        max_weight: match max_weight_choice {
-            None => None,
-            Some(MaxWeightChoice::MaxWeight(v)) => Some(Cap::At(v)),
-            Some(MaxWeightChoice::MaxWeightOff(true)) => Some(Cap::Off),
-            Some(MaxWeightChoice::MaxWeightOff(false)) => return Err(off_false("max_weight_off")),
-        },
-        max_gross: match max_gross_choice {
-            None => None,
-            Some(MaxGrossChoice::MaxGross(v)) => Some(Cap::At(v)),
-            Some(MaxGrossChoice::MaxGrossOff(true)) => Some(Cap::Off),
-            Some(MaxGrossChoice::MaxGrossOff(false)) => return Err(off_false("max_gross_off")),
-        },
-        max_market_weight: match max_market_weight_choice {
-            None => None,
-            Some(MaxMarketWeightChoice::MaxMarketWeight(v)) => Some(Cap::At(v)),
-            Some(MaxMarketWeightChoice::MaxMarketWeightOff(true)) => Some(Cap::Off),
-            Some(MaxMarketWeightChoice::MaxMarketWeightOff(false)) => {
-                return Err(off_false("max_market_weight_off"));
-            }
-        },
-        max_turnover: match max_turnover_choice {
-            None => None,
-            Some(MaxTurnoverChoice::MaxTurnover(v)) => Some(Cap::At(v)),
-            Some(MaxTurnoverChoice::MaxTurnoverOff(true)) => Some(Cap::Off),
-            Some(MaxTurnoverChoice::MaxTurnoverOff(false)) => return Err(off_false("max_turnover_off")),
-        },
+        max_weight: cap_from_proto(
+            "max_weight_off",
+            max_weight_choice.map(|c| match c {
+                MaxWeightChoice::MaxWeight(v) => Ok(v),
+                MaxWeightChoice::MaxWeightOff(off) => Err(off),
+            }),
+        )?,
+        max_gross: cap_from_proto(
+            "max_gross_off",
+            max_gross_choice.map(|c| match c {
+                MaxGrossChoice::MaxGross(v) => Ok(v),
+                MaxGrossChoice::MaxGrossOff(off) => Err(off),
+            }),
+        )?,
+        max_market_weight: cap_from_proto(
+            "max_market_weight_off",
+            max_market_weight_choice.map(|c| match c {
+                MaxMarketWeightChoice::MaxMarketWeight(v) => Ok(v),
+                MaxMarketWeightChoice::MaxMarketWeightOff(off) => Err(off),
+            }),
+        )?,
+        max_turnover: cap_from_proto(
+            "max_turnover_off",
+            max_turnover_choice.map(|c| match c {
+                MaxTurnoverChoice::MaxTurnover(v) => Ok(v),
+                MaxTurnoverChoice::MaxTurnoverOff(off) => Err(off),
+            }),
+        )?,
         cost_bps,
         holding_periods: match holding_periods_choice {
             None => None,
@@ -339,11 +379,7 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         bootstrap_block,
         bootstrap_cv,
         seed,
-        aggregate: enum_from("aggregate", aggregate, |a| match a {
-            proto::Aggregate::Unspecified => None,
-            proto::Aggregate::Point => Some(Aggregate::Point),
-            proto::Aggregate::Bagged => Some(Aggregate::Bagged),
-        })?,
+        aggregate: enum_from("aggregate", aggregate, aggregate_from_proto)?,
     })
 }
 

@@ -95,7 +95,7 @@ pub struct FactorInterval {
     pub q50: f64,
     /// 95% quantile of the weight.
     pub q95: f64,
-    /// Share of draws whose weight has the fitted weight's sign (0 counts as its own sign).
+    /// Share of draws whose weight has the fitted model weight's sign (0 counts as its own sign).
     pub sign_agreement: f64,
 }
 
@@ -242,7 +242,8 @@ pub fn run(
     let mut mean = vec![0.0; n];
     for j in 0..n {
         let mut w: Vec<f64> = ok.iter().map(|(v, _)| v[j]).collect();
-        let fitted = point.factors[j].weight;
+        // The draws are model portfolios (no limits, no costs): compare with the model weight.
+        let fitted = point.factors[j].model_weight;
         let agree = w.iter().filter(|x| x.signum() == fitted.signum() && (**x == 0.0) == (fitted == 0.0)).count();
         mean[j] = w.iter().sum::<f64>() / w.len() as f64;
         w.sort_by(f64::total_cmp);

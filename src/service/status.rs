@@ -171,78 +171,81 @@ fn settings_status(e: &SettingsError) -> Status {
     invalid(reason, field, e.to_string(), meta)
 }
 
+/// The status of an estimator error (the `ServiceError::Estimate` arm of [`to_status`]).
+fn estimate_status(e: &EstimateError, cols: Option<usize>) -> Status {
+    match e {
+        EstimateError::Input(ie) => {
+            let (path, meta) = match ie.location() {
+                Some(at) => (violation_path(at, cols), location_metadata(at)),
+                None => {
+                    let field = match ie.as_ref() {
+                        InputError::TooFewPeriods { .. }
+                        | InputError::NoUsableFactors { .. }
+                        | InputError::Shape { .. }
+                        | InputError::NonFinite { .. }
+                        | InputError::OutOfRange { .. }
+                        | InputError::Missing { .. }
+                        | InputError::AllMissing { .. }
+                        | InputError::BadPeriodLabel { .. }
+                        | InputError::UnsortedPeriods { .. } => "returns",
+                        InputError::NoFactors
+                        | InputError::DuplicateName { .. }
+                        | InputError::EmptyName { .. }
+                        | InputError::NameTooLong { .. } => "factor_names",
+                        InputError::MarketZeroVariance => "market_returns",
+                        InputError::WeightOutOfRange { .. } => "previous_weights",
+                    };
+                    (field.to_owned(), HashMap::from([("field".to_owned(), field.to_owned())]))
+                }
+            };
+            invalid(input_reason(ie), path, ie.to_string(), meta)
+        }
+        EstimateError::Settings(se) => settings_status(se),
+        EstimateError::TooManyComponents { .. } => invalid(
+            "TOO_MANY_COMPONENTS",
+            "settings.components".into(),
+            e.to_string(),
+            HashMap::from([("field".to_owned(), "settings.components".to_owned())]),
+        ),
+        EstimateError::CriterionUnavailable { .. } => invalid(
+            "CV_CRITERION_UNAVAILABLE",
+            "settings.cv_criterion".into(),
+            e.to_string(),
+            HashMap::from([("field".to_owned(), "settings.cv_criterion".to_owned())]),
+        ),
+        // The data admit no usable portfolio: the request cannot succeed as sent.
+        EstimateError::NoFiniteScore { .. } => with_info(Code::FailedPrecondition, "NO_FINITE_CV_SCORE", e.to_string()),
+        EstimateError::DegeneratePortfolio { .. } => {
+            with_info(Code::FailedPrecondition, "DEGENERATE_PORTFOLIO", e.to_string())
+        }
+        EstimateError::ConstraintsInfeasible { constraints, .. } => {
+            let mut details = ErrorDetails::with_error_info(
+                "CONSTRAINTS_INFEASIBLE",
+                ERROR_DOMAIN,
+                HashMap::from([("constraints".to_owned(), constraints.join(","))]),
+            );
+            details.set_precondition_failure(
+                constraints
+                    .iter()
+                    .map(|c| {
+                        PreconditionViolation::new("CONSTRAINTS_INFEASIBLE", format!("settings.{c}"), e.to_string())
+                    })
+                    .collect::<Vec<_>>(),
+            );
+            Status::with_error_details(Code::FailedPrecondition, e.to_string(), details)
+        }
+        EstimateError::SolverFailed { .. } => with_info(Code::Internal, "SOLVER_FAILED", e.to_string()),
+        EstimateError::Numerical { .. } => with_info(Code::Internal, "NUMERICAL_FAILURE", e.to_string()),
+        EstimateError::Cancelled => with_info(Code::Cancelled, "CANCELLED", e.to_string()),
+        EstimateError::DeadlineExceeded => with_info(Code::DeadlineExceeded, "DEADLINE_EXCEEDED", e.to_string()),
+    }
+}
+
 /// Maps an error to its gRPC status. `cols` is the request's column count,
 /// used to point a field violation at `returns.values[i]`.
 pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
     match err {
-        ServiceError::Estimate(e) => match e {
-            EstimateError::Input(ie) => {
-                let (path, meta) = match ie.location() {
-                    Some(at) => (violation_path(at, cols), location_metadata(at)),
-                    None => {
-                        let field = match ie.as_ref() {
-                            InputError::TooFewPeriods { .. }
-                            | InputError::NoUsableFactors { .. }
-                            | InputError::Shape { .. }
-                            | InputError::NonFinite { .. }
-                            | InputError::OutOfRange { .. }
-                            | InputError::Missing { .. }
-                            | InputError::AllMissing { .. }
-                            | InputError::BadPeriodLabel { .. }
-                            | InputError::UnsortedPeriods { .. } => "returns",
-                            InputError::NoFactors
-                            | InputError::DuplicateName { .. }
-                            | InputError::EmptyName { .. }
-                            | InputError::NameTooLong { .. } => "factor_names",
-                            InputError::MarketZeroVariance => "market_returns",
-                            InputError::WeightOutOfRange { .. } => "previous_weights",
-                        };
-                        (field.to_owned(), HashMap::from([("field".to_owned(), field.to_owned())]))
-                    }
-                };
-                invalid(input_reason(ie), path, ie.to_string(), meta)
-            }
-            EstimateError::Settings(se) => settings_status(se),
-            EstimateError::TooManyComponents { .. } => invalid(
-                "TOO_MANY_COMPONENTS",
-                "settings.components".into(),
-                e.to_string(),
-                HashMap::from([("field".to_owned(), "settings.components".to_owned())]),
-            ),
-            EstimateError::CriterionUnavailable { .. } => invalid(
-                "CV_CRITERION_UNAVAILABLE",
-                "settings.cv_criterion".into(),
-                e.to_string(),
-                HashMap::from([("field".to_owned(), "settings.cv_criterion".to_owned())]),
-            ),
-            // The data admit no usable portfolio: the request cannot succeed as sent.
-            EstimateError::NoFiniteScore { .. } => {
-                with_info(Code::FailedPrecondition, "NO_FINITE_CV_SCORE", e.to_string())
-            }
-            EstimateError::DegeneratePortfolio { .. } => {
-                with_info(Code::FailedPrecondition, "DEGENERATE_PORTFOLIO", e.to_string())
-            }
-            EstimateError::ConstraintsInfeasible { constraints, .. } => {
-                let mut details = ErrorDetails::with_error_info(
-                    "CONSTRAINTS_INFEASIBLE",
-                    ERROR_DOMAIN,
-                    HashMap::from([("constraints".to_owned(), constraints.join(","))]),
-                );
-                details.set_precondition_failure(
-                    constraints
-                        .iter()
-                        .map(|c| {
-                            PreconditionViolation::new("CONSTRAINTS_INFEASIBLE", format!("settings.{c}"), e.to_string())
-                        })
-                        .collect::<Vec<_>>(),
-                );
-                Status::with_error_details(Code::FailedPrecondition, e.to_string(), details)
-            }
-            EstimateError::SolverFailed { .. } => with_info(Code::Internal, "SOLVER_FAILED", e.to_string()),
-            EstimateError::Numerical { .. } => with_info(Code::Internal, "NUMERICAL_FAILURE", e.to_string()),
-            EstimateError::Cancelled => with_info(Code::Cancelled, "CANCELLED", e.to_string()),
-            EstimateError::DeadlineExceeded => with_info(Code::DeadlineExceeded, "DEADLINE_EXCEEDED", e.to_string()),
-        },
+        ServiceError::Estimate(e) => estimate_status(e, cols),
         ServiceError::Backtest(b) => match b {
             crate::evaluate::BacktestError::Spec { field, .. } => invalid(
                 "INVALID_BACKTEST",
