@@ -1,9 +1,9 @@
 //! The invented demonstration market: the fictional "Tessaly Exchange",
-//! whose 36 long–short factors (invented names) load on a few loud sector
-//! swings with no premium and on two quiet latent styles that carry the
-//! premium. Plain PCA finds the loud directions; Sharpe scaling finds the
-//! quiet ones. Every number is generated from a fixed seed: this is not
-//! market data.
+//! whose 36 long–short factors (invented names: plain nature and craft
+//! words) load on a few loud sector swings with no premium and on two quiet
+//! latent styles that carry a modest premium (true factor Sharpe ratios of
+//! roughly 0.3 to 0.8 a year, zero for the others). Every number is
+//! generated from a fixed seed: this is not market data.
 
 use crate::estimator::ReturnPanel;
 
@@ -13,45 +13,52 @@ pub const DEMO_PERIODS: usize = 120;
 pub const DEMO_HISTORY: usize = 300;
 
 const NAMES: [&str; 36] = [
-    "harrow_value",
-    "lantern_momentum",
-    "basalt_quality",
-    "kestrel_carry",
-    "tamarind_size",
-    "gull_lowvol",
-    "ember_profit",
-    "quarry_invest",
-    "sable_accrual",
-    "willow_reversal",
-    "cobalt_issuance",
-    "fennel_beta",
-    "marlin_growth",
-    "thistle_yield",
-    "osprey_leverage",
-    "juniper_skew",
-    "garnet_liquidity",
-    "heron_sentiment",
-    "saffron_seasonal",
-    "pewter_distress",
-    "otter_turnover",
-    "larch_breadth",
-    "cinder_crowding",
-    "mistral_drift",
-    "nettle_dispersion",
-    "plover_earnings",
-    "russet_margin",
-    "slate_capex",
-    "tern_duration",
-    "umber_credit",
-    "vetch_volume",
-    "wren_industry",
+    "moss_value",
+    "fern_momentum",
+    "pebble_quality",
+    "heath_carry",
+    "brook_size",
+    "thatch_lowvol",
+    "twine_profit",
+    "clay_invest",
+    "flint_accrual",
+    "meadow_reversal",
+    "hazel_issuance",
+    "acorn_beta",
+    "rowan_growth",
+    "sorrel_yield",
+    "linden_leverage",
+    "tansy_skew",
+    "bracken_liquidity",
+    "hedgerow_sentiment",
+    "weir_seasonal",
+    "spindle_distress",
+    "chisel_turnover",
+    "trowel_breadth",
+    "vellum_crowding",
+    "bobbin_drift",
+    "kiln_dispersion",
+    "loam_earnings",
+    "wicker_margin",
+    "adze_capex",
+    "reed_duration",
+    "sedge_credit",
+    "burdock_volume",
+    "thistle_industry",
     "yarrow_insider",
-    "zephyr_analyst",
+    "nettle_analyst",
     "alder_payout",
     "bramble_tangible",
 ];
 
 pub use crate::estimator::bootstrap::SplitMix;
+
+/// Monthly mean of each quiet style: with the loadings below it gives the
+/// premium factors annualised Sharpe ratios of about 0.3 to 0.8, and the
+/// others about zero, the range of published anomaly factors (e.g. the
+/// factor Sharpe ratios reported by Kozak, Nagel & Santosh 2020 and by
+/// Chen & Zimmermann's open-source anomaly data; recalled, common practice).
+const PREMIUM: f64 = 0.002;
 
 /// Builds a seeded panel of `periods` × `factors` returns with the demo's
 /// latent structure (`factors` ≤ 36 uses the demo's names; more get numbered names).
@@ -82,7 +89,7 @@ pub fn synthetic_panel(seed: u64, periods: usize, factors: usize) -> ReturnPanel
     for _ in 0..periods {
         let m = 0.006 + 0.045 * rng.normal();
         let g: Vec<f64> = (0..loud).map(|_| 0.03 * rng.normal()).collect();
-        let h: Vec<f64> = (0..quiet).map(|_| 0.004 + 0.007 * rng.normal()).collect();
+        let h: Vec<f64> = (0..quiet).map(|_| PREMIUM + 0.005 * rng.normal()).collect();
         for i in 0..factors {
             let mut r = beta[i] * m + 0.01 * rng.normal();
             for j in 0..loud {

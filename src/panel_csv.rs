@@ -126,7 +126,21 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
         return Err(err(file, 1, 1, None, "the file is empty; expected a header row"));
     };
     if header.len() < 2 {
-        return Err(err(file, hline, 1, None, "the header needs a period column and at least one factor column"));
+        let only = header.first().map_or("", String::as_str);
+        let hint = match [(';', "semicolons"), ('\t', "tabs")].iter().find(|(c, _)| only.contains(*c)) {
+            Some((_, name)) => format!(
+                "; the header holds {name}: the file is read as comma-separated, so save it with commas \
+                 (decimal points, not decimal commas)"
+            ),
+            None => String::new(),
+        };
+        return Err(err(
+            file,
+            hline,
+            1,
+            None,
+            format!("the header needs a period column and at least one factor column{hint}"),
+        ));
     }
     let market_column = match market {
         Some(m) => Some(header.iter().skip(1).position(|h| h == m).map(|i| i + 2).ok_or_else(|| {

@@ -32,7 +32,7 @@ pub(crate) enum Command {
 #[derive(clap::Args, Debug)]
 pub(crate) struct BacktestArgs {
     #[command(flatten)]
-    pub(crate) window: WindowArgs,
+    pub(crate) history: HistoryArgs,
     #[command(flatten)]
     pub(crate) settings: SettingsArgs,
     /// A benchmark set for alphas, comma-separated column names (repeatable); the market alone is always tested.
@@ -59,12 +59,34 @@ pub(crate) struct BacktestArgs {
     /// Only the configured method, no baselines.
     #[arg(long)]
     pub(crate) no_baselines: bool,
-    /// Worker threads over refit dates (results do not depend on it).
-    #[arg(long, default_value_t = 1, value_parser = clap::value_parser!(u16).range(1..=256))]
-    pub(crate) threads: u16,
-    /// Folder for report.html, summary.json and returns.csv.
+    /// Worker threads over refit dates and strategies (results do not depend on it). Default: every core.
+    #[arg(long, value_parser = clap::value_parser!(u16).range(1..=256))]
+    pub(crate) threads: Option<u16>,
+    /// Folder for report.html, summary.json, returns.csv and charts/ (created; checked before any work).
     #[arg(long, value_name = "DIR")]
     pub(crate) out: PathBuf,
+    #[command(flatten)]
+    pub(crate) strict: StrictArgs,
+}
+
+/// Strict mode for schedulers: warnings that fail the command.
+#[derive(clap::Args, Debug)]
+pub(crate) struct StrictArgs {
+    /// Exit 3 (after writing the output) when a fit raises one of these warning codes
+    /// (comma-separated), or any warning with `any`. In a backtest: any refit of the configured method.
+    #[arg(long, value_name = "CODE,CODE...|any")]
+    pub(crate) fail_on: Option<String>,
+}
+
+/// The history a backtest reads.
+#[derive(clap::Args, Debug)]
+pub(crate) struct HistoryArgs {
+    /// CSV of returns: header row, periods in the first column, one factor per column.
+    #[arg(long, value_name = "FILE.csv")]
+    pub(crate) returns: PathBuf,
+    /// Column holding the market excess return (not a factor).
+    #[arg(long, value_name = "COLUMN")]
+    pub(crate) market: Option<String>,
 }
 
 #[derive(clap::Args, Debug)]
@@ -102,6 +124,8 @@ pub(crate) struct FitArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub(crate) format: Format,
+    #[command(flatten)]
+    pub(crate) strict: StrictArgs,
 }
 
 #[derive(clap::Args, Debug)]
@@ -174,6 +198,8 @@ pub(crate) struct CallArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub(crate) format: Format,
+    #[command(flatten)]
+    pub(crate) strict: StrictArgs,
 }
 
 #[derive(clap::Args, Debug)]

@@ -9,7 +9,7 @@ use keelson::client::{bearer, describe_status};
 use keelson::convert::{request_from_panel, settings_to_proto_only};
 
 use super::args::CallArgs;
-use super::{read_window, render, resolve_settings};
+use super::{fail_on_codes, read_window, render, resolve_settings, strict_exit};
 
 /// The bearer token from `--token-file` or `KEELSON_TOKEN`, if any.
 fn token(file: Option<&PathBuf>) -> anyhow::Result<Option<String>> {
@@ -27,6 +27,7 @@ fn token(file: Option<&PathBuf>) -> anyhow::Result<Option<String>> {
 }
 
 pub(crate) async fn run(a: CallArgs) -> anyhow::Result<ExitCode> {
+    let fail_on = fail_on_codes(&a.strict)?;
     let (settings, keys) = resolve_settings(None, &a.set)?;
     // The same checks as `fit`, before anything is sent: a bad setting is a usage error.
     settings.clone().check()?;
@@ -40,5 +41,6 @@ pub(crate) async fn run(a: CallArgs) -> anyhow::Result<ExitCode> {
     let mut client = a.connect.target().weights_client().await?;
     let resp = client.compute_weights(request).await.map_err(|s| anyhow::anyhow!(describe_status(&s)))?.into_inner();
     render(&resp, a.format, &csv.file, &csv.panel.period_labels)?;
-    Ok(ExitCode::SUCCESS)
+    let raised = resp.diagnostics.iter().flat_map(|d| d.warnings.iter().map(|w| w.code.as_str()));
+    Ok(strict_exit(&fail_on, raised))
 }

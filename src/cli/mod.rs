@@ -2,8 +2,10 @@
 //! settings from `--config` and `--set`, reading a window, printing.
 //!
 //! Exit codes: 0 success, 1 an error in the data, the computation or the
-//! server's answer, 2 bad usage (unknown flag, unknown or out-of-range
-//! setting or option, unusable server configuration or client options).
+//! server's answer, 2 bad usage (unknown flag or a flag of another command,
+//! unknown or out-of-range setting or option, unusable server configuration
+//! or client options, an unwritable `--out`), 3 a warning named by
+//! `--fail-on` was raised (the output is still written).
 
 pub(crate) mod args;
 pub(crate) mod backtest;
@@ -12,6 +14,7 @@ pub(crate) mod demo;
 pub(crate) mod fit;
 pub(crate) mod healthcheck;
 pub(crate) mod output;
+pub(crate) mod progress;
 pub(crate) mod serve;
 
 use std::io::Write as _;
@@ -24,7 +27,7 @@ use keelson::panel_csv;
 use keelson::proto;
 use keelson::service::config::ConfigError;
 
-use args::{Format, WindowArgs};
+use args::{Format, StrictArgs, WindowArgs};
 
 /// A mistake in how the command was called (exit code 2).
 #[derive(Debug, thiserror::Error)]
@@ -79,14 +82,58 @@ pub(crate) fn resolve_settings(
 
 /// Reads the window, and previous weights if given.
 pub(crate) fn read_window(w: &WindowArgs) -> anyhow::Result<panel_csv::CsvPanel> {
-    let file = w.returns.display().to_string();
-    let text = panel_csv::read_text(&w.returns)?;
-    let mut csv = panel_csv::parse_returns(&text, &file, w.market.as_deref())?;
+    let mut csv = read_history(&w.returns, w.market.as_deref())?;
     if let Some(p) = &w.previous_weights {
         let text = panel_csv::read_text(p)?;
         csv.panel.previous_weights = panel_csv::parse_weights(&text, &p.display().to_string())?;
     }
     Ok(csv)
+}
+
+/// Reads a returns file with its market column.
+pub(crate) fn read_history(path: &std::path::Path, market: Option<&str>) -> anyhow::Result<panel_csv::CsvPanel> {
+    let text = panel_csv::read_text(path)?;
+    Ok(panel_csv::parse_returns(&text, &path.display().to_string(), market)?)
+}
+
+/// The warning codes `--fail-on` names: every code for `any`.
+pub(crate) fn fail_on_codes(strict: &StrictArgs) -> anyhow::Result<Vec<&'static str>> {
+    let Some(list) = &strict.fail_on else { return Ok(Vec::new()) };
+    let known = keelson::estimator::WARNING_CODES;
+    let mut out = Vec::new();
+    for code in list.split(',').map(str::trim).filter(|c| !c.is_empty()) {
+        if code == "any" {
+            return Ok(known.to_vec());
+        }
+        match known.iter().find(|k| **k == code) {
+            Some(k) => out.push(*k),
+            None => {
+                let closest = keelson::estimator::closest_name(code, &known);
+                return Err(UsageError(format!(
+                    "--fail-on {code}: not a warning code{}; the codes are any, {}",
+                    closest.map_or_else(String::new, |c| format!(" (did you mean {c}?)")),
+                    known.join(", ")
+                ))
+                .into());
+            }
+        }
+    }
+    if out.is_empty() {
+        return Err(UsageError("--fail-on: give warning codes separated by commas, or any".into()).into());
+    }
+    Ok(out)
+}
+
+/// Exit 3 when a raised warning is one `--fail-on` names, after saying which.
+pub(crate) fn strict_exit<'a>(fail_on: &[&str], raised: impl IntoIterator<Item = &'a str>) -> ExitCode {
+    let mut hit: Vec<&str> = raised.into_iter().filter(|c| fail_on.contains(c)).collect();
+    hit.sort_unstable();
+    hit.dedup();
+    if hit.is_empty() {
+        return ExitCode::SUCCESS;
+    }
+    eprintln!("error: --fail-on: warning(s) raised: {} (the output was written)", hit.join(", "));
+    ExitCode::from(3)
 }
 
 /// An estimator error with the file line and column of its value, when it has one.

@@ -1,12 +1,12 @@
 //! `RunBacktestRequest` → the history and a [`BacktestSpec`]; a
 //! [`BacktestResult`] → the `BacktestResult` message.
 
-use super::settings::scaling_to_proto;
+use super::settings::{scaling_to_proto, settings_to_proto};
 use super::weights::{request_into_parts, weight_set_to_proto};
 use crate::estimator::ReturnPanel;
 use crate::evaluate::stats::{Grs, SharpeDifference};
 use crate::evaluate::{
-    AlphaTest, BacktestResult, BacktestSpec, Comparison, Metrics, PricingTest, StrategyResult, SweepPoint,
+    AlphaTest, BacktestResult, BacktestSpec, Comparison, Metrics, PricingTest, Provenance, StrategyResult, SweepPoint,
 };
 use crate::proto;
 
@@ -59,7 +59,10 @@ pub fn backtest_request_into_parts(
 
 fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
     let StrategyResult {
+        id,
         name,
+        settings,
+        warnings,
         returns,
         net_returns,
         metrics,
@@ -73,10 +76,9 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         target_volatility,
         kappa_at_edge,
         components_at_cap,
-        // Reported in the summary file and the report, not on the wire.
-        missing_holding_returns: _,
+        missing_holding_returns,
     } = s;
-    let Metrics { mean, volatility, sharpe, sharpe_se_iid, sharpe_se_nw, cer, max_drawdown, skewness: _, kurtosis: _ } =
+    let Metrics { mean, volatility, sharpe, sharpe_se_iid, sharpe_se_nw, cer, max_drawdown, skewness, kurtosis } =
         metrics;
     proto::StrategyPerformance {
         name: name.clone(),
@@ -99,6 +101,15 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         target_volatility: *target_volatility,
         kappa_at_edge: *kappa_at_edge as u32,
         components_at_cap: *components_at_cap as u32,
+        id: id.clone(),
+        settings: settings.as_ref().map(settings_to_proto),
+        warnings: warnings
+            .iter()
+            .map(|w| proto::WarningCount { code: w.code.clone(), refits: w.refits as u32 })
+            .collect(),
+        skewness: *skewness,
+        kurtosis: *kurtosis,
+        missing_holding_returns: *missing_holding_returns as u32,
     }
 }
 
@@ -113,7 +124,7 @@ fn comparison_to_proto(c: &Comparison) -> proto::SharpeComparison {
 }
 
 fn alpha_to_proto(a: &AlphaTest) -> proto::AlphaTest {
-    let AlphaTest { strategy, benchmarks, alpha, t_nw, t_robust, r2 } = a;
+    let AlphaTest { strategy, benchmarks, alpha, t_nw, t_robust, r2, note } = a;
     proto::AlphaTest {
         strategy: strategy.clone(),
         benchmarks: benchmarks.clone(),
@@ -121,6 +132,7 @@ fn alpha_to_proto(a: &AlphaTest) -> proto::AlphaTest {
         t_newey_west: *t_nw,
         t_robust: *t_robust,
         r_squared: *r2,
+        note: note.clone().unwrap_or_default(),
     }
 }
 
@@ -172,9 +184,8 @@ pub fn backtest_request_from_panel(
 /// The proto message of a backtest result.
 pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::BacktestResult {
     let BacktestResult {
-        // The request holds the specification; the caller knows both.
-        spec: _,
-        periods_per_year: _,
+        spec,
+        periods_per_year,
         periods,
         refits,
         strategies,
@@ -187,8 +198,9 @@ pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::
         pricing,
         last_fit,
         nw_lag,
-        // The settings in the request are the constraint set; the latest fit echoes them.
+        // Every fitted strategy's settings hold the limits; the report prints them in one line.
         constraints: _,
+        provenance,
     } = r;
     proto::BacktestResult {
         periods: periods.clone(),
@@ -203,5 +215,65 @@ pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::
         pricing: pricing.as_ref().map(pricing_to_proto),
         newey_west_lag: *nw_lag as u32,
         latest_fit: last_fit.as_ref().map(|ws| weight_set_to_proto(ws, request_id)),
+        options: Some(options_to_proto(spec, *periods_per_year)),
+        provenance: Some(provenance_to_proto(provenance)),
+    }
+}
+
+fn options_to_proto(spec: &BacktestSpec, periods_per_year: u32) -> proto::BacktestOptions {
+    let BacktestSpec {
+        window,
+        expanding,
+        step,
+        cost_bps,
+        cer_risk_aversion,
+        sweep_max_k,
+        benchmark_sets,
+        // Not options of the result: the lag is reported as newey_west_lag, threads do not change it.
+        nw_lag: _,
+        baselines,
+        threads: _,
+    } = spec;
+    proto::BacktestOptions {
+        window: *window as u32,
+        expanding: *expanding,
+        step: *step as u32,
+        cost_bps: *cost_bps,
+        cer_risk_aversion: *cer_risk_aversion,
+        sweep_max_k: sweep_max_k.unwrap_or(0) as u32,
+        benchmark_sets: benchmark_sets.iter().map(|names| proto::BenchmarkSet { names: names.clone() }).collect(),
+        baselines: *baselines,
+        periods_per_year,
+    }
+}
+
+fn provenance_to_proto(p: &Provenance) -> proto::Provenance {
+    let Provenance {
+        keelson_version,
+        estimator_version,
+        run_time,
+        invocation,
+        input,
+        input_sha256,
+        first_period,
+        last_period,
+        periods,
+        factors,
+        market,
+        configured,
+    } = p;
+    proto::Provenance {
+        keelson_version: keelson_version.clone(),
+        estimator_version: estimator_version.clone(),
+        run_time: run_time.clone(),
+        invocation: invocation.clone(),
+        input: input.clone(),
+        input_sha256: input_sha256.clone(),
+        first_period: first_period.clone(),
+        last_period: last_period.clone(),
+        periods: *periods as u32,
+        factors: *factors as u32,
+        market: market.clone().unwrap_or_default(),
+        configured: configured.clone(),
     }
 }

@@ -28,11 +28,13 @@ pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use moments::Moments;
 pub use settings::{
     Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings,
-    SettingsPatch, ValidSettings,
+    SettingsPatch, ValidSettings, closest_name,
 };
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
-pub use weights::{ComponentReport, Diagnostics, ExcludedReport, FactorReport, ScalingScore, Warning, WeightSet};
+pub use weights::{
+    ComponentReport, Diagnostics, ExcludedReport, FactorReport, ScalingScore, WARNING_CODES, Warning, WeightSet,
+};
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
 
 use std::time::{Duration, Instant};

@@ -585,25 +585,16 @@ impl Settings {
     }
 }
 
-/// The setting nearest to `key` by edit distance, if it is near enough to be a typo
-/// (at most a third of the key's length, and at most 3 edits).
+/// The setting nearest to `key` by edit distance, if it is near enough to be a typo.
 fn closest_key(key: &str) -> Option<&'static str> {
-    fn distance(a: &str, b: &str) -> usize {
-        let b: Vec<char> = b.chars().collect();
-        let mut row: Vec<usize> = (0..=b.len()).collect();
-        for (i, ca) in a.chars().enumerate() {
-            let mut prev = row[0];
-            row[0] = i + 1;
-            for (j, cb) in b.iter().enumerate() {
-                let cur = row[j + 1];
-                row[j + 1] = (prev + usize::from(ca != *cb)).min(row[j] + 1).min(cur + 1);
-                prev = cur;
-            }
-        }
-        row[b.len()]
-    }
-    let (best, d) = Settings::KEYS.iter().map(|k| (*k, distance(key, k))).min_by_key(|&(_, d)| d)?;
-    (d <= 3 && d * 3 <= key.chars().count().max(3)).then_some(best)
+    closest_name(key, Settings::KEYS)
+}
+
+/// The name in `names` nearest to `word` by Levenshtein distance, if it is
+/// near enough to be a typo (at most 3 edits and a third of the word's length).
+pub fn closest_name(word: &str, names: &[&'static str]) -> Option<&'static str> {
+    let (best, d) = names.iter().map(|k| (*k, strsim::levenshtein(word, k))).min_by_key(|&(_, d)| d)?;
+    (d <= 3 && d * 3 <= word.chars().count().max(3)).then_some(best)
 }
 
 /// Settings that passed [`Settings::check`]: the only form the estimator takes.

@@ -59,6 +59,23 @@ pub struct ComponentReport {
     pub loadings: Vec<f64>,
 }
 
+/// Every warning code a fit can raise, in the README's order.
+pub const WARNING_CODES: [&str; 13] = [
+    "factors-excluded",
+    "short-window",
+    "return-scale",
+    "components-at-grid-edge",
+    "kappa-at-grid-edge",
+    "components-capped-by-rank",
+    "singular-covariance",
+    "solver-not-converged",
+    "previous-weights-unknown-factor",
+    "model-no-edge",
+    "solver-reduced-accuracy",
+    "ill-conditioned-covariance",
+    "components-not-separated",
+];
+
 /// A condition worth knowing; the weights are still valid.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Warning {
@@ -630,6 +647,42 @@ impl Previous {
     }
 }
 
+/// Feeds the history of `panel` (shape, names, labels, returns and market as
+/// little-endian IEEE bits, all NaNs alike) to `h`: the part of a
+/// fingerprint that identifies the data.
+pub(crate) fn hash_history(h: &mut Sha256, panel: &ReturnPanel) {
+    let put_str = |h: &mut Sha256, s: &str| {
+        h.update((s.len() as u64).to_le_bytes());
+        h.update(s.as_bytes());
+    };
+    let put_f64 = |h: &mut Sha256, v: f64| {
+        // All NaNs hash alike; -0.0 and 0.0 stay distinct like their bits.
+        let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
+        h.update(bits.to_le_bytes());
+    };
+    h.update((panel.rows as u64).to_le_bytes());
+    h.update((panel.cols as u64).to_le_bytes());
+    for n in &panel.factor_names {
+        put_str(h, n);
+    }
+    h.update((panel.period_labels.len() as u64).to_le_bytes());
+    for l in &panel.period_labels {
+        put_str(h, l);
+    }
+    for &v in &panel.returns {
+        put_f64(h, v);
+    }
+    match &panel.market {
+        Some(m) => {
+            h.update([1]);
+            for &v in m {
+                put_f64(h, v);
+            }
+        }
+        None => h.update([0]),
+    }
+}
+
 /// SHA-256 over a canonical encoding of the window and the settings: equal
 /// inputs give equal fingerprints on every platform.
 pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
@@ -644,27 +697,7 @@ pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
         let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
         h.update(bits.to_le_bytes());
     };
-    h.update((panel.rows as u64).to_le_bytes());
-    h.update((panel.cols as u64).to_le_bytes());
-    for n in &panel.factor_names {
-        put_str(&mut h, n);
-    }
-    h.update((panel.period_labels.len() as u64).to_le_bytes());
-    for l in &panel.period_labels {
-        put_str(&mut h, l);
-    }
-    for &v in &panel.returns {
-        put_f64(&mut h, v);
-    }
-    match &panel.market {
-        Some(m) => {
-            h.update([1]);
-            for &v in m {
-                put_f64(&mut h, v);
-            }
-        }
-        None => h.update([0]),
-    }
+    hash_history(&mut h, panel);
     // The market's name matters only to find the hedge among previous weights.
     if let Some(n) = panel.market_name.as_ref().filter(|_| !panel.previous_weights.is_empty()) {
         put_str(&mut h, "market_name");
@@ -689,6 +722,29 @@ pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
 #[cfg(test)]
 mod tests {
     use crate::estimator::{Choice, Normalization, Settings, fit};
+
+    /// `WARNING_CODES` (what `--fail-on` accepts) is every code the estimator raises.
+    #[test]
+    fn the_warning_code_list_is_complete() {
+        let sources = [include_str!("mod.rs"), include_str!("weights.rs"), include_str!("desk.rs")];
+        let mut raised = Vec::new();
+        for src in sources {
+            // The code before the tests: each `code: ...` to the end of its line, its string literals.
+            let body = src.split("#[cfg(test)]").next().unwrap_or_default();
+            for piece in body.split("code: ").skip(1) {
+                let line = piece.lines().next().unwrap_or_default();
+                raised.extend(line.split('"').skip(1).step_by(2).map(str::to_owned));
+            }
+        }
+        raised.sort();
+        raised.dedup();
+        for code in &raised {
+            assert!(super::WARNING_CODES.contains(&code.as_str()), "{code} is raised but not listed");
+        }
+        for code in super::WARNING_CODES {
+            assert!(raised.iter().any(|c| c == code), "{code} is listed but never raised");
+        }
+    }
 
     fn fitted(edit: impl FnOnce(&mut Settings)) -> super::WeightSet {
         let panel = crate::demo::synthetic_panel(5, 120, 10);

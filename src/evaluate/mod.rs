@@ -7,9 +7,11 @@
 //! over [t, t + step); the out-of-sample return is p_t = w'r_t + w_m m_t. No
 //! step of a fit sees a period at or after t.
 
+pub mod provenance;
 pub mod spec;
 pub mod stats;
 
+pub use provenance::Provenance;
 pub use spec::{BacktestBudget, BacktestSpec, ValidBacktestSpec};
 
 use std::sync::atomic::{AtomicUsize, Ordering};
@@ -31,6 +33,11 @@ pub const KNS_PUBLISHED: &str = "KNS ridge, all factors (pricing R²)";
 
 /// The ridge on all factors with κ chosen by the held-out Sharpe ratio.
 pub const KNS_SHARPE: &str = "KNS ridge, all factors (held-out Sharpe)";
+
+/// Name and id of the strategy run with the settings as given (the command's
+/// `--config` and `--set`, or the request's settings over the server's
+/// defaults): the row every other strategy is compared with.
+pub const CONFIGURED: &str = "configured";
 
 /// Name of the configured method's unconstrained model portfolio, a row of
 /// its own when limits or costs are set (SPEC §10).
@@ -118,6 +125,8 @@ pub enum BacktestError {
 /// One strategy of the comparison.
 #[derive(Clone, Debug)]
 pub struct Strategy {
+    /// Stable identifier: lower case, digits and hyphens (column names of `returns.csv`).
+    pub id: String,
     /// Display name.
     pub name: String,
     /// Settings of its fits; `None` for the market itself.
@@ -135,10 +144,14 @@ fn with(base: &Settings, f: impl FnOnce(&mut Settings)) -> Option<ValidSettings>
 /// factors, equal weight, and the market.
 pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool) -> Vec<Strategy> {
     let base = configured.settings();
-    let mut out = vec![Strategy { name: "configured".into(), settings: Some(configured.clone()) }];
+    let mut out = vec![Strategy { id: CONFIGURED.into(), name: CONFIGURED.into(), settings: Some(configured.clone()) }];
     if configured.implementation_active() {
         // The configured method's model portfolio, before limits and costs (SPEC §10).
-        out.push(Strategy { name: MODEL.into(), settings: Some(model_settings(configured)) });
+        out.push(Strategy {
+            id: "configured-model".into(),
+            name: MODEL.into(),
+            settings: Some(model_settings(configured)),
+        });
     }
     if !baselines {
         return out;
@@ -151,7 +164,7 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
                     s.method = Method::Components;
                     s.scaling = sc;
                 });
-                out.push(Strategy { name: format!("scaling {sc}"), settings });
+                out.push(Strategy { id: format!("scaling-{sc}"), name: format!("scaling {sc}"), settings });
             }
         }
     }
@@ -161,8 +174,12 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
             s.components = Choice::Auto;
         })
     };
-    out.push(Strategy { name: "plug-in".into(), settings: baseline(Method::PlugIn) });
-    out.push(Strategy { name: "plug-in Ledoit-Wolf".into(), settings: baseline(Method::PlugInLedoitWolf) });
+    out.push(Strategy { id: "plug-in".into(), name: "plug-in".into(), settings: baseline(Method::PlugIn) });
+    out.push(Strategy {
+        id: "plug-in-ledoit-wolf".into(),
+        name: "plug-in Ledoit-Wolf".into(),
+        settings: baseline(Method::PlugInLedoitWolf),
+    });
     // KNS ridge on all factors as published: κ by the held-out pricing R² (Kozak, Nagel &
     // Santosh 2020); beside it the same with the held-out Sharpe ratio as the criterion.
     let kns = |criterion: CvCriterion| {
@@ -172,16 +189,23 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
             s.cv_criterion = criterion;
         })
     };
-    for (name, criterion) in [(KNS_PUBLISHED, CvCriterion::PricingR2), (KNS_SHARPE, CvCriterion::Sharpe)] {
+    for (id, name, criterion) in [
+        ("kns-ridge-pricing-r2", KNS_PUBLISHED, CvCriterion::PricingR2),
+        ("kns-ridge-sharpe", KNS_SHARPE, CvCriterion::Sharpe),
+    ] {
         let settings = kns(criterion);
         // Not twice: the configured method may be one of them.
         if settings.as_ref() != Some(configured) {
-            out.push(Strategy { name: name.into(), settings });
+            out.push(Strategy { id: id.into(), name: name.into(), settings });
         }
     }
-    out.push(Strategy { name: "equal weight".into(), settings: baseline(Method::EqualWeight) });
+    out.push(Strategy {
+        id: "equal-weight".into(),
+        name: "equal weight".into(),
+        settings: baseline(Method::EqualWeight),
+    });
     if has_market {
-        out.push(Strategy { name: MARKET.into(), settings: None });
+        out.push(Strategy { id: MARKET.into(), name: MARKET.into(), settings: None });
     }
     out.retain(|s| s.name == MARKET || s.settings.is_some());
     out
@@ -238,8 +262,14 @@ fn metrics(x: &[f64], p: f64, gamma: f64, lag: usize) -> Metrics {
 /// Everything about one strategy.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct StrategyResult {
+    /// Stable identifier (see [`Strategy::id`]).
+    pub id: String,
     /// Name.
     pub name: String,
+    /// Effective settings of its fits, limits included; `None` for the market.
+    pub settings: Option<Settings>,
+    /// Every warning code its fits raised, with the number of refits that raised it.
+    pub warnings: Vec<WarningCount>,
     /// Out-of-sample return per period.
     pub returns: Vec<f64>,
     /// Returns net of linear costs.
@@ -271,6 +301,15 @@ pub struct StrategyResult {
     pub missing_holding_returns: usize,
 }
 
+/// How often one warning code was raised across a backtest's refits.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+pub struct WarningCount {
+    /// The warning's stable code.
+    pub code: String,
+    /// Refits that raised it.
+    pub refits: usize,
+}
+
 /// One point of the sweep.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct SweepPoint {
@@ -297,6 +336,8 @@ pub struct AlphaTest {
     pub t_robust: f64,
     /// R² of the regression.
     pub r2: f64,
+    /// Why α and its t-statistics are not reported (NaN), when they are not.
+    pub note: Option<String>,
 }
 
 /// The pricing test of the configured method's K-component model.
@@ -355,6 +396,9 @@ pub struct BacktestResult {
     pub nw_lag: usize,
     /// The implementation limits every fitted strategy ran under (SPEC §10).
     pub constraints: ConstraintSet,
+    /// What ran, on what, by which build, when (the caller names the
+    /// invocation and the input).
+    pub provenance: Provenance,
 }
 
 /// One refit's outcome for one strategy.
@@ -370,6 +414,8 @@ struct Held {
     /// κ at an end of its grid, K at the top of its grid (the fit's warnings).
     kappa_at_edge: bool,
     k_at_cap: bool,
+    /// Codes of every warning the fit (and its implementation stage) raised, sorted, once each.
+    warnings: Vec<&'static str>,
     /// Component loadings (configured strategy only) and betas.
     components: Vec<Vec<f64>>,
     betas: Vec<f64>,
@@ -412,9 +458,18 @@ fn held_weights(ws: &WeightSet) -> Held {
         },
         kappa_at_edge: ws.diagnostics.warnings.iter().any(|w| w.code == "kappa-at-grid-edge"),
         k_at_cap: ws.diagnostics.warnings.iter().any(|w| w.code == "components-at-grid-edge"),
+        warnings: codes(&ws.diagnostics.warnings),
         components: Vec::new(),
         betas: Vec::new(),
     }
+}
+
+/// The distinct codes of `warnings`, sorted.
+fn codes(warnings: &[estimator::Warning]) -> Vec<&'static str> {
+    let mut c: Vec<&'static str> = warnings.iter().map(|w| w.code).collect();
+    c.sort_unstable();
+    c.dedup();
+    c
 }
 
 /// [`held_weights`] with the component loadings and betas, for the pricing test.
@@ -474,6 +529,7 @@ fn market_held(cols: usize) -> Held {
         sharpe_model: 0.0,
         kappa_at_edge: false,
         k_at_cap: false,
+        warnings: Vec::new(),
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -675,6 +731,9 @@ fn implement_strategy(
         h.weights = done.weights;
         h.market = done.market_weight;
         h.top_share = done.top_sharpe_gross_share;
+        h.warnings.extend(warnings.iter().map(|w| w.code));
+        h.warnings.sort_unstable();
+        h.warnings.dedup();
         prev = (h.weights.clone(), h.market);
     }
     Ok(())
@@ -763,8 +822,21 @@ fn strategy_results(
             .as_ref()
             .filter(|v| v.normalization == Normalization::TargetVolatility)
             .map(|v| v.target_volatility);
+        let mut warnings: Vec<WarningCount> = Vec::new();
+        for f in fits {
+            for &code in &f.held[si].warnings {
+                match warnings.iter_mut().find(|w| w.code == code) {
+                    Some(w) => w.refits += 1,
+                    None => warnings.push(WarningCount { code: code.to_owned(), refits: 1 }),
+                }
+            }
+        }
+        warnings.sort_by(|a, b| b.refits.cmp(&a.refits).then_with(|| a.code.cmp(&b.code)));
         results.push(StrategyResult {
+            id: s.id.clone(),
             name: s.name.clone(),
+            settings: s.settings.as_ref().map(|v| v.settings().clone()),
+            warnings,
             metrics: metrics(&returns, p, spec.cer_risk_aversion, lag),
             net_metrics: metrics(&net, p, spec.cer_risk_aversion, lag),
             returns,
@@ -853,6 +925,10 @@ fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64, candidate
     Inference { comparisons, psr, dsr, trials }
 }
 
+/// A regression with R² this close to 1 has no residual to test: its α and
+/// t-statistics are rounding noise and are not reported.
+pub const SPANNED_R2: f64 = 1e-10;
+
 /// Alphas of every strategy against every benchmark set observed throughout.
 fn alpha_tests(
     oos: &OutOfSample<'_>,
@@ -869,13 +945,22 @@ fn alpha_tests(
         }
         for r in results {
             if let Some(reg) = stats::ols(&r.returns, &xs, lag) {
+                let note = if r.id == MARKET && set.iter().any(|b| b == MARKET) {
+                    Some("the strategy is one of its benchmarks".to_owned())
+                } else if reg.r2 >= 1.0 - SPANNED_R2 {
+                    Some(format!("R² is 1 to within {SPANNED_R2:e}: the benchmarks span the strategy"))
+                } else {
+                    None
+                };
+                let nan_if_spanned = |v: f64| if note.is_some() { f64::NAN } else { v };
                 alphas.push(AlphaTest {
                     strategy: r.name.clone(),
                     benchmarks: set.clone(),
-                    alpha: p * reg.coef[0],
-                    t_nw: reg.coef[0] / reg.se_nw[0],
-                    t_robust: reg.coef[0] / reg.se_robust[0],
+                    alpha: nan_if_spanned(p * reg.coef[0]),
+                    t_nw: nan_if_spanned(reg.coef[0] / reg.se_nw[0]),
+                    t_robust: nan_if_spanned(reg.coef[0] / reg.se_robust[0]),
                     r2: reg.r2,
+                    note,
                 });
             }
         }
@@ -930,8 +1015,15 @@ pub fn run(
     let sweep_fits = SweepFits { fits: &per_date_sweep, basis: &per_date_basis, index: sweep_index };
     let pricing = pricing_test(&oos, &per_date_held, &sweep_fits, lag, configured);
     let last_fit = fits.into_iter().last().and_then(|f| f.last);
+    // The specification as run: the sweep's K and the benchmark sets resolved.
+    let resolved = BacktestSpec {
+        sweep_max_k: Some(spec.sweep_max_k()),
+        benchmark_sets: spec.benchmark_sets().to_vec(),
+        ..spec.spec().clone()
+    };
     Ok(BacktestResult {
-        spec: spec.spec().clone(),
+        provenance: Provenance::of(panel, configured, "as given to the backtest"),
+        spec: resolved,
         periods_per_year: configured.periods_per_year,
         periods: oos.periods.iter().map(|&t| label(panel, t)).collect(),
         refits: plan.dates.len(),

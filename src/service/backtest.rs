@@ -91,6 +91,7 @@ impl WeightsApi {
         let api = self.clone();
         let progress_tx = tx.clone();
         let id = request_id.clone();
+        let invocation = format!("RunBacktest request {request_id:?}");
         tokio::spawn(async move {
             let work = move || {
                 let last = AtomicU64::new(u64::MAX);
@@ -106,7 +107,14 @@ impl WeightsApi {
                             .try_send(Ok(proto::RunBacktestResponse { event: Some(event), request_id: id.clone() }));
                     }
                 };
-                Ok(evaluate::run(&panel, &settings, &spec, &progress, &stop)?)
+                let mut r = evaluate::run(&panel, &settings, &spec, &progress, &stop)?;
+                r.provenance.invocation = invocation;
+                r.provenance.input = "RunBacktest request".to_owned();
+                r.provenance.configured = evaluate::provenance::configured_meaning(
+                    &settings,
+                    "the request's settings over the server's defaults",
+                );
+                Ok(r)
             };
             let outcome = api.run_blocking("RunBacktest", &request_id, &deadline, work).await.map(|r| {
                 let event = Event::Result(backtest_result_to_proto(&r, &request_id));

@@ -680,11 +680,8 @@ fn backtest_corpus() -> Vec<BacktestCase> {
         ),
         c(
             "a factor twice in a set",
-            |r| {
-                r.benchmark_sets =
-                    vec![proto::BenchmarkSet { names: vec!["harrow_value".into(), "harrow_value".into()] }]
-            },
-            &["--benchmarks", "harrow_value,harrow_value"],
+            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec!["moss_value".into(), "moss_value".into()] }],
+            &["--benchmarks", "moss_value,moss_value"],
             "benchmark_sets[0].names[1]",
         ),
         c(
@@ -701,7 +698,7 @@ fn backtest_corpus() -> Vec<BacktestCase> {
         ),
         c(
             "65 benchmark sets",
-            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec!["harrow_value".into()] }; 65],
+            |r| r.benchmark_sets = vec![proto::BenchmarkSet { names: vec!["moss_value".into()] }; 65],
             &[],
             "benchmark_sets",
         ),

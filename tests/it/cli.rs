@@ -33,6 +33,12 @@ fn window(t: usize, n: usize) -> String {
     keelson::demo::to_csv(&panel)
 }
 
+/// SHA-256 of a file, lower-case hex (the sha2 crate).
+fn hex_of(p: &std::path::Path) -> String {
+    use sha2::Digest as _;
+    sha2::Sha256::digest(std::fs::read(p).unwrap()).iter().map(|b| format!("{b:02x}")).collect()
+}
+
 /// Applies `edit` to cell (line, column) of CSV text, both one-based.
 fn edit_cell(csv: &str, line: usize, column: usize, value: &str) -> String {
     csv.lines()
@@ -71,7 +77,7 @@ fn fit_prints_a_table_and_proto_json() {
     let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT"]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let out = stdout(&o);
-    assert!(out.contains("harrow_value") && out.contains("market hedge") && out.contains("fingerprint sha256:"));
+    assert!(out.contains("moss_value") && out.contains("market hedge") && out.contains("fingerprint sha256:"));
 
     let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT", "--format", "json"]);
     assert_eq!(o.status.code(), Some(0));
@@ -115,7 +121,7 @@ fn settings_from_flags_and_files_apply() {
 #[test]
 fn previous_weights_give_turnover() {
     let p = file("tw.csv", &window(120, 6));
-    let prev = file("prev.csv", "factor,weight\nharrow_value,0.5\nretired_factor,0.25\nMKT,-0.1\n");
+    let prev = file("prev.csv", "factor,weight\nmoss_value,0.5\nretired_factor,0.25\nMKT,-0.1\n");
     let o = keelson(&[
         "fit",
         "--returns",
@@ -149,7 +155,7 @@ fn bad_data_gives_clear_errors_with_exit_code_1() {
     assert_data_error("text.csv", &edit_cell(&good, 5, 4, "abc"), &[], &["line 5, column 4", "not a number"]);
     assert_data_error("pinf.csv", &edit_cell(&good, 6, 3, "inf"), &[], &["line 6, column 3", "not a finite number"]);
     assert_data_error("ninf.csv", &edit_cell(&good, 7, 5, "-inf"), &[], &["line 7, column 5", "not a finite number"]);
-    let dup = good.replacen("lantern_momentum", "harrow_value", 1);
+    let dup = good.replacen("fern_momentum", "moss_value", 1);
     assert_data_error("dup.csv", &dup, &[], &["line 1, column 4", "duplicate factor name"]);
     let unsorted = edit_cell(&good, 10, 1, "2015-01");
     assert_data_error("unsorted.csv", &unsorted, &[], &["line 10, column 1", "strictly increasing"]);
@@ -192,7 +198,7 @@ fn drop_factor_policy_excludes_and_reports() {
     let v: Value = serde_json::from_slice(&o.stdout).unwrap();
     let ex = v["diagnostics"]["excluded"].as_array().unwrap();
     assert_eq!(ex.len(), 1);
-    assert_eq!(ex[0]["factor"], "tamarind_size");
+    assert_eq!(ex[0]["factor"], "brook_size");
     assert_eq!(ex[0]["code"], "missing-values");
     assert_eq!(v["weights"][4]["weight"], 0.0);
     assert_eq!(v["weights"][4]["excluded"], true);
@@ -229,8 +235,13 @@ fn demo_runs_and_matches_fit_on_its_own_csv() {
     assert!(out.contains("Tessaly Exchange") && out.contains("Caution:") && out.contains("past performance"));
     assert!(out.contains("deflated Sharpe ratio") && out.contains("KNS ridge, all factors"), "{out}");
     let html = std::fs::read_to_string(report.join("report.html")).unwrap();
-    assert!(html.contains("<svg") && html.contains("Cumulative out-of-sample return"));
-    let demo: Value = serde_json::from_slice(&keelson(&["demo", "--format", "json"]).stdout).unwrap();
+    assert!(html.contains("<svg") && html.contains("Growth of one unit"));
+    // JSON on standard output, and the report still written.
+    let json_report = std::env::temp_dir().join(format!("keelson-demo-json-report-{}", std::process::id()));
+    let o = keelson(&["demo", "--format", "json", "--report-dir", json_report.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    assert!(json_report.join("report.html").is_file() && json_report.join("summary.json").is_file());
+    let demo: Value = serde_json::from_slice(&o.stdout).unwrap();
     let fit: Value = serde_json::from_slice(
         &keelson(&["fit", "--returns", csv.to_str().unwrap(), "--market", "MKT", "--format", "json"]).stdout,
     )
@@ -254,7 +265,7 @@ fn backtest_writes_report_summary_and_returns() {
         "--step",
         "2",
         "--benchmarks",
-        "MKT,harrow_value",
+        "MKT,moss_value",
         "--sweep-max-k",
         "3",
         "--out",
@@ -266,15 +277,66 @@ fn backtest_writes_report_summary_and_returns() {
     let mut lines = returns.lines();
     let header: Vec<&str> = lines.next().unwrap().split(',').collect();
     assert_eq!(&header[..2], &["period", "configured"]);
-    assert!(header.contains(&"market") && header.contains(&"equal weight"));
+    // Stable strategy ids: no spaces, commas or capitals to mangle.
+    assert!(header.contains(&"market") && header.contains(&"equal-weight") && header.contains(&"kns-ridge-pricing-r2"));
+    assert!(header.iter().all(|h| h.chars().all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-')));
     assert_eq!(lines.count(), 40, "one row per out-of-sample period");
-    let summary: Value = serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
+    // summary.json is the BacktestResult message in the proto3 JSON mapping.
+    let text = std::fs::read_to_string(out.join("summary.json")).unwrap();
+    let summary: Value = serde_json::from_str(&text).unwrap();
     assert_eq!(summary["refits"], 20);
+    assert!(summary["strategies"][0].get("sharpeSeNeweyWest").is_some(), "proto names");
     assert_eq!(summary["sweep"].as_array().unwrap().len(), 18, "K = 1..3 for six scalings");
     let sets: Vec<&Value> = summary["alphas"].as_array().unwrap().iter().map(|a| &a["benchmarks"]).collect();
     assert!(sets.iter().any(|b| b.as_array().unwrap().len() == 2), "the user's benchmark set is tested");
+    // Provenance: versions, UTC run time, invocation, the input's SHA-256, span, options, settings.
+    let p = &summary["provenance"];
+    assert_eq!(p["keelsonVersion"], env!("CARGO_PKG_VERSION"));
+    assert!(p["estimatorVersion"].as_str().unwrap().starts_with("keelson-estimator/"));
+    let t = p["runTime"].as_str().unwrap();
+    assert!(t.len() == 20 && t.ends_with('Z') && &t[10..11] == "T", "{t}");
+    assert!(p["invocation"].as_str().unwrap().contains("backtest --returns"), "{p}");
+    assert_eq!(p["input"], csv.to_str().unwrap());
+    {
+        // Independent of Keelson's code path: the sha2 crate over the file as written.
+        use sha2::Digest as _;
+        let digest = sha2::Sha256::digest(std::fs::read(&csv).unwrap());
+        let hex: String = digest.iter().map(|b| format!("{b:02x}")).collect();
+        assert_eq!(p["inputSha256"], hex);
+        assert_eq!(hex, hex_of(&csv));
+    }
+    assert_eq!((p["periods"].as_u64(), p["factors"].as_u64(), p["market"].as_str()), (Some(100), Some(8), Some("MKT")));
+    assert!(p["configured"].as_str().unwrap().contains("--set"), "{p}");
+    assert_eq!(summary["options"]["window"], 60);
+    assert_eq!(summary["options"]["step"], 2);
+    let strategies = summary["strategies"].as_array().unwrap();
+    for s in strategies {
+        let fitted = s["id"] != "market";
+        assert_eq!(s.get("settings").is_some(), fitted, "{}", s["id"]);
+    }
+    assert_eq!(strategies[0]["settings"]["method"], "METHOD_KNS_RIDGE");
+    // Warnings counted across refits: κ at the grid edge somewhere, with counts at most the refits.
+    let counts: Vec<u64> = strategies
+        .iter()
+        .flat_map(|s| s["warnings"].as_array().cloned().unwrap_or_default())
+        .map(|w| w["refits"].as_u64().unwrap())
+        .collect();
+    assert!(!counts.is_empty() && counts.iter().all(|&c| (1..=20).contains(&c)), "{counts:?}");
+    assert!(stdout(&o).contains("warnings, "), "{}", stdout(&o));
+    // The market regressed on a set holding the market: n/a with its reason, not t = 10.
+    let own = summary["alphas"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|a| a["strategy"] == "market" && a["benchmarks"] == serde_json::json!(["market"]))
+        .expect("the market against the market");
+    assert!(own["alpha"].is_null() && own["tNeweyWest"].is_null(), "not computable: null, as in every JSON output");
+    assert!(own["note"].as_str().unwrap().contains("one of its benchmarks"), "{own}");
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
-    assert_eq!(html.matches("<svg").count(), 7, "seven charts");
+    assert!(html.contains("n/a: the strategy is one of its benchmarks"));
+    assert!(html.contains("What was run") && html.contains(&hex_of(&csv)) && html.contains("Warnings across refits"));
+    assert_eq!(html.matches("<svg").count(), 9, "nine charts");
+    assert_eq!(std::fs::read_dir(out.join("charts")).unwrap().count(), 9, "each chart also as a file");
     assert!(html.contains("Caution"));
 
     let bad = keelson(&[
@@ -392,4 +454,85 @@ fn mistakes_are_named_before_any_work() {
     let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "Mkt"]);
     assert_eq!(o.status.code(), Some(1));
     assert!(stderr(&o).contains("the columns are: MKT, "), "{}", stderr(&o));
+}
+
+/// Strict mode: a warning named by `--fail-on` exits 3 after the output is
+/// written; an unknown code is a usage error naming the closest one; a flag
+/// of another command is a usage error; a semicolon file gets a hint.
+#[test]
+fn strict_mode_and_misplaced_flags() {
+    // 30 periods of 20 factors: T < 2N raises short-window.
+    let short = file("short.csv", &window(30, 20));
+    let f = short.to_str().unwrap();
+    let base = ["fit", "--returns", f, "--market", "MKT", "--set", "method=components", "--format", "json"];
+    let o = keelson(&base);
+    assert_eq!(o.status.code(), Some(0), "a warning alone does not fail: {}", stderr(&o));
+    let plain: Value = serde_json::from_slice(&o.stdout).unwrap();
+    let codes: Vec<&str> =
+        plain["diagnostics"]["warnings"].as_array().unwrap().iter().map(|w| w["code"].as_str().unwrap()).collect();
+    assert!(codes.contains(&"short-window"), "{codes:?}");
+    for fail_on in ["short-window", "any", "return-scale,short-window"] {
+        let o = keelson(&[&base[..], &["--fail-on", fail_on]].concat());
+        assert_eq!(o.status.code(), Some(3), "--fail-on {fail_on}: {}", stderr(&o));
+        let strict: Value = serde_json::from_slice(&o.stdout).expect("the output is still written");
+        assert_eq!(strict["weights"], plain["weights"]);
+        assert!(stderr(&o).contains("short-window"), "{}", stderr(&o));
+    }
+    let o = keelson(&[&base[..], &["--fail-on", "return-scale"]].concat());
+    assert_eq!(o.status.code(), Some(0), "a code not raised does not fail: {}", stderr(&o));
+    let o = keelson(&[&base[..], &["--fail-on", "short-windw"]].concat());
+    assert_eq!(o.status.code(), Some(2));
+    assert!(
+        stderr(&o).contains("did you mean short-window?") && stderr(&o).contains("kappa-at-grid-edge"),
+        "{}",
+        stderr(&o)
+    );
+
+    // A backtest in strict mode: the report is written, then exit 3.
+    let out = std::env::temp_dir().join(format!("keelson-strict-{}", std::process::id()));
+    let hist = file("strict-history.csv", &window(80, 20));
+    let o = keelson(&[
+        "backtest",
+        "--returns",
+        hist.to_str().unwrap(),
+        "--market",
+        "MKT",
+        "--window",
+        "36",
+        "--step",
+        "22",
+        "--no-baselines",
+        "--sweep-max-k",
+        "0",
+        "--set",
+        "method=components",
+        "--fail-on",
+        "short-window",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(o.status.code(), Some(3), "{}", stderr(&o));
+    assert!(out.join("report.html").is_file() && out.join("summary.json").is_file());
+    // Off a terminal, progress comes as plain lines on standard error.
+    assert!(stderr(&o).contains("progress: "), "{}", stderr(&o));
+
+    // A flag of another command: `--previous-weights` does not apply to a backtest.
+    let prev = file("strict-prev.csv", "factor,weight\nmoss_value,0.5\n");
+    let o = keelson(&[
+        "backtest",
+        "--returns",
+        hist.to_str().unwrap(),
+        "--previous-weights",
+        prev.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(stderr(&o).contains("--previous-weights"), "{}", stderr(&o));
+
+    // A semicolon-separated file reads as one column: say so.
+    let semi = file("semi.csv", &window(30, 3).replace(',', ";"));
+    let o = keelson(&["fit", "--returns", semi.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(stderr(&o).contains("semicolons"), "{}", stderr(&o));
 }

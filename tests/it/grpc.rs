@@ -395,13 +395,21 @@ fn run_backtest_streams_progress_then_the_library_result() {
         }
         assert!(!progress.is_empty(), "progress messages");
         assert!(progress.windows(2).all(|w| w[0].0 <= w[1].0));
-        let result = result.expect("a result message");
+        let mut result = result.expect("a result message");
+        // Provenance names the request and fingerprints the history it sent.
+        let p = result.provenance.take().expect("provenance");
+        assert_eq!(p.invocation, "RunBacktest request \"bt-1\"");
+        assert_eq!(p.input_sha256, keelson::evaluate::provenance::history_sha256(&panel));
+        assert!(p.configured.contains("the request's settings over the server's defaults"), "{}", p.configured);
+        assert_eq!((p.periods, p.factors, p.keelson_version.as_str()), (120, 10, env!("CARGO_PKG_VERSION")));
         let settings = Settings::default().check().unwrap();
         let spec = keelson::evaluate::BacktestSpec { window: 60, step: 3, sweep_max_k: Some(3), ..Default::default() }
             .check(&panel, &settings)
             .unwrap();
         let local = keelson::evaluate::run(&panel, &settings, &spec, &|_| {}, &estimator::Stop::never()).unwrap();
-        let want = keelson::convert::backtest_result_to_proto(&local, "bt-1");
+        let mut want = keelson::convert::backtest_result_to_proto(&local, "bt-1");
+        // Everything but the provenance (its run time and invocation differ) is byte-identical.
+        want.provenance = None;
         assert_eq!(result.encode_to_vec(), want.encode_to_vec(), "gRPC backtest equals the library's");
         assert_eq!(result.strategies[0].name, "configured");
         server.shutdown().await;

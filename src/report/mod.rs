@@ -1,0 +1,698 @@
+//! A backtest's report: a self-contained `report.html` with inline SVG
+//! charts (also written one file each under `charts/`), `summary.json` (the
+//! `BacktestResult` message in the proto3 JSON mapping: one schema with the
+//! gRPC API) and `returns.csv` (one column per strategy id).
+
+mod charts;
+pub mod palette;
+
+use std::fmt::Write as _;
+use std::path::Path;
+
+use anyhow::Context as _;
+
+use crate::evaluate::{BacktestResult, KNS_PUBLISHED, MARKET, MODEL, StrategyResult};
+use charts::Series;
+
+fn esc(s: &str) -> String {
+    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;")
+}
+
+fn f(v: f64, digits: usize) -> String {
+    if v.is_finite() { format!("{v:.digits$}") } else { "n/a".into() }
+}
+
+/// The summary table as text (also printed by the command).
+pub fn summary_table(r: &BacktestResult) -> String {
+    let mut out = String::new();
+    let _ = writeln!(
+        out,
+        "{:<40} {:>7} {:>7} {:>6} {:>7} {:>7} {:>8} {:>7} {:>12} {:>8} {:>7}",
+        "strategy", "mean", "vol", "target", "Sharpe", "SE(NW)", "CER", "maxDD", "gross med/max", "turnover", "net SR"
+    );
+    for s in &r.strategies {
+        let _ = writeln!(
+            out,
+            "{:<40} {:>6.2}% {:>6.2}% {:>6} {:>7.2} {:>7.2} {:>7.2}% {:>6.1}% {:>5.2}/{:<6.2} {:>8.3} {:>7.2}",
+            s.name.chars().take(40).collect::<String>(),
+            100.0 * s.metrics.mean,
+            100.0 * s.metrics.volatility,
+            s.target_volatility.map_or_else(|| "-".to_owned(), |t| format!("{:.1}%", 100.0 * t)),
+            s.metrics.sharpe,
+            s.metrics.sharpe_se_nw,
+            100.0 * s.metrics.cer,
+            100.0 * s.metrics.max_drawdown,
+            s.gross_median,
+            s.gross_max,
+            s.average_turnover,
+            s.net_metrics.sharpe
+        );
+    }
+    let _ = writeln!(out, "{}", constraint_line(&r.constraints));
+    for line in warning_lines(r) {
+        let _ = writeln!(out, "{line}");
+    }
+    for line in edge_lines(r) {
+        let _ = writeln!(out, "{line}");
+    }
+    out
+}
+
+/// Strategies whose cross-validated κ or K sat at an edge of its grid in
+/// most refits: the grid, not the data, made the choice there.
+pub fn edge_lines(r: &BacktestResult) -> Vec<String> {
+    let mut out = Vec::new();
+    for s in &r.strategies {
+        for (count, what) in [
+            (s.kappa_at_edge, "κ at an end of its grid (see kappa_grid_min, kappa_grid_max)"),
+            (s.components_at_cap, "K at the top of its grid (see max_components)"),
+        ] {
+            if 2 * count > r.refits {
+                out.push(format!(
+                    "note: {}: {what} in {count} of {} refits ({:.0}%)",
+                    s.name,
+                    r.refits,
+                    100.0 * count as f64 / r.refits.max(1) as f64
+                ));
+            }
+        }
+    }
+    out
+}
+
+/// The implementation limits of the run, in one line.
+pub fn constraint_line(c: &crate::evaluate::ConstraintSet) -> String {
+    if !c.active() {
+        return format!(
+            "limits: none (model portfolios as estimated){}",
+            if c.volatility_halflife > 0.0 {
+                format!("; volatility target on an EWMA covariance, half-life {} periods", c.volatility_halflife)
+            } else {
+                String::new()
+            }
+        );
+    }
+    let on = |v: Option<f64>| v.map_or_else(|| "off".to_owned(), |x| x.to_string());
+    let l = &c.limits;
+    format!(
+        "limits for every fitted strategy: max_weight {} · max_gross {} · max_market_weight {} · max_turnover {} · cost_bps {} over {} periods{}",
+        on(l.max_weight),
+        on(l.max_gross),
+        on(l.max_market_weight),
+        on(l.max_turnover),
+        l.cost_bps,
+        c.holding_periods,
+        if c.volatility_halflife > 0.0 {
+            format!(" · volatility half-life {} periods", c.volatility_halflife)
+        } else {
+            String::new()
+        }
+    )
+}
+
+/// Every warning code each strategy's refits raised, one line per strategy:
+/// the number and share of refits.
+pub fn warning_lines(r: &BacktestResult) -> Vec<String> {
+    r.strategies
+        .iter()
+        .filter(|s| !s.warnings.is_empty())
+        .map(|s| {
+            let codes: Vec<String> = s
+                .warnings
+                .iter()
+                .map(|w| format!("{} {}/{} ({:.0}%)", w.code, w.refits, r.refits, share(w.refits, r.refits)))
+                .collect();
+            format!("warnings, {}: {}", s.name, codes.join("; "))
+        })
+        .collect()
+}
+
+fn share(count: usize, of: usize) -> f64 {
+    100.0 * count as f64 / of.max(1) as f64
+}
+
+/// Writes `report.html`, `summary.json`, `returns.csv` and `charts/*.svg` into `dir`.
+///
+/// # Errors
+/// I/O errors with the path, or a chart that could not be drawn.
+pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> {
+    std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
+    std::fs::write(dir.join("returns.csv"), returns_csv(r)).context("writing returns.csv")?;
+    std::fs::write(dir.join("summary.json"), summary_json(r)?).context("writing summary.json")?;
+    let mut all = performance_charts(r)?;
+    all.extend(latest_fit_charts(r)?);
+    all.extend(over_time_charts(r)?);
+    let chart_dir = dir.join("charts");
+    std::fs::create_dir_all(&chart_dir).with_context(|| format!("cannot create {}", chart_dir.display()))?;
+    for c in &all {
+        std::fs::write(chart_dir.join(format!("{}.svg", c.file)), &c.svg)
+            .with_context(|| format!("writing charts/{}.svg", c.file))?;
+    }
+    let mut html = header(r, title);
+    html.push_str(&provenance_section(r));
+    html.push_str(&performance_section(r));
+    html.push_str(&warning_section(r));
+    html.push_str(&comparison_section(r));
+    html.push_str(&alpha_section(r));
+    html.push_str(&pricing_section(r));
+    html.push_str("<h2>Charts</h2>");
+    for c in all {
+        let _ = write!(
+            html,
+            "<h3>{}</h3><p class=\"note\">{}</p><div class=\"chart\">{}</div>",
+            esc(c.heading),
+            esc(&c.caption),
+            c.svg
+        );
+    }
+    html.push_str("</body></html>\n");
+    std::fs::write(dir.join("report.html"), html).context("writing report.html")?;
+    Ok(())
+}
+
+/// `summary.json`: the `BacktestResult` message in the proto3 JSON mapping
+/// (lowerCamelCase names, NaN as "NaN", 64-bit integers as strings), the
+/// same schema the gRPC API streams.
+pub fn summary_json(r: &BacktestResult) -> anyhow::Result<String> {
+    let message = crate::convert::backtest_result_to_proto(r, "");
+    Ok(serde_json::to_string_pretty(&message)? + "\n")
+}
+
+/// A chart: its file stem, heading, caption and SVG.
+struct Chart {
+    file: &'static str,
+    heading: &'static str,
+    caption: String,
+    svg: String,
+}
+
+fn chart(
+    file: &'static str,
+    heading: &'static str,
+    caption: impl Into<String>,
+    res: Result<String, String>,
+) -> anyhow::Result<Chart> {
+    let svg = res.map_err(|e| anyhow::anyhow!("chart {file}: {e}"))?;
+    Ok(Chart { file, heading, caption: caption.into(), svg })
+}
+
+/// returns.csv: period, then one column per strategy id, the configured method first.
+fn returns_csv(r: &BacktestResult) -> String {
+    let mut csv = String::from("period");
+    for s in &r.strategies {
+        csv.push(',');
+        csv.push_str(&s.id);
+    }
+    csv.push('\n');
+    for (i, p) in r.periods.iter().enumerate() {
+        csv.push_str(&csv_field(p));
+        for s in &r.strategies {
+            let _ = write!(csv, ",{:?}", s.returns[i]);
+        }
+        csv.push('\n');
+    }
+    csv
+}
+
+/// A CSV field, quoted when it holds a comma, quote or line break (RFC 4180).
+fn csv_field(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) { format!("\"{}\"", s.replace('"', "\"\"")) } else { s.to_owned() }
+}
+
+/// A strategy's line: its colour (ember for the configured method) and width.
+fn series_of<T>(index: usize, s: &StrategyResult, values: Vec<T>) -> Series<T> {
+    Series { name: s.name.clone(), values, colour: palette::series(index), width: if index == 0 { 3 } else { 1 } }
+}
+
+/// The strategies drawn where every one would be a tangle: the configured
+/// method, its model portfolio, the best other strategy by net Sharpe ratio,
+/// the published KNS ridge, equal weight and the market.
+fn key_strategies(r: &BacktestResult) -> Vec<usize> {
+    let mut keep = vec![0];
+    let best = (1..r.strategies.len())
+        .filter(|&i| r.strategies[i].net_metrics.sharpe.is_finite())
+        .max_by(|&a, &b| r.strategies[a].net_metrics.sharpe.total_cmp(&r.strategies[b].net_metrics.sharpe));
+    for (i, s) in r.strategies.iter().enumerate().skip(1) {
+        let wanted = [MODEL, KNS_PUBLISHED, "equal weight", MARKET].contains(&s.name.as_str()) || Some(i) == best;
+        if wanted {
+            keep.push(i);
+        }
+    }
+    keep
+}
+
+/// Compounded wealth of one unit, period by period.
+fn wealth(returns: &[f64]) -> Vec<f64> {
+    let mut w = 1.0;
+    returns
+        .iter()
+        .map(|x| {
+            w *= 1.0 + x;
+            w
+        })
+        .collect()
+}
+
+/// Drawdown of compounded wealth from its running peak, in percent (≤ 0).
+fn drawdown(returns: &[f64]) -> Vec<f64> {
+    let mut peak = 1.0f64;
+    wealth(returns)
+        .into_iter()
+        .map(|w| {
+            peak = peak.max(w);
+            100.0 * (w / peak - 1.0)
+        })
+        .collect()
+}
+
+/// Annualised Sharpe ratio over the trailing `n` periods (NaN before `n`).
+fn rolling_sharpe(returns: &[f64], n: usize, periods_per_year: f64) -> Vec<f64> {
+    (0..returns.len())
+        .map(|t| {
+            if t + 1 < n {
+                return f64::NAN;
+            }
+            let w = &returns[t + 1 - n..=t];
+            periods_per_year.sqrt() * crate::evaluate::stats::sharpe(w)
+        })
+        .collect()
+}
+
+/// Trailing window of the rolling Sharpe chart, periods.
+const ROLLING: usize = 36;
+
+/// Growth of one unit, drawdowns, the rolling Sharpe ratio and the sweep.
+fn performance_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
+    let all: Vec<Series<f64>> =
+        r.strategies.iter().enumerate().map(|(i, s)| series_of(i, s, wealth(&s.returns))).collect();
+    let mut out = vec![chart(
+        "growth",
+        "Growth of one unit",
+        "Compounded out-of-sample returns (gross of costs) of every strategy on a log scale: equal vertical distances are equal percentage gains. Ember and thickest: the configured method. Strategies other than the market are scaled to their volatility target inside each window.",
+        charts::lines("Growth of one unit invested (log scale)", "wealth", &r.periods, &all, true, false),
+    )?];
+    let keys = key_strategies(r);
+    let dd: Vec<Series<f64>> =
+        keys.iter().map(|&i| series_of(i, &r.strategies[i], drawdown(&r.strategies[i].returns))).collect();
+    out.push(chart(
+        "drawdown",
+        "Drawdowns",
+        "Loss of compounded wealth from its previous peak, in percent, for the configured method and reference strategies.",
+        charts::lines("Drawdown from the running peak (%)", "drawdown, %", &r.periods, &dd, false, false),
+    )?);
+    if r.periods.len() > ROLLING {
+        let p = f64::from(r.periods_per_year);
+        let rs: Vec<Series<f64>> = keys
+            .iter()
+            .map(|&i| series_of(i, &r.strategies[i], rolling_sharpe(&r.strategies[i].returns, ROLLING, p)))
+            .collect();
+        out.push(chart(
+            "rolling-sharpe",
+            "Rolling Sharpe ratio",
+            format!("Annualised Sharpe ratio over the trailing {ROLLING} periods: how steady the edge was, not only how large."),
+            charts::lines(&format!("Sharpe ratio over the trailing {ROLLING} periods"), "annualised Sharpe ratio", &r.periods, &rs, false, true),
+        )?);
+    }
+    if !r.sweep.is_empty() {
+        let configured = r.strategies.first().and_then(|s| s.settings.as_ref()).map(|s| s.scaling);
+        let mut by_scaling: Vec<Series<(f64, f64)>> = Vec::new();
+        for p in &r.sweep {
+            let name = p.scaling.to_string();
+            match by_scaling.iter_mut().find(|s| s.name == name) {
+                Some(s) => s.values.push((p.k as f64, p.sharpe)),
+                None => {
+                    let own = Some(p.scaling) == configured;
+                    by_scaling.push(Series {
+                        name,
+                        values: vec![(p.k as f64, p.sharpe)],
+                        colour: if own { palette::EMBER } else { palette::series(1 + by_scaling.len()) },
+                        width: if own { 3 } else { 1 },
+                    });
+                }
+            }
+        }
+        out.push(chart(
+            "sharpe-by-k",
+            "Out-of-sample Sharpe ratio against K",
+            "Annualised out-of-sample Sharpe ratio with a fixed number of components K (κ as configured), one line per scaling; the configured scaling in ember: how many components a scaling needs to get near its best.",
+            charts::xy("OOS Sharpe ratio against the number of components", "components K", "annualised Sharpe ratio", &by_scaling),
+        )?);
+    }
+    Ok(out)
+}
+
+/// The latest window's CV surface and weights.
+fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
+    let mut out = Vec::new();
+    let Some(ws) = &r.last_fit else { return Ok(out) };
+    if let Some(s) = &ws.diagnostics.cv_surface
+        && !s.components.is_empty()
+        && !s.kappas.is_empty()
+    {
+        let d = &ws.diagnostics;
+        let row = s.components.iter().position(|&k| k == d.num_components);
+        let col = s
+            .kappas
+            .iter()
+            .enumerate()
+            .min_by(|a, b| (a.1.ln() - d.kappa.ln()).abs().total_cmp(&(b.1.ln() - d.kappa.ln()).abs()))
+            .map(|(c, _)| c);
+        out.push(chart(
+            "cv-surface",
+            "Cross-validation surface",
+            format!(
+                "Mean held-out {} of every (K, κ) pair in the latest window's {}-fold cross-validation, darker is better; the outlined cell is the choice (K = {}, κ = {:.3}), ties going to fewer components and more shrinkage.",
+                s.criterion, s.folds, d.num_components, d.kappa
+            ),
+            charts::surface("Cross-validation surface of the latest window", &s.components, &s.kappas, &s.scores, row.zip(col)),
+        )?);
+    }
+    let implemented = ws.diagnostics.implementation.is_some();
+    let mut rows: Vec<(String, f64, Option<f64>)> = ws
+        .factors
+        .iter()
+        .filter(|f| f.weight != 0.0 || f.model_weight != 0.0)
+        .map(|f| (f.name.clone(), f.weight, implemented.then_some(f.model_weight)))
+        .collect();
+    if ws.market_weight != 0.0 || ws.model_market_weight != 0.0 {
+        rows.push(("market hedge".into(), ws.market_weight, implemented.then_some(ws.model_market_weight)));
+    }
+    rows.sort_by(|a, b| b.1.total_cmp(&a.1));
+    out.push(chart(
+        "weights",
+        "Latest weights",
+        format!(
+            "Weights to hold after the latest window, configured method, largest long at the top (blue long, ember short){}; factors with zero weight are left out.",
+            if implemented { "; the black tick is the model portfolio's weight before limits and costs" } else { "" }
+        ),
+        charts::weight_bars("Weights of the latest window (configured method)", &rows),
+    )?);
+    Ok(out)
+}
+
+/// K and κ at each refit as small multiples, and concentration over time.
+fn over_time_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
+    let mut out = Vec::new();
+    let fitted: Vec<usize> =
+        (0..r.strategies.len()).filter(|&i| r.strategies[i].chosen_k.iter().any(|&k| k > 0)).take(8).collect();
+    let Some(&first) = fitted.first() else { return Ok(out) };
+    let refit_labels: Vec<String> = (0..r.strategies[first].chosen_k.len())
+        .map(|d| r.periods.get(d * r.spec.step).cloned().unwrap_or_default())
+        .collect();
+    let ks: Vec<Series<f64>> = fitted
+        .iter()
+        .map(|&i| series_of(i, &r.strategies[i], r.strategies[i].chosen_k.iter().map(|&k| k as f64).collect()))
+        .collect();
+    out.push(chart(
+        "components-over-time",
+        "Components chosen over time",
+        "Number of components K each fitted strategy chose at each refit, one panel per strategy on a shared scale (the configured method first, in ember); a value holds until the next refit.",
+        charts::small_multiples("K chosen at each refit", "K", &refit_labels, &ks, false),
+    )?);
+    let kappas: Vec<Series<f64>> =
+        fitted.iter().map(|&i| series_of(i, &r.strategies[i], r.strategies[i].chosen_kappa.clone())).collect();
+    out.push(chart(
+        "kappa-over-time",
+        "Shrinkage chosen over time",
+        "Annualised κ chosen at each refit (log scale, shared across panels): smaller κ means more shrinkage. A line pinned to the top or bottom of its panel is a choice at the edge of the grid.",
+        charts::small_multiples("κ chosen at each refit (annualised, log scale)", "κ", &refit_labels, &kappas, true),
+    )?);
+    let share: Vec<Series<f64>> = key_strategies(r)
+        .into_iter()
+        .filter(|&i| r.strategies[i].name != MARKET)
+        .map(|i| series_of(i, &r.strategies[i], r.strategies[i].top_sharpe_share.iter().map(|v| 100.0 * v).collect()))
+        .collect();
+    out.push(chart(
+        "concentration",
+        "Concentration in high-Sharpe factors",
+        "Share of gross factor weight held by the 30% of factors with the highest in-window Sharpe ratio, at each refit, in percent.",
+        charts::lines("Gross weight in the top-30% Sharpe factors (%)", "share of gross weight, %", &refit_labels, &share, false, false),
+    )?);
+    Ok(out)
+}
+
+/// What was run: build, time, invocation, input and fingerprint, span,
+/// options, limits, what "configured" means and every strategy's settings.
+fn provenance_section(r: &BacktestResult) -> String {
+    let p = &r.provenance;
+    let mut html = String::from("<h2>What was run</h2><table class=\"kv\">");
+    let spec = &r.spec;
+    let sets: Vec<String> = spec.benchmark_sets.iter().map(|s| s.join(" + ")).collect();
+    let rows: Vec<(&str, String)> = vec![
+        ("Keelson", format!("{} ({})", p.keelson_version, p.estimator_version)),
+        ("run at (UTC)", p.run_time.clone()),
+        ("invocation", p.invocation.clone()),
+        ("input", p.input.clone()),
+        ("input SHA-256", p.input_sha256.clone()),
+        (
+            "history",
+            format!(
+                "{} to {}: {} periods, {} factors{}",
+                p.first_period,
+                p.last_period,
+                p.periods,
+                p.factors,
+                p.market.as_ref().map_or_else(|| ", no market".to_owned(), |m| format!(", market column {m}"))
+            ),
+        ),
+        (
+            "backtest",
+            format!(
+                "{} window of {} periods, refit every {}, evaluation cost {} bp, CER risk aversion {}, sweep up to K = {}, {} per year",
+                if spec.expanding { "expanding" } else { "rolling" },
+                spec.window,
+                spec.step,
+                spec.cost_bps,
+                spec.cer_risk_aversion,
+                spec.sweep_max_k.unwrap_or(0),
+                r.periods_per_year
+            ),
+        ),
+        ("benchmark sets", if sets.is_empty() { "none".to_owned() } else { sets.join("; ") }),
+        ("limits", constraint_line(&r.constraints)),
+        ("configured", p.configured.clone()),
+    ];
+    for (k, v) in rows {
+        let _ = write!(html, "<tr><th>{}</th><td>{}</td></tr>", esc(k), esc(&v));
+    }
+    html.push_str("</table>");
+    html.push_str(&settings_tables(r));
+    html
+}
+
+/// The configured method's full settings, then each other strategy's
+/// differences from them.
+fn settings_tables(r: &BacktestResult) -> String {
+    let flat = |s: &crate::estimator::Settings| -> Vec<(String, String)> {
+        match serde_json::to_value(s) {
+            Ok(serde_json::Value::Object(m)) => {
+                m.into_iter().map(|(k, v)| (k, v.as_str().map_or_else(|| v.to_string(), str::to_owned))).collect()
+            }
+            _ => Vec::new(),
+        }
+    };
+    let Some(base) = r.strategies.first().and_then(|s| s.settings.as_ref()) else { return String::new() };
+    let base = flat(base);
+    let mut html = String::from("<h3>Settings of the configured method</h3><table class=\"settings\"><tr>");
+    for (i, (k, v)) in base.iter().enumerate() {
+        if i > 0 && i % 3 == 0 {
+            html.push_str("</tr><tr>");
+        }
+        let _ = write!(html, "<th>{}</th><td>{}</td>", esc(k), esc(v));
+    }
+    html.push_str("</tr></table><h3>Every other strategy</h3><table class=\"kv\"><tr><th>strategy</th><th>id</th><th>differs from configured in</th></tr>");
+    for s in r.strategies.iter().skip(1) {
+        let diff = match &s.settings {
+            None => "no fit: holds the market".to_owned(),
+            Some(own) => {
+                let changed: Vec<String> = flat(own)
+                    .into_iter()
+                    .filter(|(k, v)| base.iter().find(|(bk, _)| bk == k).is_none_or(|(_, bv)| bv != v))
+                    .map(|(k, v)| format!("{k} = {v}"))
+                    .collect();
+                if changed.is_empty() { "nothing".to_owned() } else { changed.join(", ") }
+            }
+        };
+        let _ = write!(
+            html,
+            "<tr><td>{}</td><td><code>{}</code></td><td>{}</td></tr>",
+            esc(&s.name),
+            esc(&s.id),
+            esc(&diff)
+        );
+    }
+    html.push_str("</table>");
+    html
+}
+
+/// Every warning code per strategy: refits that raised it and their share.
+fn warning_section(r: &BacktestResult) -> String {
+    let mut html = String::from("<h2>Warnings across refits</h2>");
+    if r.strategies.iter().all(|s| s.warnings.is_empty()) {
+        html.push_str("<p>No fit raised a warning.</p>");
+        return html;
+    }
+    html.push_str("<table><tr><th>strategy</th><th>warning code</th><th>refits</th><th>share</th></tr>");
+    for s in &r.strategies {
+        for w in &s.warnings {
+            let _ = write!(
+                html,
+                "<tr><td>{}</td><td><code>{}</code></td><td>{} of {}</td><td>{:.0}%</td></tr>",
+                esc(&s.name),
+                esc(&w.code),
+                w.refits,
+                r.refits,
+                share(w.refits, r.refits)
+            );
+        }
+    }
+    html.push_str("</table>");
+    for line in edge_lines(r) {
+        let _ = write!(html, "<p class=\"note\">{}</p>", esc(&line));
+    }
+    html
+}
+
+/// The page head, the run's description and the caution.
+fn header(r: &BacktestResult, title: &str) -> String {
+    let mut html = String::new();
+    let _ = write!(
+        html,
+        "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{t}</title><style>\
+         body{{font-family:'DejaVu Sans',Verdana,sans-serif;max-width:940px;margin:0 auto 3em;color:#1e1e1e;background:#fbfaf6}}\
+         h1{{background:#1b3a6b;color:#fbfaf6;padding:14px 18px;font-size:22px;margin:0 0 1em;border-bottom:5px solid #bc3d16}}\
+         h2{{color:#1b3a6b;border-bottom:1px solid #c9c3b3;padding-bottom:3px;margin-top:1.8em}}h3{{color:#3c3c3c;font-size:15px}}\
+         table{{border-collapse:collapse;font-size:12.5px;background:#fff}}td,th{{border:1px solid #d8d3c4;padding:3px 7px;text-align:right}}\
+         th{{background:#f1ede2;font-weight:600}}th:first-child,td:first-child{{text-align:left}}\
+         table.kv th,table.kv td,table.settings th,table.settings td{{text-align:left}}\
+         tr.configured td{{background:#fbe9e2;font-weight:600}}td.na{{color:#7a7a7a}}\
+         .note{{color:#555;font-size:12.5px}}.chart{{background:#fff;border:1px solid #e3ded0;margin-bottom:1em}}\
+         .caution{{background:#fdf3e1;border-left:5px solid #bc3d16;padding:8px 12px}}</style></head><body><h1>{t}</h1>",
+        t = esc(title)
+    );
+    let first = r.periods.first().cloned().unwrap_or_default();
+    let last = r.periods.last().cloned().unwrap_or_default();
+    let _ = write!(
+        html,
+        "<p>{} out-of-sample periods ({} to {}), {} refits, {} window of {} periods, refit every {} period(s), \
+         costs {} bp of turnover, CER risk aversion {}, Newey–West lag {}.</p>",
+        r.periods.len(),
+        esc(&first),
+        esc(&last),
+        r.refits,
+        if r.spec.expanding { "expanding" } else { "rolling" },
+        r.spec.window,
+        r.spec.step,
+        r.spec.cost_bps,
+        r.spec.cer_risk_aversion,
+        r.nw_lag
+    );
+    html.push_str("<p class=\"caution\">Caution: a backtest is one path of past data. Out-of-sample results carry estimation error, depend on the period and on the configurations tried (see the deflated Sharpe ratio), and do not predict future returns. Validate before live use and apply your own risk and compliance process.</p>");
+    html
+}
+
+fn performance_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
+    let _ = write!(html, "<h2>Performance</h2><p>{}</p>", esc(&constraint_line(&r.constraints)));
+    html.push_str("<table><tr><th>strategy</th><th>mean</th><th>vol</th><th>vol target</th><th>Sharpe</th><th>SE iid</th><th>SE NW</th><th>CER</th><th>max DD</th><th>gross median</th><th>gross max</th><th>turnover</th><th>net Sharpe</th></tr>");
+    for s in &r.strategies {
+        let m = &s.metrics;
+        let _ = write!(
+            html,
+            "<tr{}><td>{}</td><td>{}%</td><td>{}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}%</td><td>{}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            if s.id == crate::evaluate::CONFIGURED { " class=\"configured\"" } else { "" },
+            esc(&s.name),
+            f(100.0 * m.mean, 2),
+            f(100.0 * m.volatility, 2),
+            s.target_volatility.map_or_else(|| "–".to_owned(), |t| format!("{}%", f(100.0 * t, 1))),
+            f(m.sharpe, 2),
+            f(m.sharpe_se_iid, 2),
+            f(m.sharpe_se_nw, 2),
+            f(100.0 * m.cer, 2),
+            f(100.0 * m.max_drawdown, 1),
+            f(s.gross_median, 2),
+            f(s.gross_max, 2),
+            f(s.average_turnover, 3),
+            f(s.net_metrics.sharpe, 2)
+        );
+    }
+    html.push_str("</table><p class=\"note\">Annualised; Sharpe standard errors after Lo (2002), iid and Newey–West; CER = P·(mean − γ/2·var); vol is realised, vol target the normalisation's; gross Σ|w| + |w_m| per refit (multiples of NAV); turnover Σ|Δw| + |Δw_m| per refit; net of linear costs at the backtest's evaluation cost.</p>");
+    html
+}
+
+fn comparison_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
+    html.push_str("<h2>Is the configured method better?</h2><table><tr><th>against</th><th>ΔSharpe</th><th>z (JKM)</th><th>p-value</th></tr>");
+    for c in &r.comparisons {
+        let _ = write!(
+            html,
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            esc(&c.against),
+            f(c.test.difference, 2),
+            f(c.test.z, 2),
+            f(c.test.p_value, 3)
+        );
+    }
+    let _ = write!(
+        html,
+        "</table><p>Jobson–Korkie test with Memmel's correction. Probabilistic Sharpe ratio (against 0): {}. \
+         Deflated Sharpe ratio over {} configurations tried: {}.</p>",
+        f(r.psr, 3),
+        r.trials,
+        f(r.dsr, 3)
+    );
+    html
+}
+
+fn alpha_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
+    if !r.alphas.is_empty() {
+        html.push_str("<h2>Alphas against benchmarks</h2><table><tr><th>strategy</th><th>benchmarks</th><th>alpha (ann.)</th><th>t (NW)</th><th>t (robust)</th><th>R²</th></tr>");
+        for a in &r.alphas {
+            match &a.note {
+                Some(note) => {
+                    let _ = write!(
+                        html,
+                        "<tr><td>{}</td><td>{}</td><td class=\"na\" colspan=\"3\">n/a: {}</td><td>{}</td></tr>",
+                        esc(&a.strategy),
+                        esc(&a.benchmarks.join(" + ")),
+                        esc(note),
+                        f(a.r2, 3)
+                    );
+                }
+                None => {
+                    let _ = write!(
+                        html,
+                        "<tr><td>{}</td><td>{}</td><td>{}%</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                        esc(&a.strategy),
+                        esc(&a.benchmarks.join(" + ")),
+                        f(100.0 * a.alpha, 2),
+                        f(a.t_nw, 2),
+                        f(a.t_robust, 2),
+                        f(a.r2, 3)
+                    );
+                }
+            }
+        }
+        html.push_str("</table><p class=\"note\">Time-series regressions of each strategy's out-of-sample return on the benchmarks; a regression whose R² is 1 to within 1e-10, or whose strategy is one of its benchmarks, has no residual to test and shows n/a.</p>");
+    }
+    html
+}
+
+fn pricing_section(r: &BacktestResult) -> String {
+    let mut html = String::new();
+    if let Some(p) = &r.pricing {
+        let _ = write!(
+            html,
+            "<h2>Pricing test</h2><p>{} factors regressed on the out-of-sample returns of the configured method's first {} component(s){}: \
+             {} with |t (NW)| &gt; 1.96; GRS statistic {} (p = {}).</p>",
+            p.assets,
+            p.k,
+            if r.strategies.iter().any(|s| s.name == MARKET) { " and the market" } else { "" },
+            p.significant,
+            p.grs.as_ref().map_or("n/a".into(), |g| f(g.statistic, 3)),
+            p.grs.as_ref().map_or("n/a".into(), |g| f(g.p_value, 4)),
+        );
+    }
+    html
+}
