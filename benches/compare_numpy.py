@@ -9,21 +9,33 @@ fold, weights, normalisation and the diagnostics the Rust fit also computes
 (risk contributions, condition number). It is not the reference
 implementation of tests/reference, which favours clarity over speed.
 
+A fair reference: OPENBLAS_CORETYPE and OPENBLAS_L2_SIZE, which this
+machine's environment sets and which slow a current numpy, are removed for
+this process (it re-executes itself without them before numpy loads); the
+BLAS, its kernel and its thread count are printed (threadpoolctl); and numpy
+gets the same number of threads as Keelson (--threads, default every core).
+
 Usage:
-    python benches/compare_numpy.py [--reps 21] [--sizes 50x120,250x120,...]
+    python benches/compare_numpy.py [--reps 21] [--threads N] [--sizes 50x120,250x120,...]
 Builds `cargo build --release --example fit_timing` first if needed.
 """
 
-import argparse
-import json
-import math
 import os
-import subprocess
 import sys
-import tempfile
-import time
 
-import numpy as np
+_SLOW_ENV = ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE")
+if any(k in os.environ for k in _SLOW_ENV):
+    os.execve(sys.executable, [sys.executable] + sys.argv, {k: v for k, v in os.environ.items() if k not in _SLOW_ENV})
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+import math  # noqa: E402
+import subprocess  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+
+import numpy as np  # noqa: E402
+from threadpoolctl import threadpool_info, threadpool_limits  # noqa: E402
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -124,8 +136,15 @@ def time_it(f, reps):
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--reps", type=int, default=21)
-    ap.add_argument("--sizes", default="25x120,50x120,100x120,250x120,1000x120,2000x120,50x600,250x600")
+    ap.add_argument("--sizes", default="25x120,50x120,100x120,250x120,1000x120,2000x120,50x600,250x600,1000x600,2000x600")
+    ap.add_argument("--threads", type=int, default=os.cpu_count() or 1)
     args = ap.parse_args()
+    threadpool_limits(args.threads)
+    for pool in threadpool_info():
+        print(f"numpy BLAS: {pool.get('internal_api')} {pool.get('version')}, kernel {pool.get('architecture')}, "
+              f"{pool.get('num_threads')} thread(s) ({pool.get('filepath')})")
+    print(f"environment: OPENBLAS_CORETYPE={os.environ.get('OPENBLAS_CORETYPE')}, "
+          f"OPENBLAS_L2_SIZE={os.environ.get('OPENBLAS_L2_SIZE')}; Keelson threads {args.threads}")
     sizes = [tuple(int(v) for v in s.split("x")) for s in args.sizes.split(",")]
     binary = os.path.join(ROOT, "target", "release", "examples", "fit_timing")
     subprocess.run(["cargo", "build", "--release", "--quiet", "--example", "fit_timing"], cwd=ROOT, check=True)
@@ -137,7 +156,8 @@ def main():
         write_csv(path, R, m)
         files.append(path)
         panels.append((R, m))
-    out = subprocess.run([binary, str(args.reps)] + files, check=True, capture_output=True, text=True).stdout
+    out = subprocess.run([binary, str(args.reps), str(args.threads)] + files, check=True, capture_output=True,
+                         text=True).stdout
     rust = [json.loads(line) for line in out.splitlines()]
     kappas = list(np.logspace(-2, 1, 40))
     print(f"numpy {np.__version__}; one 50x50 eigensolve in faer: {rust[0]['eigensolve_s'] * 1e6:.0f} us")

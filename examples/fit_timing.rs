@@ -3,8 +3,10 @@
 //! implementation on the same files.
 //!
 //! ```sh
-//! cargo run --release --example fit_timing -- REPS FILE.csv [FILE.csv...]
+//! cargo run --release --example fit_timing -- REPS THREADS FILE.csv [FILE.csv...]
 //! ```
+//! THREADS is the fit's thread count (`FitOptions::threads`: folds, and the
+//! kernels of large fits).
 //! Prints one JSON object per file: median seconds of the fixed (K = 5,
 //! κ = 1) fit with and without the held-out check, of the cross-validated
 //! (defaults) fit, and of one 50×50 eigendecomposition.
@@ -12,7 +14,7 @@
 use std::time::Instant;
 
 use faer::Mat;
-use keelson::estimator::{self, Choice, Method, Settings};
+use keelson::estimator::{self, Choice, FitOptions, Method, Settings};
 
 fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(f64::total_cmp);
@@ -35,6 +37,8 @@ fn time(reps: usize, mut f: impl FnMut()) -> f64 {
 fn main() -> anyhow::Result<()> {
     let mut args = std::env::args().skip(1);
     let reps: usize = args.next().unwrap_or_else(|| "21".into()).parse()?;
+    let threads: usize = args.next().unwrap_or_else(|| "1".into()).parse()?;
+    let opts = FitOptions { threads, ..FitOptions::default() };
     let a = Mat::from_fn(50, 50, |i, j| 1.0 / (1.0 + (i as f64 - j as f64).abs()) + if i == j { 2.0 } else { 0.0 });
     let eig = time(reps.max(51), || {
         std::hint::black_box(a.self_adjoint_eigen(faer::Side::Lower).expect("converges"));
@@ -59,13 +63,13 @@ fn main() -> anyhow::Result<()> {
         let text = std::fs::read_to_string(&path)?;
         let panel = keelson::panel_csv::parse_returns(&text, &path, Some("MKT"))?.panel;
         let tf = time(reps, || {
-            std::hint::black_box(estimator::fit(&panel, &fixed).expect("fits"));
+            std::hint::black_box(estimator::fit_with(&panel, &fixed, &opts).expect("fits"));
         });
         let tb = time(reps, || {
-            std::hint::black_box(estimator::fit(&panel, &bare).expect("fits"));
+            std::hint::black_box(estimator::fit_with(&panel, &bare, &opts).expect("fits"));
         });
         let tc = time(reps, || {
-            std::hint::black_box(estimator::fit(&panel, &cv).expect("fits"));
+            std::hint::black_box(estimator::fit_with(&panel, &cv, &opts).expect("fits"));
         });
         println!(
             "{{\"file\":{path:?},\"factors\":{},\"periods\":{},\"fixed_s\":{tf:e},\"bare_s\":{tb:e},\"cv_s\":{tc:e},\"eigensolve_s\":{eig:e}}}",

@@ -41,6 +41,8 @@ pub struct ComponentBasis {
     pub sigma_f: Mat<f64>,
     /// Whether the Gram path was used.
     pub used_gram: bool,
+    /// The scaling it was computed with.
+    pub scaling: Scaling,
 }
 
 /// Per-period Sharpe ratios shrunk toward their cross-sectional mean (SPEC §11):
@@ -179,7 +181,7 @@ impl ComponentBasis {
             s
         };
 
-        Ok(ComponentBasis { scale, eigenvalues, trace, rank, q, v, mu_f, sigma_f, used_gram })
+        Ok(ComponentBasis { scale, eigenvalues, trace, rank, q, v, mu_f, sigma_f, used_gram, scaling })
     }
 
     /// Number of components held.

@@ -264,7 +264,15 @@ pub(crate) fn cross_validate(
         Ok((out, limit_hit))
     };
 
-    let per_fold: Vec<Result<(Vec<f64>, bool), EstimateError>> = if threads <= 1 || folds.len() == 1 {
+    // Scoring a fold costs about Σ_K K²·(κ values) multiply–adds (plus the
+    // path's solves); below the kernels' parallel threshold, spawning threads
+    // measured slower than scoring the folds in turn.
+    let kmax = ks.iter().copied().max().unwrap_or(0) as f64;
+    let work = kmax.powi(3) / 3.0 * kappas.len() as f64;
+    let per_fold: Vec<Result<(Vec<f64>, bool), EstimateError>> = if threads <= 1
+        || folds.len() == 1
+        || work < super::dense::PARALLEL_FLOPS
+    {
         folds.iter().map(score_fold).collect()
     } else {
         std::thread::scope(|scope| {

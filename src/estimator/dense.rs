@@ -1,7 +1,11 @@
-//! Thin wrappers over faer's low-level kernels with the parallelism fixed to
-//! `Par::Seq`, so that every result is bitwise reproducible whatever the
-//! machine's thread count. Parallelism in the estimator is across independent
-//! tasks (cross-validation folds), never inside a reduction.
+//! Thin wrappers over faer's low-level kernels. Small kernels always run
+//! sequentially (`Par::Seq`): every fit up to a few hundred factors is
+//! bitwise reproducible whatever the thread count, and parallelism goes
+//! across independent tasks (folds, backtest dates, bootstrap draws). A
+//! kernel of at least [`PARALLEL_FLOPS`] inside a fit that was given more
+//! than one thread ([`with_threads`]) uses faer's rayon parallelism instead:
+//! its reductions may then be split differently, so such results may differ
+//! from the sequential ones in the last bits (tested to 1e-12 relative).
 
 use faer::diag::Diag;
 use faer::dyn_stack::{MemBuffer, MemStack};
@@ -12,33 +16,74 @@ use faer::{Accum, Mat, MatRef, Par};
 
 use super::error::EstimateError;
 
-const PAR: Par = Par::Seq;
+/// Work (multiply–adds) from which a kernel runs in parallel when the fit
+/// has threads to spare: about a 120 × 120 × 300 product, or a 160 × 160
+/// eigendecomposition. Below it, splitting costs more than it saves.
+pub const PARALLEL_FLOPS: f64 = 4.0e6;
+
+thread_local! {
+    /// Threads the kernels of the current fit may use (1 = sequential).
+    static THREADS: std::cell::Cell<usize> = const { std::cell::Cell::new(1) };
+}
+
+/// Runs `f` with the kernels of this thread allowed `threads` threads; the
+/// previous setting is restored after (also when `f` unwinds).
+pub(crate) fn with_threads<R>(threads: usize, f: impl FnOnce() -> R) -> R {
+    struct Restore(usize);
+    impl Drop for Restore {
+        fn drop(&mut self) {
+            THREADS.with(|t| t.set(self.0));
+        }
+    }
+    let _restore = Restore(THREADS.with(|t| t.replace(threads.max(1))));
+    f()
+}
+
+/// The parallelism of a kernel of `flops` multiply–adds.
+fn par(flops: f64) -> Par {
+    let threads = THREADS.with(std::cell::Cell::get);
+    if threads > 1 && flops >= PARALLEL_FLOPS { Par::rayon(threads) } else { Par::Seq }
+}
+
+/// The parallelism of a product of an m × k by a k × n matrix.
+fn par_mul(m: usize, k: usize, n: usize) -> Par {
+    par(m as f64 * k as f64 * n as f64)
+}
+
+/// The parallelism of an n × n symmetric decomposition (≈ n³ work).
+fn par_decomp(n: usize) -> Par {
+    par((n as f64).powi(3))
+}
 
 /// A'A.
 pub(crate) fn gram_tn(a: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.ncols(), a.ncols());
-    matmul(out.as_mut(), Accum::Replace, a.transpose(), a, 1.0, PAR);
+    let par = par_mul(a.ncols(), a.nrows(), a.ncols());
+    matmul(out.as_mut(), Accum::Replace, a.transpose(), a, 1.0, par);
     out
 }
 
 /// AA'.
 pub(crate) fn gram_nt(a: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.nrows(), a.nrows());
-    matmul(out.as_mut(), Accum::Replace, a, a.transpose(), 1.0, PAR);
+    let par = par_mul(a.nrows(), a.ncols(), a.nrows());
+    matmul(out.as_mut(), Accum::Replace, a, a.transpose(), 1.0, par);
     out
 }
 
 /// A B.
 pub(crate) fn mul(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.nrows(), b.ncols());
-    matmul(out.as_mut(), Accum::Replace, a, b, 1.0, PAR);
+    let par = par_mul(a.nrows(), a.ncols(), b.ncols());
+    matmul(out.as_mut(), Accum::Replace, a, b, 1.0, par);
     out
 }
 
 /// A' B.
 pub(crate) fn mul_tn(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.ncols(), b.ncols());
-    matmul(out.as_mut(), Accum::Replace, a.transpose(), b, 1.0, PAR);
+    let par = par_mul(a.ncols(), a.nrows(), b.ncols());
+    matmul(out.as_mut(), Accum::Replace, a.transpose(), b, 1.0, par);
     out
 }
 
@@ -49,9 +94,10 @@ pub(crate) fn sym_eigen_desc(a: MatRef<'_, f64>, stage: &'static str) -> Result<
     let n = a.nrows();
     let mut s = Diag::<f64>::zeros(n);
     let mut u = Mat::<f64>::zeros(n, n);
-    let req = evd::self_adjoint_evd_scratch::<f64>(n, ComputeEigenvectors::Yes, PAR, Default::default());
+    let par = par_decomp(n);
+    let req = evd::self_adjoint_evd_scratch::<f64>(n, ComputeEigenvectors::Yes, par, Default::default());
     let mut buf = MemBuffer::new(req);
-    evd::self_adjoint_evd(a, s.as_mut(), Some(u.as_mut()), PAR, MemStack::new(&mut buf), Default::default())
+    evd::self_adjoint_evd(a, s.as_mut(), Some(u.as_mut()), par, MemStack::new(&mut buf), Default::default())
         .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
     let vals: Vec<f64> = (0..n).map(|i| s[i]).collect();
     check_finite(&vals, stage)?;
@@ -76,12 +122,13 @@ pub(crate) fn sym_extreme_eigenvalues(a: MatRef<'_, f64>, stage: &'static str) -
     if n > 1 {
         let bs = faer::linalg::qr::no_pivoting::factor::recommended_block_size::<f64>(n, n);
         let mut householder = Mat::<f64>::zeros(bs, n - 1);
-        let req = evd::tridiag::tridiag_in_place_scratch::<f64>(n, PAR, Default::default());
+        let par = par_decomp(n);
+        let req = evd::tridiag::tridiag_in_place_scratch::<f64>(n, par, Default::default());
         let mut buf = MemBuffer::new(req);
         evd::tridiag::tridiag_in_place(
             t.as_mut(),
             householder.as_mut(),
-            PAR,
+            par,
             MemStack::new(&mut buf),
             Default::default(),
         );
@@ -141,9 +188,10 @@ pub(crate) fn thin_svd(a: MatRef<'_, f64>, stage: &'static str) -> Result<Svd, E
     let mut s = Diag::<f64>::zeros(k);
     let mut u = Mat::<f64>::zeros(m, k);
     let mut v = Mat::<f64>::zeros(n, k);
-    let req = svd::svd_scratch::<f64>(m, n, ComputeSvdVectors::Thin, ComputeSvdVectors::Thin, PAR, Default::default());
+    let par = par_decomp(k);
+    let req = svd::svd_scratch::<f64>(m, n, ComputeSvdVectors::Thin, ComputeSvdVectors::Thin, par, Default::default());
     let mut buf = MemBuffer::new(req);
-    svd::svd(a, s.as_mut(), Some(u.as_mut()), Some(v.as_mut()), PAR, MemStack::new(&mut buf), Default::default())
+    svd::svd(a, s.as_mut(), Some(u.as_mut()), Some(v.as_mut()), par, MemStack::new(&mut buf), Default::default())
         .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
     let vals: Vec<f64> = (0..k).map(|i| s[i]).collect();
     check_finite(&vals, stage)?;

@@ -23,6 +23,7 @@ pub mod window;
 
 pub use basis::{ComponentBasis, EigenPath};
 pub use cv::{CrossValidation, CvSurface};
+pub use dense::PARALLEL_FLOPS;
 pub use desk::{BindingConstraint, Implementation, Limits};
 pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use moments::Moments;
@@ -48,7 +49,8 @@ pub const ESTIMATOR_VERSION: &str = concat!("keelson-estimator/", env!("CARGO_PK
 /// How a fit runs (not what it computes: results do not depend on these).
 #[derive(Clone, Debug)]
 pub struct FitOptions {
-    /// Worker threads for independent cross-validation folds (1 = sequential).
+    /// Worker threads: for independent cross-validation folds, and for the
+    /// kernels of a large fit (1 = sequential; see [`PARALLEL_FLOPS`]).
     pub threads: usize,
     /// Deadline and cancellation.
     pub stop: Stop,
@@ -100,6 +102,11 @@ pub fn fit(panel: &ReturnPanel, settings: &ValidSettings) -> Result<WeightSet, E
     fit_with(panel, settings, &FitOptions::default())
 }
 
+/// Values in a window from which its fingerprint is hashed on a thread of
+/// its own while the fit runs (when the fit has threads): about a 250 × 120
+/// window, whose SHA-256 takes as long as a few small kernels.
+const PARALLEL_HASH_VALUES: usize = 30_000;
+
 /// Fits one window.
 ///
 /// # Errors
@@ -124,7 +131,24 @@ pub fn fit_with_phases(
     options: &FitOptions,
 ) -> (Result<WeightSet, EstimateError>, PhaseTimes) {
     let mut phases = PhaseTimes::default();
-    let r = fit_phased(panel, settings, options, &mut phases);
+    // Large kernels of this fit may use its threads (see `dense`); folds and
+    // draws on worker threads stay sequential inside. With threads to spare,
+    // a large window's fingerprint is hashed on one of them meanwhile.
+    let fit =
+        |phases: &mut PhaseTimes| dense::with_threads(options.threads, || fit_phased(panel, settings, options, phases));
+    let (r, hashed) = if options.threads > 1 && panel.returns.len() >= PARALLEL_HASH_VALUES {
+        std::thread::scope(|scope| {
+            let hash = scope.spawn(|| weights::fingerprint(panel, settings.settings()));
+            let r = fit(&mut phases);
+            (r, hash.join().ok())
+        })
+    } else {
+        (fit(&mut phases), None)
+    };
+    let r = r.map(|mut ws| {
+        ws.fingerprint = hashed.unwrap_or_else(|| weights::fingerprint(panel, settings.settings()));
+        ws
+    });
     if settings.bootstrap_draws == 0 {
         return (r, phases);
     }
@@ -429,27 +453,25 @@ impl ComponentFit {
             KPolicy::All => data_cap,
         }
         .clamp(1, n);
-        let full = ComponentBasis::compute(mom, scaling, settings.rp_gamma, k_need, options.eigen_path)?;
         let market = if settings.demarket { window.market.as_deref() } else { None };
         // With K and κ both fixed the folds only feed the held-out Sharpe diagnostic.
         let fold_count = match policy {
             KPolicy::Fixed(_) if settings.kappa.fixed().is_some() && !settings.held_out_check => 0,
             _ => folds,
         };
-        let mut fold_data = Vec::with_capacity(fold_count);
-        for (i, &bounds) in fold_bounds(t, folds).iter().take(fold_count).enumerate() {
+        let bounds: Vec<(usize, usize)> = fold_bounds(t, folds).into_iter().take(fold_count).collect();
+        let one_fold = |i: usize| {
             options.stop.check()?;
-            fold_data.push(Fold::prepare(
-                window.returns.as_ref(),
-                market,
-                bounds,
-                i,
-                settings,
-                scaling,
-                k_need,
-                options.eigen_path,
-            )?);
-        }
+            Fold::prepare(window.returns.as_ref(), market, bounds[i], i, settings, scaling, k_need, options.eigen_path)
+        };
+        let full_basis = || ComponentBasis::compute(mom, scaling, settings.rp_gamma, k_need, options.eigen_path);
+        // One basis after the other: large ones use the fit's threads inside
+        // their kernels (see `dense`). Preparing small ones side by side on
+        // scoped threads measured slower on two cores than in sequence.
+        let full = full_basis();
+        let fold_data: Vec<Result<Fold, EstimateError>> = (0..fold_count).map(one_fold).collect();
+        let full = full?;
+        let fold_data: Vec<Fold> = fold_data.into_iter().collect::<Result<_, _>>()?;
         let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(full.rank);
         let allowed = data_cap.min(full.rank).min(fold_rank);
         Ok(ComponentFit { full, folds: fold_data, periods: t, factors: n, data_cap, allowed, train_min, scaling })

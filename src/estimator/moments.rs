@@ -2,8 +2,6 @@
 
 use faer::{Mat, MatRef};
 
-use super::window::ols_beta;
-
 /// Demarketed moments of one block of periods (a whole window or a training fold).
 #[derive(Clone, Debug)]
 pub struct Moments {
@@ -22,28 +20,37 @@ impl Moments {
     /// and the centred panel (SPEC §2–3).
     pub fn compute(r: MatRef<'_, f64>, market: Option<&[f64]>) -> Moments {
         let (t, n) = r.shape();
-        let beta: Vec<f64> = match market {
-            Some(m) => (0..n)
-                .map(|j| {
-                    let col: Vec<f64> = (0..t).map(|i| r[(i, j)]).collect();
-                    ols_beta(&col, m)
-                })
-                .collect(),
-            None => vec![0.0; n],
-        };
-        let mut centered = demarket(r, market, &beta);
+        let tf = t as f64;
+        let market = market.map(|m| {
+            let mean = sum(m) / tf;
+            let centred: Vec<f64> = m.iter().map(|v| v - mean).collect();
+            let ss = dot(&centred, &centred);
+            (m, centred, ss)
+        });
+        let mut beta = vec![0.0; n];
         let mut mean = vec![0.0; n];
         let mut sd = vec![0.0; n];
+        // A copy of the block (no zero fill first), then each column in place.
+        let mut centered = r.to_owned();
+        // One column at a time, each read contiguously: β = cov(r, m)/var(m)
+        // (Σ r·(m − m̄) equals Σ (r − r̄)(m − m̄)), then r − βm, its mean and
+        // the centred column. The sums run in four lanes (see `sum`).
         for j in 0..n {
-            let mu = (0..t).map(|i| centered[(i, j)]).sum::<f64>() / t as f64;
-            let mut ss = 0.0;
-            for i in 0..t {
-                let d = centered[(i, j)] - mu;
-                centered[(i, j)] = d;
-                ss += d * d;
+            let out = centered.col_mut(j).try_as_col_major_mut().map(|c| c.as_slice_mut());
+            let Some(out) = out else { continue };
+            if let Some((m, mc, m_ss)) = &market {
+                let b = dot(out, mc) / m_ss;
+                for (o, v) in out.iter_mut().zip(m.iter()) {
+                    *o -= b * v;
+                }
+                beta[j] = b;
+            }
+            let mu = sum(out) / tf;
+            for o in out.iter_mut() {
+                *o -= mu;
             }
             mean[j] = mu;
-            sd[j] = (ss / (t as f64 - 1.0)).sqrt();
+            sd[j] = (dot(out, out) / (tf - 1.0)).sqrt();
         }
         Moments { beta, mean, sd, centered }
     }
@@ -100,6 +107,37 @@ impl Moments {
         let d = t as f64 - 1.0;
         (0..n).map(|j| (0..t).map(|i| self.centered[(i, j)] * x[i]).sum::<f64>() / d).collect()
     }
+}
+
+/// Σ x in four interleaved partial sums (lanes the compiler vectorises),
+/// added pairwise at the end: a fixed order, so the result is reproducible,
+/// and about as accurate as the plain loop (Higham 2002, §4.2).
+pub(crate) fn sum(x: &[f64]) -> f64 {
+    let mut acc = [0.0f64; 4];
+    let chunks = x.chunks_exact(4);
+    let rest = chunks.remainder();
+    for c in chunks {
+        for k in 0..4 {
+            acc[k] += c[k];
+        }
+    }
+    let tail: f64 = rest.iter().sum();
+    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
+}
+
+/// Σ xᵢyᵢ in four interleaved partial sums, as [`sum`].
+pub(crate) fn dot(x: &[f64], y: &[f64]) -> f64 {
+    let n = x.len().min(y.len());
+    let (x, y) = (&x[..n], &y[..n]);
+    let mut acc = [0.0f64; 4];
+    let (xc, yc) = (x.chunks_exact(4), y.chunks_exact(4));
+    let tail: f64 = xc.remainder().iter().zip(yc.remainder()).map(|(a, b)| a * b).sum();
+    for (a, b) in xc.zip(yc) {
+        for k in 0..4 {
+            acc[k] += a[k] * b[k];
+        }
+    }
+    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
 }
 
 /// r̃ = r − m β' (a copy of `r` when there is no market).

@@ -261,7 +261,7 @@ pub(crate) fn assemble(
         Some(imp) => imp.turnover,
         None => held.turnover(w, market_weight, hedged),
     });
-    let covariance_condition_number = condition_number(mom, t, n)?;
+    let covariance_condition_number = condition_number(mom, model.as_ref(), t, n)?;
     spectrum_warnings(model.as_ref(), covariance_condition_number, t, n, &mut warnings);
 
     // Concentration diagnostics.
@@ -312,7 +312,8 @@ pub(crate) fn assemble(
         model_market_weight: scaled.market_weight,
         components,
         diagnostics,
-        fingerprint: fingerprint(panel, settings.settings()),
+        // Filled by the caller (`fit_with_phases`), which may hash beside the fit.
+        fingerprint: String::new(),
         estimator_version: super::ESTIMATOR_VERSION,
         settings: settings.settings().clone(),
     })
@@ -492,16 +493,29 @@ fn data_warnings(window: &ReturnWindow, mom: &Moments, excluded: usize, warnings
 }
 
 /// The condition number of the factor covariance (infinite when T ≤ N).
-fn condition_number(mom: &Moments, t: usize, n: usize) -> Result<f64, EstimateError> {
+fn condition_number(mom: &Moments, model: Option<&ComponentModel>, t: usize, n: usize) -> Result<f64, EstimateError> {
     if t <= n {
         // With T ≤ N the sample covariance is singular: no decomposition needed.
         return Ok(f64::INFINITY);
     }
     // The extreme eigenvalues of X'X (the ratio is the same for
     // Σ = X'X/(T−1)), accurate to about ε·cond relative, so a ratio
-    // beyond N/ε is reported as numerically singular.
-    let gram = dense::gram_tn(mom.centered.as_ref());
-    let (hi, lo) = dense::sym_extreme_eigenvalues(gram.as_ref(), "covariance condition number")?;
+    // beyond N/ε is reported as numerically singular. A covariance basis of
+    // this window on the factor path already holds all of Σ's eigenvalues
+    // (every scale is 1 there): no second decomposition.
+    let at_hand = model.map(|m| &m.basis).filter(|b| {
+        b.scaling == Scaling::Covariance
+            && !b.used_gram
+            && b.eigenvalues.len() == n
+            && b.scale.iter().all(|&s| s == 1.0)
+    });
+    let (hi, lo) = match at_hand {
+        Some(b) => (b.eigenvalues[0], b.eigenvalues[n - 1]),
+        None => {
+            let gram = dense::gram_tn(mom.centered.as_ref());
+            dense::sym_extreme_eigenvalues(gram.as_ref(), "covariance condition number")?
+        }
+    };
     Ok(if lo > hi * n as f64 * f64::EPSILON { hi / lo } else { f64::INFINITY })
 }
 
@@ -647,6 +661,20 @@ impl Previous {
     }
 }
 
+/// Feeds `values` to `h` as little-endian IEEE bits (all NaNs alike; -0.0
+/// and 0.0 stay distinct like their bits), in blocks: the same bytes as one
+/// `update` per value, without the per-call overhead.
+fn put_f64s(h: &mut Sha256, values: &[f64]) {
+    let mut block = [0u8; 8 * 512];
+    for chunk in values.chunks(512) {
+        for (v, out) in chunk.iter().zip(block.chunks_exact_mut(8)) {
+            let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
+            out.copy_from_slice(&bits.to_le_bytes());
+        }
+        h.update(&block[..8 * chunk.len()]);
+    }
+}
+
 /// Feeds the history of `panel` (shape, names, labels, returns and market as
 /// little-endian IEEE bits, all NaNs alike) to `h`: the part of a
 /// fingerprint that identifies the data.
@@ -654,11 +682,6 @@ pub(crate) fn hash_history(h: &mut Sha256, panel: &ReturnPanel) {
     let put_str = |h: &mut Sha256, s: &str| {
         h.update((s.len() as u64).to_le_bytes());
         h.update(s.as_bytes());
-    };
-    let put_f64 = |h: &mut Sha256, v: f64| {
-        // All NaNs hash alike; -0.0 and 0.0 stay distinct like their bits.
-        let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
-        h.update(bits.to_le_bytes());
     };
     h.update((panel.rows as u64).to_le_bytes());
     h.update((panel.cols as u64).to_le_bytes());
@@ -669,15 +692,11 @@ pub(crate) fn hash_history(h: &mut Sha256, panel: &ReturnPanel) {
     for l in &panel.period_labels {
         put_str(h, l);
     }
-    for &v in &panel.returns {
-        put_f64(h, v);
-    }
+    put_f64s(h, &panel.returns);
     match &panel.market {
         Some(m) => {
             h.update([1]);
-            for &v in m {
-                put_f64(h, v);
-            }
+            put_f64s(h, m);
         }
         None => h.update([0]),
     }

@@ -4,6 +4,8 @@
 
 use faer::Mat;
 
+use super::moments::{dot, sum};
+
 use super::error::{InputError, Location, truncate_for_display};
 use super::settings::{Method, MissingPolicy, ValidSettings};
 
@@ -152,9 +154,10 @@ impl ReturnWindow {
         if let Some(m) = demarket_with {
             check_market_variance(m)?;
         }
-        let used = usable_columns(panel, &candidates, demarket_with, &mut excluded);
+        let gathered = gather_columns(panel, &candidates);
+        let keep = usable_columns(&gathered, &candidates, demarket_with, &mut excluded);
         excluded.sort_by_key(|e| e.column);
-        if used.is_empty() {
+        if keep.is_empty() {
             let summary = excluded
                 .iter()
                 .take(5)
@@ -163,8 +166,16 @@ impl ReturnWindow {
                 .join(", ");
             return Err(InputError::NoUsableFactors { excluded: excluded.len(), summary });
         }
-        let cols = panel.cols;
-        let returns = Mat::from_fn(rows, used.len(), |r, j| panel.returns[r * cols + used[j]]);
+        let used: Vec<usize> = keep.iter().map(|&j| candidates[j]).collect();
+        let returns = if keep.len() == candidates.len() {
+            gathered
+        } else {
+            let mut m = Mat::<f64>::zeros(rows, keep.len());
+            for (to, &from) in keep.iter().enumerate() {
+                m.col_mut(to).copy_from(gathered.col(from));
+            }
+            m
+        };
         Ok(ReturnWindow {
             names: panel.factor_names.clone(),
             labels: panel.period_labels.clone(),
@@ -369,35 +380,63 @@ fn check_market_variance(m: &[f64]) -> Result<(), InputError> {
     Ok(())
 }
 
-/// The candidates that vary, judged on the demarketed series over the whole
+/// The `columns` of the row-major panel as a T × n column-major matrix.
+fn gather_columns(panel: &ReturnPanel, columns: &[usize]) -> Mat<f64> {
+    let cols = panel.cols;
+    // Column by column; neighbouring columns share the panel's cache lines.
+    Mat::from_fn(panel.rows, columns.len(), |r, j| panel.returns[r * cols + columns[j]])
+}
+
+/// A column of a column-major matrix as a slice.
+pub(crate) fn column(m: &Mat<f64>, j: usize) -> &[f64] {
+    m.col(j).try_as_col_major().map_or(&[], |c| c.as_slice())
+}
+
+/// The positions (into `candidates`, whose columns `gathered` holds) of the
+/// candidates that vary, judged on the demarketed series over the whole
 /// window; the others are added to `excluded`.
 fn usable_columns(
-    panel: &ReturnPanel,
+    gathered: &Mat<f64>,
     candidates: &[usize],
     demarket_with: Option<&[f64]>,
     excluded: &mut Vec<Exclusion>,
 ) -> Vec<usize> {
-    let (rows, cols) = (panel.rows, panel.cols);
-    let mut used = Vec::with_capacity(candidates.len());
-    for &c in candidates {
-        let col: Vec<f64> = (0..rows).map(|r| panel.returns[r * cols + c]).collect();
-        let rms = (col.iter().map(|x| x * x).sum::<f64>() / rows as f64).sqrt();
-        let raw_sd = sample_sd(&col);
-        if !(raw_sd > ZERO_VARIANCE_RELATIVE * rms) {
+    let rows = gathered.nrows();
+    let n = rows as f64;
+    let market = demarket_with.map(|m| {
+        let mean = sum(m) / n;
+        let centred: Vec<f64> = m.iter().map(|v| v - mean).collect();
+        let ss = dot(&centred, &centred);
+        (centred, ss)
+    });
+    let mut keep = Vec::with_capacity(candidates.len());
+    let mut dev = vec![0.0; rows];
+    for (j, &c) in candidates.iter().enumerate() {
+        let col = column(gathered, j);
+        let mean = sum(col) / n;
+        let rms = (dot(col, col) / n).sqrt();
+        for (d, x) in dev.iter_mut().zip(col) {
+            *d = x - mean;
+        }
+        let floor = ZERO_VARIANCE_RELATIVE * rms;
+        if !((dot(&dev, &dev) / (n - 1.0)).sqrt() > floor) {
             excluded.push(Exclusion { column: c, reason: ExclusionReason::ZeroVariance });
             continue;
         }
-        if let Some(m) = demarket_with {
-            let beta = ols_beta(&col, m);
-            let resid: Vec<f64> = col.iter().zip(m).map(|(r, m)| r - beta * m).collect();
-            if !(sample_sd(&resid) > ZERO_VARIANCE_RELATIVE * rms) {
+        if let Some((mc, m_ss)) = &market {
+            let beta = dot(&dev, mc) / m_ss;
+            // The residual of the OLS fit has mean zero: its sum of squares directly.
+            for (d, v) in dev.iter_mut().zip(mc) {
+                *d -= beta * v;
+            }
+            if !((dot(&dev, &dev) / (n - 1.0)).sqrt() > floor) {
                 excluded.push(Exclusion { column: c, reason: ExclusionReason::SpannedByMarket });
                 continue;
             }
         }
-        used.push(c);
+        keep.push(j);
     }
-    used
+    keep
 }
 
 fn check_labels(labels: &[String], rows: usize) -> Result<(), InputError> {
@@ -417,26 +456,6 @@ fn check_labels(labels: &[String], rows: usize) -> Result<(), InputError> {
         prev = Some((key, l));
     }
     Ok(())
-}
-
-fn sample_sd(x: &[f64]) -> f64 {
-    let n = x.len() as f64;
-    let mean = x.iter().sum::<f64>() / n;
-    (x.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1.0)).sqrt()
-}
-
-/// OLS slope of `y` on `m` with an intercept: cov(y, m)/var(m).
-pub(crate) fn ols_beta(y: &[f64], m: &[f64]) -> f64 {
-    let n = y.len() as f64;
-    let ym = y.iter().sum::<f64>() / n;
-    let mm = m.iter().sum::<f64>() / n;
-    let mut sxy = 0.0;
-    let mut sxx = 0.0;
-    for (a, b) in y.iter().zip(m) {
-        sxy += (a - ym) * (b - mm);
-        sxx += (b - mm) * (b - mm);
-    }
-    sxy / sxx
 }
 
 #[cfg(test)]

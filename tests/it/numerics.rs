@@ -132,3 +132,42 @@ fn percent_and_tiny_units_give_the_same_portfolio_and_a_warning() {
         }
     }
 }
+
+/// Large fits use the threads they are given inside their kernels (faer's
+/// rayon parallelism above `PARALLEL_FLOPS`), where a reduction may be split
+/// differently: weights, diagnostics and the fingerprint agree with the
+/// sequential fit to 1e-12 relative (the documented bound), and small fits
+/// stay bitwise identical.
+#[test]
+fn threads_inside_large_fits_change_only_the_last_bits() {
+    let opts = |threads| estimator::FitOptions { threads, ..estimator::FitOptions::default() };
+    for (n, t, kns) in [(600usize, 120usize, false), (400, 120, true), (40, 120, false)] {
+        let panel = synthetic_panel(21, t, n);
+        let s = if kns {
+            Settings::default()
+        } else {
+            Settings {
+                method: Method::Components,
+                components: Choice::Fixed(6),
+                kappa: Choice::Fixed(0.7),
+                ..Settings::default()
+            }
+        }
+        .check()
+        .unwrap();
+        let one = estimator::fit_with(&panel, &s, &opts(1)).unwrap();
+        let two = estimator::fit_with(&panel, &s, &opts(2)).unwrap();
+        assert_eq!(one.fingerprint, two.fingerprint, "{n} x {t}");
+        let scale = one.factors.iter().map(|f| f.weight.abs()).fold(0.0, f64::max);
+        for (a, b) in one.factors.iter().zip(&two.factors) {
+            let d = (a.weight - b.weight).abs();
+            if n < 100 {
+                assert_eq!(a.weight.to_bits(), b.weight.to_bits(), "{n} x {t}: small fits stay bitwise equal");
+            } else {
+                assert!(d <= 1e-12 * scale, "{n} x {t}: {} differs by {d:e} (scale {scale:e})", a.name);
+            }
+        }
+        let (c1, c2) = (one.diagnostics.cv_sharpe, two.diagnostics.cv_sharpe);
+        assert!((c1 - c2).abs() <= 1e-12 * c1.abs().max(1.0), "{n} x {t}: held-out Sharpe {c1} vs {c2}");
+    }
+}
