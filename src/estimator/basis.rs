@@ -116,7 +116,9 @@ impl ComponentBasis {
             }
         };
         let m = y.nrows();
-        let trace: f64 = (0..n).map(|j| (0..m).map(|i| y[(i, j)] * y[(i, j)]).sum::<f64>()).sum();
+        let trace: f64 = (0..n)
+            .map(|j| y.col(j).try_as_col_major().map_or(0.0, |c| super::moments::dot(c.as_slice(), c.as_slice())))
+            .sum();
         let used_gram = match path {
             EigenPath::Auto => n > m,
             EigenPath::Factors => false,

@@ -39,6 +39,26 @@ pub(crate) fn with_threads<R>(threads: usize, f: impl FnOnce() -> R) -> R {
     f()
 }
 
+/// Threads the current fit's kernels may use.
+pub(crate) fn threads() -> usize {
+    THREADS.with(std::cell::Cell::get)
+}
+
+/// Runs `f` on each of `parts` in parallel over the fit's threads when the
+/// work (`flops`) is at least [`PARALLEL_FLOPS`], else in turn; results in
+/// the order of `parts`. For column-wise work whose parts are independent,
+/// so the results are the same whatever the split.
+pub(crate) fn for_parts<P: Send, R: Send>(parts: Vec<P>, flops: f64, f: impl Fn(P) -> R + Sync) -> Vec<R> {
+    if threads() <= 1 || parts.len() <= 1 || flops < PARALLEL_FLOPS {
+        return parts.into_iter().map(f).collect();
+    }
+    std::thread::scope(|scope| {
+        let f = &f;
+        let handles: Vec<_> = parts.into_iter().map(|p| scope.spawn(move || f(p))).collect();
+        handles.into_iter().map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e))).collect()
+    })
+}
+
 /// The parallelism of a kernel of `flops` multiply–adds.
 fn par(flops: f64) -> Par {
     let threads = THREADS.with(std::cell::Cell::get);

@@ -27,30 +27,49 @@ impl Moments {
             let ss = dot(&centred, &centred);
             (m, centred, ss)
         });
-        let mut beta = vec![0.0; n];
-        let mut mean = vec![0.0; n];
-        let mut sd = vec![0.0; n];
-        // A copy of the block (no zero fill first), then each column in place.
+        // A copy of the block (no zero fill first), then each column in place:
+        // β = cov(r, m)/var(m) (Σ r·(m − m̄) equals Σ (r − r̄)(m − m̄)), then
+        // r − βm, its mean and the centred column. The sums run in four lanes
+        // (see `sum`). Columns are independent: a large block is split into
+        // column ranges over the fit's threads with the same results.
         let mut centered = r.to_owned();
-        // One column at a time, each read contiguously: β = cov(r, m)/var(m)
-        // (Σ r·(m − m̄) equals Σ (r − r̄)(m − m̄)), then r − βm, its mean and
-        // the centred column. The sums run in four lanes (see `sum`).
-        for j in 0..n {
-            let out = centered.col_mut(j).try_as_col_major_mut().map(|c| c.as_slice_mut());
-            let Some(out) = out else { continue };
+        let one_column = |out: &mut [f64]| -> (f64, f64, f64) {
+            let mut b = 0.0;
             if let Some((m, mc, m_ss)) = &market {
-                let b = dot(out, mc) / m_ss;
+                b = dot(out, mc) / m_ss;
                 for (o, v) in out.iter_mut().zip(m.iter()) {
                     *o -= b * v;
                 }
-                beta[j] = b;
             }
             let mu = sum(out) / tf;
             for o in out.iter_mut() {
                 *o -= mu;
             }
-            mean[j] = mu;
-            sd[j] = (dot(out, out) / (tf - 1.0)).sqrt();
+            (b, mu, (dot(out, out) / (tf - 1.0)).sqrt())
+        };
+        let parts = super::dense::threads().clamp(1, n.max(1));
+        let per = n.div_ceil(parts).max(1);
+        let mut ranges = Vec::with_capacity(parts);
+        let mut rest = centered.as_mut();
+        while rest.ncols() > 0 {
+            let at = per.min(rest.ncols());
+            let (head, tail) = rest.split_at_col_mut(at);
+            ranges.push(head);
+            rest = tail;
+        }
+        let stats = super::dense::for_parts(ranges, 6.0 * (t * n) as f64, |mut block| {
+            (0..block.ncols())
+                .map(|j| match block.as_mut().col_mut(j).try_as_col_major_mut() {
+                    Some(c) => one_column(c.as_slice_mut()),
+                    None => (0.0, 0.0, 0.0),
+                })
+                .collect::<Vec<_>>()
+        });
+        let (mut beta, mut mean, mut sd) = (Vec::with_capacity(n), Vec::with_capacity(n), Vec::with_capacity(n));
+        for (b, mu, s) in stats.into_iter().flatten() {
+            beta.push(b);
+            mean.push(mu);
+            sd.push(s);
         }
         Moments { beta, mean, sd, centered }
     }
@@ -81,11 +100,16 @@ impl Moments {
             if wj == 0.0 {
                 continue;
             }
-            for (i, o) in out.iter_mut().enumerate() {
-                *o += self.centered[(i, j)] * wj;
+            for (o, x) in out.iter_mut().zip(self.column(j)) {
+                *o += x * wj;
             }
         }
         out
+    }
+
+    /// Column `j` of the centred panel.
+    pub fn column(&self, j: usize) -> &[f64] {
+        self.centered.col(j).try_as_col_major().map_or(&[], |c| c.as_slice())
     }
 
     /// Exponentially weighted variance of the portfolio with weights `w`:
@@ -103,9 +127,8 @@ impl Moments {
     /// Σw = X_c'(X_c w)/(T−1).
     pub fn sigma_times(&self, w: &[f64]) -> Vec<f64> {
         let x = self.portfolio_centered(w);
-        let (t, n) = self.centered.shape();
-        let d = t as f64 - 1.0;
-        (0..n).map(|j| (0..t).map(|i| self.centered[(i, j)] * x[i]).sum::<f64>() / d).collect()
+        let d = self.periods() as f64 - 1.0;
+        (0..self.centered.ncols()).map(|j| dot(self.column(j), &x) / d).collect()
     }
 }
 

@@ -409,32 +409,47 @@ fn usable_columns(
         let ss = dot(&centred, &centred);
         (centred, ss)
     });
-    let mut keep = Vec::with_capacity(candidates.len());
-    let mut dev = vec![0.0; rows];
-    for (j, &c) in candidates.iter().enumerate() {
-        let col = column(gathered, j);
-        let mean = sum(col) / n;
-        let rms = (dot(col, col) / n).sqrt();
-        for (d, x) in dev.iter_mut().zip(col) {
-            *d = x - mean;
+    // Each column on its own (so a large window splits over the fit's threads
+    // with the same outcome): None to keep it, else why it is left out.
+    let judge = |range: std::ops::Range<usize>| -> Vec<Option<ExclusionReason>> {
+        let mut dev = vec![0.0; rows];
+        range
+            .map(|j| {
+                let col = column(gathered, j);
+                let mean = sum(col) / n;
+                let rms = (dot(col, col) / n).sqrt();
+                for (d, x) in dev.iter_mut().zip(col) {
+                    *d = x - mean;
+                }
+                let floor = ZERO_VARIANCE_RELATIVE * rms;
+                if !((dot(&dev, &dev) / (n - 1.0)).sqrt() > floor) {
+                    return Some(ExclusionReason::ZeroVariance);
+                }
+                if let Some((mc, m_ss)) = &market {
+                    let beta = dot(&dev, mc) / m_ss;
+                    // The residual of the OLS fit has mean zero: its sum of squares directly.
+                    for (d, v) in dev.iter_mut().zip(mc) {
+                        *d -= beta * v;
+                    }
+                    if !((dot(&dev, &dev) / (n - 1.0)).sqrt() > floor) {
+                        return Some(ExclusionReason::SpannedByMarket);
+                    }
+                }
+                None
+            })
+            .collect()
+    };
+    let k = candidates.len();
+    let parts = super::dense::threads().clamp(1, k.max(1));
+    let per = k.div_ceil(parts).max(1);
+    let ranges: Vec<std::ops::Range<usize>> = (0..k).step_by(per).map(|a| a..(a + per).min(k)).collect();
+    let verdicts = super::dense::for_parts(ranges, 8.0 * (rows * k) as f64, judge);
+    let mut keep = Vec::with_capacity(k);
+    for (j, verdict) in verdicts.into_iter().flatten().enumerate() {
+        match verdict {
+            None => keep.push(j),
+            Some(reason) => excluded.push(Exclusion { column: candidates[j], reason }),
         }
-        let floor = ZERO_VARIANCE_RELATIVE * rms;
-        if !((dot(&dev, &dev) / (n - 1.0)).sqrt() > floor) {
-            excluded.push(Exclusion { column: c, reason: ExclusionReason::ZeroVariance });
-            continue;
-        }
-        if let Some((mc, m_ss)) = &market {
-            let beta = dot(&dev, mc) / m_ss;
-            // The residual of the OLS fit has mean zero: its sum of squares directly.
-            for (d, v) in dev.iter_mut().zip(mc) {
-                *d -= beta * v;
-            }
-            if !((dot(&dev, &dev) / (n - 1.0)).sqrt() > floor) {
-                excluded.push(Exclusion { column: c, reason: ExclusionReason::SpannedByMarket });
-                continue;
-            }
-        }
-        keep.push(j);
     }
     keep
 }
