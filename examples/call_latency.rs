@@ -66,9 +66,35 @@ async fn main() -> anyhow::Result<()> {
         client.compute_weights(request.clone()).await?;
         remote.push(s.elapsed());
     }
-    println!("window: {n} factors × {t} periods, default settings (cross-validated K ≤ 30, 40 κ, 3 folds)");
+    // The transport's floor: a call that does no estimation (GetServiceInfo).
+    let mut floor = Vec::with_capacity(calls);
+    for _ in 0..calls {
+        let s = Instant::now();
+        client.get_service_info(proto::GetServiceInfoRequest::default()).await?;
+        floor.push(s.elapsed());
+    }
+    // Encoding the request and decoding a response, on the client alone.
+    let response = client.compute_weights(request.clone()).await?.into_inner();
+    let mut codec = Vec::with_capacity(calls);
+    for _ in 0..calls {
+        let s = Instant::now();
+        let bytes = prost::Message::encode_to_vec(&request);
+        let back = <proto::ComputeWeightsResponse as prost::Message>::decode(
+            prost::Message::encode_to_vec(&response).as_slice(),
+        )?;
+        std::hint::black_box((bytes, back));
+        codec.push(s.elapsed());
+    }
+    println!(
+        "window: {n} factors × {t} periods, method components (cross-validated K ≤ 30, 40 κ, 3 folds); \
+         request {} bytes, response {} bytes",
+        prost::Message::encoded_len(&request),
+        prost::Message::encoded_len(&response)
+    );
     summary("library fit (same process)", local);
     summary("ComputeWeights over loopback gRPC", remote);
+    summary("GetServiceInfo over loopback gRPC (transport floor)", floor);
+    summary("encode request + encode and decode response (client CPU)", codec);
     server.shutdown().await?;
     Ok(())
 }

@@ -78,6 +78,17 @@ fn check_loopback(addr: &str) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// CPU seconds (user + system, all threads) a process has used, from
+/// /proc/PID/stat (fields 14 and 15, in USER_HZ = 100 ticks a second on Linux).
+fn cpu_seconds(pid: &str) -> Option<f64> {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).ok()?;
+    // The command name may hold spaces: the fields start after its closing parenthesis.
+    let rest = &stat[stat.rfind(')')? + 2..];
+    let f: Vec<&str> = rest.split_whitespace().collect();
+    let ticks: f64 = f.get(11)?.parse::<f64>().ok()? + f.get(12)?.parse::<f64>().ok()?;
+    Some(ticks / 100.0)
+}
+
 /// Peak and current resident memory of a process, from /proc (KiB).
 fn memory_kib(pid: u32) -> Option<(u64, u64)> {
     let status = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
@@ -223,7 +234,7 @@ async fn main() -> anyhow::Result<()> {
     );
     let pid = child.as_ref().map(std::process::Child::id);
     let mem0 = pid.and_then(memory_kib);
-    println!("request: {} factors × {} periods, default settings (cross-validated)", a.factors, a.periods);
+    println!("request: {} factors × {} periods, method components (cross-validated)", a.factors, a.periods);
     for _ in 0..20 {
         WeightsServiceClient::new(channel.clone()).compute_weights(req.clone()).await?;
     }
@@ -232,8 +243,44 @@ async fn main() -> anyhow::Result<()> {
         None => {
             let clients =
                 if a.closed > 0 { a.closed } else { 2 * std::thread::available_parallelism().map_or(1, |n| n.get()) };
+            // The library's own fit of the same request, for the throughput target.
+            let settings =
+                keelson::estimator::Settings { method: keelson::estimator::Method::Components, ..Default::default() }
+                    .check()?;
+            let mut fits: Vec<f64> = (0..200)
+                .map(|_| {
+                    let s = Instant::now();
+                    std::hint::black_box(keelson::estimator::fit(&panel, &settings).is_ok());
+                    s.elapsed().as_secs_f64()
+                })
+                .collect();
+            fits.sort_by(f64::total_cmp);
+            let fit = fits[fits.len() / 2];
+            let cores = std::thread::available_parallelism().map_or(1, |n| n.get()) as f64;
+            let (gen0, srv0) = (cpu_seconds("self"), pid.and_then(|p| cpu_seconds(&p.to_string())));
+            let started = Instant::now();
             let sustainable = closed_loop(channel.clone(), req.clone(), clients, (a.duration / 2.0).min(10.0)).await?;
+            let wall = started.elapsed().as_secs_f64();
             println!("closed loop, {clients} clients: sustainable throughput {sustainable:.1} requests/s");
+            println!(
+                "library fit p50 {:.3} ms: 80% of {cores} cores ÷ fit = {:.0} requests/s; achieved {:.0}% of that",
+                fit * 1e3,
+                0.8 * cores / fit,
+                100.0 * sustainable / (0.8 * cores / fit)
+            );
+            if let (Some(g0), Some(g1)) = (gen0, cpu_seconds("self")) {
+                let srv = srv0.zip(pid.and_then(|p| cpu_seconds(&p.to_string()))).map(|(a, b)| b - a);
+                println!(
+                    "CPU over the closed loop ({wall:.1} s wall, {cores} cores): load generator {:.2} s ({:.0}% of the machine), \
+                     server {}",
+                    g1 - g0,
+                    100.0 * (g1 - g0) / (wall * cores),
+                    srv.map_or_else(
+                        || "not measured".to_owned(),
+                        |c| format!("{c:.2} s, {:.3} ms per request", 1e3 * c / (sustainable * wall).max(1.0))
+                    )
+                );
+            }
             let half = sustainable / 2.0;
             println!("open loop at half the sustainable rate: {half:.1}/s");
             half

@@ -29,6 +29,11 @@ fn main() -> anyhow::Result<()> {
     let out = args.next().unwrap_or_else(|| "docs/fit-scaling.svg".into());
     let reps: usize = args.next().unwrap_or_else(|| "7".into()).parse()?;
     let ns = [25usize, 50, 100, 250, 1000, 2000];
+    // Every core, as `benches/compare_numpy.py` gives both sides.
+    let opts = estimator::FitOptions {
+        threads: std::thread::available_parallelism().map_or(1, |n| n.get()),
+        ..estimator::FitOptions::default()
+    };
     let fixed = Settings {
         method: Method::Components,
         components: Choice::Fixed(5),
@@ -45,10 +50,10 @@ fn main() -> anyhow::Result<()> {
         for &n in &ns {
             let panel = synthetic_panel((n * 31 + t) as u64, t, n);
             let tf = median_secs(reps, || {
-                std::hint::black_box(estimator::fit(&panel, &fixed).expect("fits"));
+                std::hint::black_box(estimator::fit_with(&panel, &fixed, &opts).expect("fits"));
             });
             let tc = median_secs(reps, || {
-                std::hint::black_box(estimator::fit(&panel, &cv).expect("fits"));
+                std::hint::black_box(estimator::fit_with(&panel, &cv, &opts).expect("fits"));
             });
             println!("{n:>6} {t:>6} {:>12.3} {:>12.3}", tf * 1e3, tc * 1e3);
             f_pts.push((n as f64, tf * 1e3));
@@ -68,7 +73,8 @@ fn main() -> anyhow::Result<()> {
         .y_label_area_size(70)
         .build_cartesian_2d((20f64..2500f64).log_scale(), (lo * 0.7..hi * 1.4).log_scale())?;
     chart.configure_mesh().x_desc("factors N").y_desc("median fit time, ms").draw()?;
-    let colours = [RGBColor(31, 119, 180), RGBColor(255, 127, 14), RGBColor(44, 160, 44), RGBColor(214, 39, 40)];
+    let p = keelson::report::palette::SERIES;
+    let colours = [p[1], p[4], p[3], p[7]];
     for (i, (name, pts)) in series.iter().enumerate() {
         let c = colours[i % colours.len()];
         chart
