@@ -21,8 +21,17 @@ fn request(panel: &ReturnPanel, settings: proto::Settings, id: &str) -> proto::C
 }
 
 /// A request that takes seconds of CPU: 2000 factors × 1000 periods with cross-validation.
+/// A request that computes for a while (four 1000 × 1000 Gram eigensolves) but
+/// answers briefly (five components): the drain test must not depend on how
+/// fast a multi-megabyte body flushes while connections close.
 fn slow_request() -> proto::ComputeWeightsRequest {
-    request(&synthetic_panel(77, 1000, 2000), proto::Settings::default(), "slow")
+    let settings = proto::Settings {
+        method: proto::Method::Components.into(),
+        components_choice: Some(proto::settings::ComponentsChoice::Components(5)),
+        kappa_choice: Some(proto::settings::KappaChoice::Kappa(1.0)),
+        ..proto::Settings::default()
+    };
+    request(&synthetic_panel(77, 1000, 2000), settings, "slow")
 }
 
 fn run<F: Future>(f: F) -> F::Output {
