@@ -125,41 +125,74 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
     let Some((hline, header)) = rows.next() else {
         return Err(err(file, 1, 1, None, "the file is empty; expected a header row"));
     };
-    if header.len() < 2 {
-        let only = header.first().map_or("", String::as_str);
-        let hint = match [(';', "semicolons"), ('\t', "tabs")].iter().find(|(c, _)| only.contains(*c)) {
-            Some((_, name)) => format!(
-                "; the header holds {name}: the file is read as comma-separated, so save it with commas \
-                 (decimal points, not decimal commas)"
-            ),
-            None => String::new(),
-        };
-        return Err(err(
+    check_header_width(file, hline, &header)?;
+    let market_column = match market {
+        Some(m) => Some(market_column(file, hline, &header, m)?),
+        None => None,
+    };
+    let (names, factor_columns) = factor_columns(file, hline, &header, market_column)?;
+    let body = read_body(file, &header, market_column, rows)?;
+    Ok(CsvPanel {
+        panel: ReturnPanel {
+            cols: names.len(),
+            factor_names: names,
+            rows: body.labels.len(),
+            period_labels: body.labels,
+            returns: body.values,
+            market: body.market,
+            previous_weights: Vec::new(),
+            market_name: market.map(str::to_owned),
+        },
+        file: file.to_owned(),
+        factor_columns,
+        market_column,
+    })
+}
+
+/// A header of one column cannot hold a period and a factor; when that one
+/// column holds semicolons or tabs, the file has another delimiter.
+fn check_header_width(file: &str, hline: usize, header: &[String]) -> Result<(), CsvError> {
+    if header.len() >= 2 {
+        return Ok(());
+    }
+    let only = header.first().map_or("", String::as_str);
+    let hint = match [(';', "semicolons"), ('\t', "tabs")].iter().find(|(c, _)| only.contains(*c)) {
+        Some((_, name)) => format!(
+            "; the header holds {name}: the file is read as comma-separated, so save it with commas \
+             (decimal points, not decimal commas)"
+        ),
+        None => String::new(),
+    };
+    Err(err(file, hline, 1, None, format!("the header needs a period column and at least one factor column{hint}")))
+}
+
+/// The one-based column named `market`, or an error listing the columns.
+fn market_column(file: &str, hline: usize, header: &[String], market: &str) -> Result<usize, CsvError> {
+    header.iter().skip(1).position(|h| h == market).map(|i| i + 2).ok_or_else(|| {
+        let columns: Vec<&str> = header.iter().skip(1).map(String::as_str).take(40).collect();
+        err(
             file,
             hline,
             1,
             None,
-            format!("the header needs a period column and at least one factor column{hint}"),
-        ));
-    }
-    let market_column = match market {
-        Some(m) => Some(header.iter().skip(1).position(|h| h == m).map(|i| i + 2).ok_or_else(|| {
-            let columns: Vec<&str> = header.iter().skip(1).map(String::as_str).take(40).collect();
-            err(
-                file,
-                hline,
-                1,
-                None,
-                format!(
-                    "no column named \"{m}\" for --market (names are case-sensitive); the columns are: {}{}",
-                    columns.join(", "),
-                    if header.len() > 41 { ", …" } else { "" }
-                ),
-            )
-        })?),
-        None => None,
-    };
-    let mut factor_columns = Vec::new();
+            format!(
+                "no column named \"{market}\" for --market (names are case-sensitive); the columns are: {}{}",
+                columns.join(", "),
+                if header.len() > 41 { ", …" } else { "" }
+            ),
+        )
+    })
+}
+
+/// The factor names and their one-based columns: every column after the
+/// first but the market's, each named, no name twice.
+fn factor_columns(
+    file: &str,
+    hline: usize,
+    header: &[String],
+    market_column: Option<usize>,
+) -> Result<(Vec<String>, Vec<usize>), CsvError> {
+    let mut columns = Vec::new();
     let mut names: Vec<String> = Vec::new();
     for (i, h) in header.iter().enumerate().skip(1) {
         let col = i + 1;
@@ -175,19 +208,34 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
                 hline,
                 col,
                 Some(h),
-                format!("duplicate factor name (first in column {})", factor_columns[first]),
+                format!("duplicate factor name (first in column {})", columns[first]),
             ));
         }
         names.push(h.clone());
-        factor_columns.push(col);
+        columns.push(col);
     }
     if names.is_empty() {
         return Err(err(file, hline, 1, None, "no factor columns besides the market"));
     }
+    Ok((names, columns))
+}
 
-    let mut labels = Vec::new();
-    let mut values = Vec::new();
-    let mut market_values = market_column.map(|_| Vec::new());
+/// The data rows: labels, factor values row-major, the market.
+struct Body {
+    labels: Vec<String>,
+    values: Vec<f64>,
+    market: Option<Vec<f64>>,
+}
+
+/// Reads every data row: as many fields as the header, periods strictly
+/// increasing, every cell a number or missing, the market never missing.
+fn read_body(
+    file: &str,
+    header: &[String],
+    market_column: Option<usize>,
+    rows: impl Iterator<Item = (usize, Vec<String>)>,
+) -> Result<Body, CsvError> {
+    let mut body = Body { labels: Vec::new(), values: Vec::new(), market: market_column.map(|_| Vec::new()) };
     let mut previous: Option<((u32, u32, u32), String)> = None;
     for (lno, rec) in rows {
         if rec.len() != header.len() {
@@ -221,7 +269,7 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
             ));
         }
         previous = Some((key, label.clone()));
-        labels.push(label.clone());
+        body.labels.push(label.clone());
         for (i, cell) in rec.iter().enumerate().skip(1) {
             let col = i + 1;
             let v =
@@ -236,30 +284,15 @@ pub fn parse_returns(text: &str, file: &str, market: Option<&str>) -> Result<Csv
                         "the market return is missing (it may never be)",
                     ));
                 }
-                if let Some(m) = market_values.as_mut() {
+                if let Some(m) = body.market.as_mut() {
                     m.push(v);
                 }
             } else {
-                values.push(v);
+                body.values.push(v);
             }
         }
     }
-    let rows = labels.len();
-    Ok(CsvPanel {
-        panel: ReturnPanel {
-            cols: names.len(),
-            factor_names: names,
-            period_labels: labels,
-            returns: values,
-            rows,
-            market: market_values,
-            previous_weights: Vec::new(),
-            market_name: market.map(str::to_owned),
-        },
-        file: file.to_owned(),
-        factor_columns,
-        market_column,
-    })
+    Ok(body)
 }
 
 /// Reads previous weights from CSV with the header `factor,weight`.

@@ -15,7 +15,6 @@ fn setting_word(enum_name: &str, prefix: &str) -> String {
 pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> String {
     let default = proto::Diagnostics::default();
     let d = r.diagnostics.as_ref().unwrap_or(&default);
-    let settings = d.effective_settings.unwrap_or_default();
     let mut out = String::new();
     let span = match (labels.first(), labels.last()) {
         (Some(a), Some(b)) => format!(" ({a} … {b})"),
@@ -28,75 +27,10 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         r.weights.len(),
         d.factors_used
     );
-    let how = |cv: bool| if cv { "cross-validated" } else { "fixed" };
-    match settings.method() {
-        proto::Method::Components | proto::Method::Unspecified => {
-            let _ = writeln!(
-                out,
-                "method components · scaling {} · K = {} ({}) · κ = {:.4} annualised ({}) · γ = {:.3e}",
-                setting_word(settings.scaling().as_str_name(), "SCALING_"),
-                d.num_components,
-                how(d.components_cross_validated),
-                d.kappa,
-                how(d.kappa_cross_validated),
-                d.gamma
-            );
-        }
-        proto::Method::KnsRidge => {
-            let _ = writeln!(
-                out,
-                "method kns-ridge · every component of the covariance (K = {}) · κ = {:.4} annualised ({}) · γ = {:.3e}",
-                d.num_components,
-                d.kappa,
-                how(d.kappa_cross_validated),
-                d.gamma
-            );
-        }
-        proto::Method::Ensemble => {
-            let _ =
-                writeln!(out, "method ensemble · the average of every scaling's cross-validated component portfolio");
-        }
-        m => {
-            let _ = writeln!(out, "method {} (baseline)", setting_word(m.as_str_name(), "METHOD_"));
-        }
-    }
+    method_line(&mut out, d);
     let _ = writeln!(out);
     let width = r.weights.iter().map(|f| f.factor.chars().count()).max().unwrap_or(6).clamp(14, 40);
-    let boot = d.bootstrap.as_ref();
-    let _ = write!(out, "{:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "factor", "Sharpe", "model", "weight", "risk share");
-    if boot.is_some() {
-        let _ = write!(out, "  {:>9}  {:>9}  {:>9}  {:>5}", "5%", "median", "95%", "sign");
-    }
-    let _ = writeln!(out);
-    let mut order: Vec<usize> = (0..r.weights.len()).collect();
-    order.sort_by(|&a, &b| r.weights[b].weight.abs().total_cmp(&r.weights[a].weight.abs()));
-    for &i in &order {
-        let f = &r.weights[i];
-        let name: String = f.factor.chars().take(width).collect();
-        if f.excluded {
-            let _ = writeln!(out, "{name:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "-", "-", "excluded", "-");
-        } else {
-            let _ = write!(
-                out,
-                "{name:<width$}  {:>8.2}  {:>9.4}  {:>9.4}  {:>9.1}%",
-                f.sharpe_annualized,
-                f.model_weight,
-                f.weight,
-                100.0 * f.risk_contribution
-            );
-            if let Some(iv) = boot.and_then(|b| b.factors.get(i)) {
-                let _ = write!(
-                    out,
-                    "  {:>9.4}  {:>9.4}  {:>9.4}  {:>4.0}%",
-                    iv.q05,
-                    iv.q50,
-                    iv.q95,
-                    100.0 * iv.sign_agreement
-                );
-            }
-            let _ = writeln!(out);
-        }
-    }
+    factor_lines(&mut out, r, d.bootstrap.as_ref(), width);
     let _ = writeln!(
         out,
         "{:<width$}  {:>8}  {:>9.4}  {:>9.4}",
@@ -122,7 +56,7 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         d.covariance_condition_number,
         d.turnover.map(|t| format!(" · turnover {t:.4}")).unwrap_or_default()
     );
-    if let Some(b) = boot {
+    if let Some(b) = &d.bootstrap {
         bootstrap_lines(&mut out, b);
     }
     for e in &d.excluded {
@@ -133,6 +67,69 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
     }
     let _ = writeln!(out, "fingerprint {} · {}", r.fingerprint, r.estimator_version);
     out
+}
+
+/// The method, with its K, κ and γ where it has them.
+fn method_line(out: &mut String, d: &proto::Diagnostics) {
+    let settings = d.effective_settings.unwrap_or_default();
+    let how = |cv: bool| if cv { "cross-validated" } else { "fixed" };
+    let _ = match settings.method() {
+        proto::Method::Components | proto::Method::Unspecified => writeln!(
+            out,
+            "method components · scaling {} · K = {} ({}) · κ = {:.4} annualised ({}) · γ = {:.3e}",
+            setting_word(settings.scaling().as_str_name(), "SCALING_"),
+            d.num_components,
+            how(d.components_cross_validated),
+            d.kappa,
+            how(d.kappa_cross_validated),
+            d.gamma
+        ),
+        proto::Method::KnsRidge => writeln!(
+            out,
+            "method kns-ridge · every component of the covariance (K = {}) · κ = {:.4} annualised ({}) · γ = {:.3e}",
+            d.num_components,
+            d.kappa,
+            how(d.kappa_cross_validated),
+            d.gamma
+        ),
+        proto::Method::Ensemble => {
+            writeln!(out, "method ensemble · the average of every scaling's cross-validated component portfolio")
+        }
+        m => writeln!(out, "method {} (baseline)", setting_word(m.as_str_name(), "METHOD_")),
+    };
+}
+
+/// The header and one line per factor, by absolute weight, with the
+/// bootstrap's interval and sign agreement when there is one.
+fn factor_lines(out: &mut String, r: &ComputeWeightsResponse, boot: Option<&proto::Bootstrap>, width: usize) {
+    let _ = write!(out, "{:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "factor", "Sharpe", "model", "weight", "risk share");
+    if boot.is_some() {
+        let _ = write!(out, "  {:>9}  {:>9}  {:>9}  {:>5}", "5%", "median", "95%", "sign");
+    }
+    let _ = writeln!(out);
+    let mut order: Vec<usize> = (0..r.weights.len()).collect();
+    order.sort_by(|&a, &b| r.weights[b].weight.abs().total_cmp(&r.weights[a].weight.abs()));
+    for &i in &order {
+        let f = &r.weights[i];
+        let name: String = f.factor.chars().take(width).collect();
+        if f.excluded {
+            let _ = writeln!(out, "{name:<width$}  {:>8}  {:>9}  {:>9}  {:>10}", "-", "-", "excluded", "-");
+            continue;
+        }
+        let _ = write!(
+            out,
+            "{name:<width$}  {:>8.2}  {:>9.4}  {:>9.4}  {:>9.1}%",
+            f.sharpe_annualized,
+            f.model_weight,
+            f.weight,
+            100.0 * f.risk_contribution
+        );
+        if let Some(iv) = boot.and_then(|b| b.factors.get(i)) {
+            let _ =
+                write!(out, "  {:>9.4}  {:>9.4}  {:>9.4}  {:>4.0}%", iv.q05, iv.q50, iv.q95, 100.0 * iv.sign_agreement);
+        }
+        let _ = writeln!(out);
+    }
 }
 
 /// Gross (Σ|w| + |w_m|) and net (Σw + w_m) exposure of the model and the implemented weights.

@@ -117,7 +117,10 @@ impl ComponentBasis {
         };
         let m = y.nrows();
         let trace: f64 = (0..n)
-            .map(|j| y.col(j).try_as_col_major().map_or(0.0, |c| super::moments::dot(c.as_slice(), c.as_slice())))
+            .map(|j| {
+                let c = super::moments::column(&y, j);
+                super::moments::dot(c, c)
+            })
             .sum();
         let used_gram = match path {
             EigenPath::Auto => n > m,

@@ -196,7 +196,7 @@ pub fn run(
     let one = |d: usize| -> Result<Draw, EstimateError> {
         options.stop.check()?;
         let idx = stationary_indices(&mut SplitMix::for_draw(seed, d), panel.rows, block);
-        match super::fit_with(&resample(panel, &idx), &s, &inner) {
+        match super::fit_unhashed(&resample(panel, &idx), &s, &inner) {
             Ok(ws) => Ok(Some((ws.factors.iter().map(|f| f.weight).collect(), ws.diagnostics.num_components))),
             Err(e @ (EstimateError::Cancelled | EstimateError::DeadlineExceeded)) => Err(e),
             Err(_) => Ok(None),

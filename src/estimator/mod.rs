@@ -130,23 +130,46 @@ pub fn fit_with_phases(
     settings: &ValidSettings,
     options: &FitOptions,
 ) -> (Result<WeightSet, EstimateError>, PhaseTimes) {
+    fit_full(panel, settings, options, true)
+}
+
+/// [`fit_with`] with the fingerprint left empty: for fits whose fingerprint
+/// nobody reads (bootstrap draws, a backtest's refits before the latest),
+/// which would otherwise hash their whole window every time.
+pub(crate) fn fit_unhashed(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    options: &FitOptions,
+) -> Result<WeightSet, EstimateError> {
+    fit_full(panel, settings, options, false).0
+}
+
+fn fit_full(
+    panel: &ReturnPanel,
+    settings: &ValidSettings,
+    options: &FitOptions,
+    hash: bool,
+) -> (Result<WeightSet, EstimateError>, PhaseTimes) {
     let mut phases = PhaseTimes::default();
     // Large kernels of this fit may use its threads (see `dense`); folds and
     // draws on worker threads stay sequential inside. With threads to spare,
     // a large window's fingerprint is hashed on one of them meanwhile.
     let fit =
         |phases: &mut PhaseTimes| dense::with_threads(options.threads, || fit_phased(panel, settings, options, phases));
-    let (r, hashed) = if options.threads > 1 && panel.returns.len() >= PARALLEL_HASH_VALUES {
+    let fingerprint = || weights::fingerprint(panel, settings.settings());
+    let (r, hashed) = if !hash {
+        (fit(&mut phases), Some(String::new()))
+    } else if options.threads > 1 && panel.returns.len() >= PARALLEL_HASH_VALUES {
         std::thread::scope(|scope| {
-            let hash = scope.spawn(|| weights::fingerprint(panel, settings.settings()));
+            let h = scope.spawn(fingerprint);
             let r = fit(&mut phases);
-            (r, hash.join().ok())
+            (r, h.join().ok())
         })
     } else {
         (fit(&mut phases), None)
     };
     let r = r.map(|mut ws| {
-        ws.fingerprint = hashed.unwrap_or_else(|| weights::fingerprint(panel, settings.settings()));
+        ws.fingerprint = hashed.unwrap_or_else(fingerprint);
         ws
     });
     if settings.bootstrap_draws == 0 {
@@ -197,7 +220,8 @@ fn with_bootstrap(
         f.scale = p.scale;
     }
     ws.components = point.components;
-    ws.fingerprint = weights::fingerprint(panel, settings.settings());
+    // The same window and settings as the point fit: its fingerprint.
+    ws.fingerprint = point.fingerprint;
     ws.settings = settings.settings().clone();
     Ok(ws)
 }
@@ -335,6 +359,8 @@ pub fn fit_component_sweep(
     let mom = Moments::compute(window.returns.as_ref(), market);
     let top = ks.iter().copied().max().unwrap_or(1);
     let prepared = ComponentFit::prepare(&window, &mom, settings, KPolicy::Fixed(top), options)?;
+    // One window, one settings: one fingerprint for every K.
+    let fingerprint = weights::fingerprint(panel, settings.settings());
     let mut out = Vec::with_capacity(ks.len());
     for &k in ks {
         // The caller chooses how many K to solve: stop between them.
@@ -344,7 +370,10 @@ pub fn fit_component_sweep(
             let direction = direction_of(&model);
             weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop)
         });
-        out.push(r);
+        out.push(r.map(|mut ws| {
+            ws.fingerprint = fingerprint.clone();
+            ws
+        }));
     }
     Ok(out)
 }

@@ -22,9 +22,7 @@ impl Moments {
         let (t, n) = r.shape();
         let tf = t as f64;
         let market = market.map(|m| {
-            let mean = sum(m) / tf;
-            let centred: Vec<f64> = m.iter().map(|v| v - mean).collect();
-            let ss = dot(&centred, &centred);
+            let (centred, ss) = centred(m);
             (m, centred, ss)
         });
         // A copy of the block (no zero fill first), then each column in place:
@@ -109,7 +107,7 @@ impl Moments {
 
     /// Column `j` of the centred panel.
     pub fn column(&self, j: usize) -> &[f64] {
-        self.centered.col(j).try_as_col_major().map_or(&[], |c| c.as_slice())
+        column(&self.centered, j)
     }
 
     /// Exponentially weighted variance of the portfolio with weights `w`:
@@ -130,6 +128,20 @@ impl Moments {
         let d = self.periods() as f64 - 1.0;
         (0..self.centered.ncols()).map(|j| dot(self.column(j), &x) / d).collect()
     }
+}
+
+/// Column `j` of a column-major matrix as a slice.
+pub(crate) fn column(m: &Mat<f64>, j: usize) -> &[f64] {
+    m.col(j).try_as_col_major().map_or(&[], |c| c.as_slice())
+}
+
+/// `x` minus its mean, and the sum of squares of that: the market's part of
+/// every cov(r, m)/var(m).
+pub(crate) fn centred(x: &[f64]) -> (Vec<f64>, f64) {
+    let mean = sum(x) / x.len() as f64;
+    let c: Vec<f64> = x.iter().map(|v| v - mean).collect();
+    let ss = dot(&c, &c);
+    (c, ss)
 }
 
 /// Σ x in four interleaved partial sums (lanes the compiler vectorises),

@@ -4,7 +4,7 @@
 
 use faer::Mat;
 
-use super::moments::{dot, sum};
+use super::moments::{centred, column, dot, sum};
 
 use super::error::{InputError, Location, truncate_for_display};
 use super::settings::{Method, MissingPolicy, ValidSettings};
@@ -387,11 +387,6 @@ fn gather_columns(panel: &ReturnPanel, columns: &[usize]) -> Mat<f64> {
     Mat::from_fn(panel.rows, columns.len(), |r, j| panel.returns[r * cols + columns[j]])
 }
 
-/// A column of a column-major matrix as a slice.
-pub(crate) fn column(m: &Mat<f64>, j: usize) -> &[f64] {
-    m.col(j).try_as_col_major().map_or(&[], |c| c.as_slice())
-}
-
 /// The positions (into `candidates`, whose columns `gathered` holds) of the
 /// candidates that vary, judged on the demarketed series over the whole
 /// window; the others are added to `excluded`.
@@ -403,12 +398,7 @@ fn usable_columns(
 ) -> Vec<usize> {
     let rows = gathered.nrows();
     let n = rows as f64;
-    let market = demarket_with.map(|m| {
-        let mean = sum(m) / n;
-        let centred: Vec<f64> = m.iter().map(|v| v - mean).collect();
-        let ss = dot(&centred, &centred);
-        (centred, ss)
-    });
+    let market = demarket_with.map(centred);
     // Each column on its own (so a large window splits over the fit's threads
     // with the same outcome): None to keep it, else why it is left out.
     let judge = |range: std::ops::Range<usize>| -> Vec<Option<ExclusionReason>> {

@@ -411,9 +411,6 @@ struct Held {
     top_share: f64,
     /// The model's annualised Sharpe ratio behind γ* (SPEC §10): held-out when cross-validated.
     sharpe_model: f64,
-    /// κ at an end of its grid, K at the top of its grid (the fit's warnings).
-    kappa_at_edge: bool,
-    k_at_cap: bool,
     /// Codes of every warning the fit (and its implementation stage) raised, sorted, once each.
     warnings: Vec<&'static str>,
     /// Component loadings (configured strategy only) and betas.
@@ -456,8 +453,6 @@ fn held_weights(ws: &WeightSet) -> Held {
         } else {
             ws.diagnostics.in_sample_sharpe
         },
-        kappa_at_edge: ws.diagnostics.warnings.iter().any(|w| w.code == "kappa-at-grid-edge"),
-        k_at_cap: ws.diagnostics.warnings.iter().any(|w| w.code == "components-at-grid-edge"),
         warnings: codes(&ws.diagnostics.warnings),
         components: Vec::new(),
         betas: Vec::new(),
@@ -527,8 +522,6 @@ fn market_held(cols: usize) -> Held {
         kappa: 0.0,
         top_share: 0.0,
         sharpe_model: 0.0,
-        kappa_at_edge: false,
-        k_at_cap: false,
         warnings: Vec::new(),
         components: Vec::new(),
         betas: Vec::new(),
@@ -563,7 +556,13 @@ fn fit_date(
                 // The model portfolios are fitted here, in parallel over dates; the
                 // implementation stage runs after, date by date (see `implement_all`).
                 let settings = &model_settings(settings);
-                let ws = estimator::fit_with(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
+                // Only the latest configured fit is reported whole, fingerprint included.
+                let ws = if i == 0 && is_last {
+                    estimator::fit_with(&window, settings, &opts)
+                } else {
+                    estimator::fit_unhashed(&window, settings, &opts)
+                }
+                .map_err(|e| wrap(&s.name, e))?;
                 // Only the configured fits feed the pricing test: the others keep no loadings.
                 let h = if i == 0 { held_from(&ws) } else { held_weights(&ws) };
                 if i == 0 && is_last {
@@ -832,6 +831,9 @@ fn strategy_results(
             }
         }
         warnings.sort_by(|a, b| b.refits.cmp(&a.refits).then_with(|| a.code.cmp(&b.code)));
+        let refits_with = |code: &str| warnings.iter().find(|w| w.code == code).map_or(0, |w| w.refits);
+        let (kappa_at_edge, components_at_cap) =
+            (refits_with("kappa-at-grid-edge"), refits_with("components-at-grid-edge"));
         results.push(StrategyResult {
             id: s.id.clone(),
             name: s.name.clone(),
@@ -845,8 +847,8 @@ fn strategy_results(
             gross_median,
             gross_max: gross.last().copied().unwrap_or(f64::NAN),
             target_volatility,
-            kappa_at_edge: fits.iter().filter(|f| f.held[si].kappa_at_edge).count(),
-            components_at_cap: fits.iter().filter(|f| f.held[si].k_at_cap).count(),
+            kappa_at_edge,
+            components_at_cap,
             chosen_k: fits.iter().map(|f| f.held[si].k).collect(),
             chosen_kappa: fits.iter().map(|f| f.held[si].kappa).collect(),
             top_sharpe_share: fits.iter().map(|f| f.held[si].top_share).collect(),

@@ -12,6 +12,10 @@ const W: u32 = 900;
 const LEGEND: u32 = 270;
 const H: u32 = 380;
 
+/// Grid lines of every chart: fine and major.
+const GRID_FINE: RGBColor = RGBColor(238, 238, 238);
+const GRID_MAJOR: RGBColor = RGBColor(215, 215, 215);
+
 type Plot<'a> = Result<(), Box<dyn std::error::Error + 'a>>;
 type Area<'a> = DrawingArea<SVGBackend<'a>, Shift>;
 
@@ -105,8 +109,8 @@ pub(super) fn lines(
         let labels = periods.to_vec();
         chart
             .configure_mesh()
-            .light_line_style(RGBColor(238, 238, 238))
-            .bold_line_style(RGBColor(215, 215, 215))
+            .light_line_style(GRID_FINE)
+            .bold_line_style(GRID_MAJOR)
             .y_desc(y_label)
             .x_labels(6)
             .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
@@ -148,8 +152,8 @@ pub(super) fn xy(title: &str, x_label: &str, y_label: &str, series: &[Series<(f6
             .build_cartesian_2d(xlo..xhi, ylo..yhi)?;
         chart
             .configure_mesh()
-            .light_line_style(RGBColor(238, 238, 238))
-            .bold_line_style(RGBColor(215, 215, 215))
+            .light_line_style(GRID_FINE)
+            .bold_line_style(GRID_MAJOR)
             .x_desc(x_label)
             .y_desc(y_label)
             .y_label_formatter(&|y| tick(*y, yhi - ylo))
@@ -194,8 +198,8 @@ pub(super) fn small_multiples(
             let labels = refits.to_vec();
             chart
                 .configure_mesh()
-                .light_line_style(RGBColor(242, 242, 242))
-                .bold_line_style(RGBColor(222, 222, 222))
+                .light_line_style(GRID_FINE)
+                .bold_line_style(GRID_MAJOR)
                 .x_labels(4)
                 .y_labels(4)
                 .y_desc(y_label)
@@ -322,8 +326,8 @@ pub(super) fn weight_bars(title: &str, rows: &[(String, f64, Option<f64>)]) -> R
         chart
             .configure_mesh()
             .disable_y_mesh()
-            .light_line_style(RGBColor(240, 240, 240))
-            .bold_line_style(RGBColor(220, 220, 220))
+            .light_line_style(GRID_FINE)
+            .bold_line_style(GRID_MAJOR)
             .y_labels(n)
             .x_desc("weight (multiple of capital)")
             .y_label_formatter(&|y| {

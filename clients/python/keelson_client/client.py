@@ -76,6 +76,15 @@ def _panel(returns: pd.DataFrame, market: Union[str, pd.Series, None]):
     return [str(c) for c in frame.columns], _labels(returns.index), matrix, list(map(float, market_values)), market_name
 
 
+def _window_fields(returns, market, settings, request_id):
+    """The fields both requests share (names, labels, returns, market, settings,
+    request id), and the market column's name."""
+    names, labels, matrix, market_values, market_name = _panel(returns, market)
+    fields = dict(factor_names=names, period_labels=labels, returns=matrix, market_returns=market_values,
+                  settings=settings_message(settings), request_id=request_id or "")
+    return fields, market_name
+
+
 class WeightsResult:
     """The answer of :meth:`Client.compute_weights`.
 
@@ -240,16 +249,8 @@ class Client:
         the server's defaults. ``previous_weights`` (a Series by factor, the market column's
         name for the hedge held) prices turnover and trading costs.
         """
-        names, labels, matrix, market_values, market_name = _panel(returns, market)
-        request = pb.ComputeWeightsRequest(
-            factor_names=names,
-            period_labels=labels,
-            returns=matrix,
-            market_returns=market_values,
-            settings=settings_message(settings),
-            request_id=request_id or "",
-            market_name=market_name,
-        )
+        fields, market_name = _window_fields(returns, market, settings, request_id)
+        request = pb.ComputeWeightsRequest(market_name=market_name, **fields)
         if previous_weights is not None:
             request.previous_weights.extend(
                 pb.FactorWeight(factor=str(k), weight=float(v)) for k, v in previous_weights.items())
@@ -282,22 +283,11 @@ class Client:
         market column's name means the market). The deadline is ``timeout`` (default: the
         client's) for the whole stream; a backtest is not retried.
         """
-        names, labels, matrix, market_values, _ = _panel(returns, market)
+        fields, _ = _window_fields(returns, market, settings, request_id)
         sets = [pb.BenchmarkSet(names=["market" if isinstance(market, str) and n == market else str(n)
                                        for n in group]) for group in (benchmarks or [])]
-        request = pb.RunBacktestRequest(
-            factor_names=names,
-            period_labels=labels,
-            returns=matrix,
-            market_returns=market_values,
-            settings=settings_message(settings),
-            window=window,
-            expanding=expanding,
-            step=step,
-            benchmark_sets=sets,
-            skip_baselines=skip_baselines,
-            request_id=request_id or "",
-        )
+        request = pb.RunBacktestRequest(window=window, expanding=expanding, step=step, benchmark_sets=sets,
+                                        skip_baselines=skip_baselines, **fields)
         if cost_bps is not None:
             request.cost_bps = float(cost_bps)
         call = self._stub.RunBacktest(request, timeout=timeout or self.timeout, metadata=self._metadata)
