@@ -47,8 +47,18 @@ pub(crate) fn exit_code(e: &anyhow::Error) -> ExitCode {
     let usage = e.downcast_ref::<UsageError>().is_some()
         || e.downcast_ref::<SettingsError>().is_some()
         || e.downcast_ref::<ConfigError>().is_some()
-        || e.downcast_ref::<keelson::client::ClientError>().is_some_and(keelson::client::ClientError::is_usage);
+        || e.downcast_ref::<keelson::client::ClientError>().is_some_and(keelson::client::ClientError::is_usage)
+        || e.downcast_ref::<EstimateError>().is_some_and(is_frequency_mismatch)
+        || e.downcast_ref::<keelson::evaluate::BacktestError>().is_some_and(|b| match b {
+            keelson::evaluate::BacktestError::History(h) => is_frequency_mismatch(h),
+            _ => false,
+        });
     ExitCode::from(if usage { 2 } else { 1 })
+}
+
+/// A stated frequency the labels contradict is a mistake in the call (SPEC §13).
+fn is_frequency_mismatch(e: &EstimateError) -> bool {
+    matches!(e, EstimateError::FrequencyMismatch { .. })
 }
 
 /// A multi-threaded async runtime for the commands that speak gRPC.

@@ -1,13 +1,13 @@
 //! `Settings` messages: the whole settings, a patch of some of them, and the enums.
 
-use crate::estimator::{Aggregate, Cap};
+use crate::estimator::{Aggregate, Cap, RiskCalibration};
 use crate::estimator::{
     Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings, SettingsError, SettingsPatch,
 };
 use crate::proto;
 use crate::proto::settings::{
     ComponentsChoice, HoldingPeriodsChoice, KappaChoice, MaxGrossChoice, MaxMarketWeightChoice, MaxTurnoverChoice,
-    MaxWeightChoice,
+    MaxWeightChoice, PeriodsPerYearChoice,
 };
 
 /// Proto enum for a scaling.
@@ -98,6 +98,8 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
         bootstrap_cv,
         seed,
         aggregate,
+        risk_calibration,
+        frequency_check,
     } = p.clone();
     proto::Settings {
         scaling: enum_or_unset(scaling, scaling_to_proto),
@@ -119,7 +121,10 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
         normalization: enum_or_unset(normalization, normalization_to_proto),
         target_volatility,
         risk_aversion,
-        periods_per_year,
+        periods_per_year_choice: periods_per_year.map(|c| match c {
+            Choice::Auto => PeriodsPerYearChoice::PeriodsPerYearAuto(true),
+            Choice::Fixed(p) => PeriodsPerYearChoice::PeriodsPerYear(p),
+        }),
         demarket,
         missing_policy: enum_or_unset(missing_policy, missing_to_proto),
         rp_gamma,
@@ -148,6 +153,26 @@ pub fn patch_to_proto(p: &SettingsPatch) -> proto::Settings {
             Aggregate::Point => proto::Aggregate::Point,
             Aggregate::Bagged => proto::Aggregate::Bagged,
         }),
+        risk_calibration: enum_or_unset(risk_calibration, risk_calibration_to_proto),
+        frequency_check,
+    }
+}
+
+/// Proto enum for a risk calibration rule.
+pub(super) fn risk_calibration_to_proto(r: RiskCalibration) -> proto::RiskCalibration {
+    match r {
+        RiskCalibration::HeldOut => proto::RiskCalibration::HeldOut,
+        RiskCalibration::LedoitWolf => proto::RiskCalibration::LedoitWolf,
+        RiskCalibration::Off => proto::RiskCalibration::Off,
+    }
+}
+
+fn risk_calibration_from_proto(r: proto::RiskCalibration) -> Option<RiskCalibration> {
+    match r {
+        proto::RiskCalibration::Unspecified => None,
+        proto::RiskCalibration::HeldOut => Some(RiskCalibration::HeldOut),
+        proto::RiskCalibration::LedoitWolf => Some(RiskCalibration::LedoitWolf),
+        proto::RiskCalibration::Off => Some(RiskCalibration::Off),
     }
 }
 
@@ -288,7 +313,7 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         normalization,
         target_volatility,
         risk_aversion,
-        periods_per_year,
+        periods_per_year_choice,
         demarket,
         missing_policy,
         rp_gamma,
@@ -307,6 +332,8 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         bootstrap_cv,
         seed,
         aggregate,
+        risk_calibration,
+        frequency_check,
     } = *p;
     Ok(SettingsPatch {
         method: enum_from("method", method, method_from_proto)?,
@@ -333,7 +360,12 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         normalization: enum_from("normalization", normalization, normalization_from_proto)?,
         target_volatility,
         risk_aversion,
-        periods_per_year,
+        periods_per_year: match periods_per_year_choice {
+            None => None,
+            Some(PeriodsPerYearChoice::PeriodsPerYear(v)) => Some(Choice::Fixed(v)),
+            Some(PeriodsPerYearChoice::PeriodsPerYearAuto(true)) => Some(Choice::Auto),
+            Some(PeriodsPerYearChoice::PeriodsPerYearAuto(false)) => return Err(auto_false("periods_per_year_auto")),
+        },
         demarket,
         missing_policy: enum_from("missing_policy", missing_policy, missing_policy_from_proto)?,
         rp_gamma,
@@ -380,6 +412,8 @@ pub fn patch_from_proto(p: &proto::Settings) -> Result<SettingsPatch, SettingsEr
         bootstrap_cv,
         seed,
         aggregate: enum_from("aggregate", aggregate, aggregate_from_proto)?,
+        risk_calibration: enum_from("risk_calibration", risk_calibration, risk_calibration_from_proto)?,
+        frequency_check,
     })
 }
 

@@ -6,6 +6,7 @@ use crate::estimator::{
     BindingConstraint, ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, Implementation,
     ReturnPanel, ScalingScore, Settings, Warning, WeightSet,
 };
+use crate::estimator::{Calibration, FrequencySource};
 use crate::proto;
 
 fn surface_to_proto(s: &CvSurface) -> proto::CvSurface {
@@ -89,6 +90,9 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings, names: &[String]) 
         chosen_scaling,
         scaling_scores,
         bootstrap,
+        risk_calibration,
+        periods_per_year,
+        frequency,
     } = d;
     proto::Diagnostics {
         num_components: *num_components as u32,
@@ -132,6 +136,35 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings, names: &[String]) 
             })
             .collect(),
         bootstrap: bootstrap.as_ref().map(|b| bootstrap_to_proto(b, names)),
+        risk_calibration: risk_calibration.as_ref().map(calibration_to_proto),
+        periods_per_year: *periods_per_year,
+        periods_per_year_inferred: match frequency {
+            FrequencySource::Inferred => true,
+            FrequencySource::Given | FrequencySource::Assumed => false,
+        },
+    }
+}
+
+fn calibration_to_proto(c: &Calibration) -> proto::RiskCalibrationReport {
+    let Calibration {
+        rule,
+        factor,
+        measured_ratio,
+        standard_error,
+        held_out_periods,
+        in_window_volatility,
+        calibrated_volatility,
+        limited,
+    } = *c;
+    proto::RiskCalibrationReport {
+        rule: super::settings::risk_calibration_to_proto(rule).into(),
+        factor,
+        measured_ratio,
+        standard_error,
+        held_out_periods: held_out_periods as u32,
+        in_window_volatility,
+        calibrated_volatility,
+        limited,
     }
 }
 

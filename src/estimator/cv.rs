@@ -6,6 +6,7 @@
 use faer::{Mat, MatRef};
 
 use super::basis::{ComponentBasis, EigenPath};
+use super::calibration::HeldOutSample;
 use super::dense;
 use super::error::EstimateError;
 use super::moments::{Moments, demarket};
@@ -47,6 +48,9 @@ pub struct CrossValidation {
     pub held_out_sharpe: f64,
     /// Whether any coordinate-descent solve hit its sweep limit.
     pub solver_limit_hit: bool,
+    /// Every fold's portfolio at the chosen point, on its training block and
+    /// held out: what the risk calibration of SPEC §13 measures.
+    pub(crate) held_out: Vec<HeldOutSample>,
 }
 
 /// Block boundaries of `numpy.array_split(range(t), folds)`: the first
@@ -79,6 +83,8 @@ pub(crate) struct Fold {
     f_mean: Vec<f64>,
     /// Held-out covariance of the component returns (divisor T₂−1).
     f_cov: Mat<f64>,
+    /// Held-out component returns, centred, T₂ × K (for the risk calibration).
+    f_held: Mat<f64>,
     /// Pricing criteria: C₂'μ₂, C₂'C₂ and μ₂'μ₂ (whitened for GLS).
     pricing: Option<(Vec<f64>, Mat<f64>, f64)>,
 }
@@ -152,7 +158,7 @@ impl Fold {
                 Some(pricing_forms(&wc, &wmu))
             }
         };
-        Ok(Fold { train_periods: train_rows.len(), basis, f_mean, f_cov, pricing })
+        Ok(Fold { train_periods: train_rows.len(), basis, f_mean, f_cov, f_held: fc, pricing })
     }
 
     /// Scores of several coefficient vectors (the columns of `b`, K rows) at
@@ -183,6 +189,23 @@ impl Fold {
                 Some(_) => f64::NAN,
             };
         }
+    }
+}
+
+impl Fold {
+    /// The component portfolio `b` (its first K entries) on this fold: its
+    /// training variance b'Σ_F b and its centred held-out returns F₂b.
+    fn held_out_sample(&self, b: &[f64]) -> HeldOutSample {
+        let k = b.len();
+        let sf = &self.basis.sigma_f;
+        let mut train_var = 0.0;
+        for i in 0..k {
+            for j in 0..k {
+                train_var += b[i] * sf[(i, j)] * b[j];
+            }
+        }
+        let returns = (0..self.f_held.nrows()).map(|t| (0..k).map(|j| self.f_held[(t, j)] * b[j]).sum()).collect();
+        HeldOutSample { train_var, returns, train_periods: self.train_periods }
     }
 }
 
@@ -233,7 +256,7 @@ pub(crate) fn cross_validate(
     stop: &Stop,
     threads: usize,
 ) -> Result<CrossValidation, EstimateError> {
-    let annualise = f64::from(settings.periods_per_year).sqrt();
+    let annualise = f64::from(settings.periods_per_year()).sqrt();
     let kappa_p: Vec<f64> = kappas.iter().map(|&k| settings.kappa_per_period(k)).collect();
     let criterion = settings.cv_criterion;
     let l1 = settings.l1_penalty;
@@ -306,8 +329,10 @@ pub(crate) fn cross_validate(
     };
     let (k, kappa) = (ks[bk], kappas[bc]);
 
-    // Held-out Sharpe at the chosen point, whatever the criterion.
+    // Held-out Sharpe at the chosen point, whatever the criterion, and each
+    // fold portfolio's training variance and held-out returns.
     let mut sharpe_sum = 0.0;
+    let mut held_out = Vec::with_capacity(folds.len());
     for fold in folds {
         let mut path = ShrinkagePath::new(&fold.basis, diagonal, l1);
         let mut b = vec![0.0; fold.basis.len()];
@@ -317,6 +342,7 @@ pub(crate) fn cross_validate(
         let column = Mat::from_fn(k, 1, |j, _| b[j]);
         fold.score_batch(CvCriterion::Sharpe, column.as_ref(), annualise, &mut sharpe);
         sharpe_sum += sharpe[0];
+        held_out.push(fold.held_out_sample(&b[..k]));
     }
 
     Ok(CrossValidation {
@@ -326,6 +352,7 @@ pub(crate) fn cross_validate(
         best_score,
         held_out_sharpe: sharpe_sum / nf,
         solver_limit_hit,
+        held_out,
     })
 }
 

@@ -707,7 +707,7 @@ impl DeskWindow {
         let outside: f64 =
             (0..previous.len()).filter(|c| used.binary_search(c).is_err()).map(|c| previous[c].abs()).sum();
         let names: Vec<&str> = used.iter().map(|&c| self.window.names[c].as_str()).collect();
-        let p = f64::from(settings.periods_per_year);
+        let p = f64::from(settings.periods_per_year());
         let problem = Problem {
             model: &model_used,
             beta: self.hedged.then_some(&self.mom.beta[..]),

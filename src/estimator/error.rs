@@ -117,6 +117,9 @@ pub enum InputError {
         "{at}: period \"{label}\" does not come after the previous period \"{previous}\" (periods must be strictly increasing, oldest first)"
     )]
     UnsortedPeriods { at: Location, label: String, previous: String },
+    /// The period labels have no one frequency (SPEC §13).
+    #[error("{at}: the period labels are not evenly spaced: {detail}")]
+    IrregularPeriods { at: Location, detail: String },
     /// The window is shorter than the estimator needs.
     #[error("field `returns`: {periods} periods is too few; at least {required} are needed ({reason})")]
     TooFewPeriods { periods: usize, required: usize, reason: &'static str },
@@ -145,7 +148,8 @@ impl InputError {
             | InputError::EmptyName { at }
             | InputError::NameTooLong { at, .. }
             | InputError::BadPeriodLabel { at, .. }
-            | InputError::UnsortedPeriods { at, .. } => Some(at),
+            | InputError::UnsortedPeriods { at, .. }
+            | InputError::IrregularPeriods { at, .. } => Some(at),
             InputError::TooFewPeriods { .. }
             | InputError::NoFactors
             | InputError::NoUsableFactors { .. }
@@ -212,6 +216,13 @@ pub enum EstimateError {
     #[error("the implementation solver stopped ({status}): {detail}")]
     SolverFailed { status: String, detail: String },
     /// The caller cancelled the computation.
+    /// A set `periods_per_year` that the period labels contradict (SPEC §13).
+    #[error(
+        "setting `periods_per_year`: {given} was set but the period labels are {inferred} a year (median gap \
+         {median_gap_days:.1} days); leave periods_per_year unset to use the labels' frequency, or set \
+         frequency_check = false"
+    )]
+    FrequencyMismatch { given: u32, inferred: u32, median_gap_days: f64 },
     #[error("the computation was cancelled")]
     Cancelled,
     /// The computation ran past its deadline.

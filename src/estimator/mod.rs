@@ -10,10 +10,12 @@
 
 pub mod basis;
 pub mod bootstrap;
+pub mod calibration;
 pub mod cv;
 mod dense;
 pub mod desk;
 pub mod error;
+pub mod frequency;
 pub mod moments;
 pub mod settings;
 pub mod shrinkage;
@@ -22,14 +24,16 @@ pub mod weights;
 pub mod window;
 
 pub use basis::{ComponentBasis, EigenPath};
+pub use calibration::Calibration;
 pub use cv::{CrossValidation, CvSurface};
 pub use dense::PARALLEL_FLOPS;
 pub use desk::{BindingConstraint, Implementation, Limits};
 pub use error::{EstimateError, InputError, Location, SettingsError};
+pub use frequency::FrequencySource;
 pub use moments::Moments;
 pub use settings::{
-    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, SettingInfo, Settings,
-    SettingsPatch, ValidSettings, closest_name,
+    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, RiskCalibration, Scaling, SettingInfo,
+    Settings, SettingsPatch, ValidSettings, closest_name,
 };
 pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
@@ -151,6 +155,12 @@ fn fit_full(
     hash: bool,
 ) -> (Result<WeightSet, EstimateError>, PhaseTimes) {
     let mut phases = PhaseTimes::default();
+    // The frequency in force for this panel (SPEC §13), before anything is annualised.
+    let (resolved, source) = match settings.for_panel(panel) {
+        Ok(r) => r,
+        Err(e) => return (Err(e), phases),
+    };
+    let settings = &resolved;
     // Large kernels of this fit may use its threads (see `dense`); folds and
     // draws on worker threads stay sequential inside. With threads to spare,
     // a large window's fingerprint is hashed on one of them meanwhile.
@@ -170,6 +180,7 @@ fn fit_full(
     };
     let r = r.map(|mut ws| {
         ws.fingerprint = hashed.unwrap_or_else(fingerprint);
+        frequency::note_source(&mut ws.diagnostics, source);
         ws
     });
     if settings.bootstrap_draws == 0 {
@@ -203,7 +214,15 @@ fn with_bootstrap(
     // The mean of scaled portfolios is renormalised as a fixed direction (as the ensemble is).
     let as_average = Settings { method: Method::Ensemble, ..settings.settings().clone() }.check()?;
     let warnings = point.diagnostics.warnings.clone();
-    let mut ws = weights::assemble(panel, &window, &mom, &as_average, &direction, None, warnings, &options.stop)?;
+    // The point fit's risk calibration carries over to the draws' mean.
+    let held_out = point.diagnostics.risk_calibration.map(|c| calibration::HeldOutRatio {
+        measured: c.measured_ratio,
+        standard_error: c.standard_error,
+        corrected: 1.0 / c.factor,
+        periods: c.held_out_periods,
+    });
+    let mut ws =
+        weights::assemble(panel, &window, &mom, &as_average, &direction, None, held_out, warnings, &options.stop)?;
     let d = &point.diagnostics;
     ws.diagnostics.num_components = d.num_components;
     ws.diagnostics.kappa = d.kappa;
@@ -259,14 +278,12 @@ fn fit_phased(
                 })?;
             warnings.append(&mut chosen_warnings);
             let chosen = Scaling::ALL[best];
-            let direction = direction_of(&model);
             lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop)
-                .map(|mut ws| {
-                    ws.diagnostics.chosen_scaling = Some(chosen);
-                    ws.diagnostics.scaling_scores = scores;
-                    ws
-                });
+            let r = assemble_model(panel, &window, &mom, settings, model, warnings, &options.stop).map(|mut ws| {
+                ws.diagnostics.chosen_scaling = Some(chosen);
+                ws.diagnostics.scaling_scores = scores;
+                ws
+            });
             lap(&mut mark, &mut ph.assemble);
             r
         }
@@ -283,13 +300,13 @@ fn fit_phased(
                     *a += x / members.len() as f64;
                 }
             }
+            let risk = ensemble_risk(&members);
             lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &average, None, warnings, &options.stop).map(
-                |mut ws| {
+            let r = weights::assemble(panel, &window, &mom, settings, &average, None, risk, warnings, &options.stop)
+                .map(|mut ws| {
                     ws.diagnostics.scaling_scores = scores;
                     ws
-                },
-            );
+                });
             lap(&mut mark, &mut ph.assemble);
             r
         }
@@ -302,9 +319,8 @@ fn fit_phased(
             let prepared = ComponentFit::prepare(&window, &mom, settings, policy, options)?;
             lap(&mut mark, &mut ph.components);
             let model = prepared.solve(settings, policy, options, &mut warnings)?;
-            let direction = direction_of(&model);
             lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop);
+            let r = assemble_model(panel, &window, &mom, settings, model, warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
         }
@@ -324,15 +340,18 @@ fn fit_phased(
                     ),
                 });
             }
+            let risk = baseline_risk(&window, settings);
             lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &plug.weights, None, warnings, &options.stop);
+            let r =
+                weights::assemble(panel, &window, &mom, settings, &plug.weights, None, risk, warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
         }
         Method::EqualWeight => {
             let n = window.factors_used();
             let direction = vec![1.0 / n as f64; n];
-            let r = weights::assemble(panel, &window, &mom, settings, &direction, None, warnings, &options.stop);
+            let risk = baseline_risk(&window, settings);
+            let r = weights::assemble(panel, &window, &mom, settings, &direction, None, risk, warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
         }
@@ -354,6 +373,8 @@ pub fn fit_component_sweep(
     options: &FitOptions,
 ) -> Result<Vec<Result<WeightSet, EstimateError>>, EstimateError> {
     options.stop.check()?;
+    let (resolved, source) = settings.for_panel(panel)?;
+    let settings = &resolved;
     let window = ReturnWindow::new(panel, settings)?;
     let market = if settings.demarket { window.market.as_deref() } else { None };
     let mom = Moments::compute(window.returns.as_ref(), market);
@@ -366,12 +387,12 @@ pub fn fit_component_sweep(
         // The caller chooses how many K to solve: stop between them.
         options.stop.check()?;
         let mut warnings = Vec::new();
-        let r = prepared.solve(settings, KPolicy::Fixed(k), options, &mut warnings).and_then(|model| {
-            let direction = direction_of(&model);
-            weights::assemble(panel, &window, &mom, settings, &direction, Some(model), warnings, &options.stop)
-        });
+        let r = prepared
+            .solve(settings, KPolicy::Fixed(k), options, &mut warnings)
+            .and_then(|model| assemble_model(panel, &window, &mom, settings, model, warnings, &options.stop));
         out.push(r.map(|mut ws| {
             ws.fingerprint = fingerprint.clone();
+            frequency::note_source(&mut ws.diagnostics, source);
             ws
         }));
     }
@@ -432,6 +453,61 @@ fn choose_scaling(members: &[Member]) -> usize {
     members.iter().position(|m| m.model.best_score.is_finite() && m.model.best_score >= floor).unwrap_or(members.len())
 }
 
+/// Whether the weights are scaled by the held-out risk calibration (SPEC §13).
+fn needs_held_out_risk(settings: &ValidSettings) -> bool {
+    settings.normalization == Normalization::TargetVolatility && settings.risk_calibration == RiskCalibration::HeldOut
+}
+
+/// The held-out volatility ratio of a baseline (SPEC §13): the method refitted
+/// on the cross-validation's folds.
+/// The unshrunk plug-in gets the window-length correction for its N
+/// parameters (see [`calibration::held_out_ratio`]).
+fn baseline_risk(window: &ReturnWindow, settings: &ValidSettings) -> Option<calibration::HeldOutRatio> {
+    if !needs_held_out_risk(settings) {
+        return None;
+    }
+    let t = window.periods();
+    let n = window.factors_used() as f64;
+    let parameters = if settings.method == Method::PlugIn { n } else { 0.0 };
+    let market = if settings.demarket { window.market.as_deref() } else { None };
+    let bounds = fold_bounds(t, settings.folds as usize);
+    let samples = calibration::baseline_samples(window.returns.as_ref(), market, &bounds, settings.method);
+    calibration::held_out_ratio(&samples, t, parameters)
+}
+
+/// The ensemble's held-out ratio (SPEC §13): the members' calibration factors
+/// averaged (the average of calibrated members, renormalised).
+fn ensemble_risk(members: &[Member]) -> Option<calibration::HeldOutRatio> {
+    let risks: Vec<calibration::HeldOutRatio> = members.iter().filter_map(|m| m.model.risk).collect();
+    if risks.is_empty() {
+        return None;
+    }
+    let k = risks.len() as f64;
+    let mean = |f: fn(&calibration::HeldOutRatio) -> f64| risks.iter().map(f).sum::<f64>() / k;
+    Some(calibration::HeldOutRatio {
+        measured: mean(|r| r.measured),
+        standard_error: mean(|r| r.standard_error),
+        corrected: 1.0 / mean(|r| 1.0 / r.corrected),
+        periods: risks[0].periods,
+    })
+}
+
+/// The weight set of a components model: its direction, with the folds'
+/// risk calibration.
+fn assemble_model(
+    panel: &ReturnPanel,
+    window: &ReturnWindow,
+    mom: &Moments,
+    settings: &ValidSettings,
+    model: ComponentModel,
+    warnings: Vec<Warning>,
+    stop: &Stop,
+) -> Result<WeightSet, EstimateError> {
+    let direction = direction_of(&model);
+    let risk = model.risk;
+    weights::assemble(panel, window, mom, settings, &direction, Some(model), risk, warnings, stop)
+}
+
 fn direction_of(model: &ComponentModel) -> Vec<f64> {
     let q = &model.basis.q;
     (0..q.nrows()).map(|i| (0..model.k).map(|c| q[(i, c)] * model.b[c]).sum()).collect()
@@ -483,9 +559,14 @@ impl ComponentFit {
         }
         .clamp(1, n);
         let market = if settings.demarket { window.market.as_deref() } else { None };
-        // With K and κ both fixed the folds only feed the held-out Sharpe diagnostic.
+        // With K and κ both fixed the folds only feed the held-out Sharpe
+        // diagnostic and the held-out risk calibration.
         let fold_count = match policy {
-            KPolicy::Fixed(_) if settings.kappa.fixed().is_some() && !settings.held_out_check => 0,
+            KPolicy::Fixed(_)
+                if settings.kappa.fixed().is_some() && !settings.held_out_check && !needs_held_out_risk(settings) =>
+            {
+                0
+            }
             _ => folds,
         };
         let bounds: Vec<(usize, usize)> = fold_bounds(t, folds).into_iter().take(fold_count).collect();
@@ -566,7 +647,7 @@ impl ComponentFit {
                     reason: "cross-validation needs folds (internal: folds skipped for a non-fixed fit)".into(),
                 });
             };
-            return self.final_model(settings, k, kappa, None, f64::NAN, f64::NAN, warnings);
+            return self.final_model(settings, k, kappa, None, f64::NAN, f64::NAN, &[], warnings);
         }
         let kappas = settings.kappa_grid();
         let cv = cv::cross_validate(settings, diagonal, &ks, &kappas, &self.folds, &options.stop, options.threads)?;
@@ -597,7 +678,8 @@ impl ComponentFit {
             });
         }
 
-        self.final_model(settings, cv.k, cv.kappa, Some(cv.surface), cv.best_score, cv.held_out_sharpe, warnings)
+        let (surface, held_out) = (Some(cv.surface), cv.held_out);
+        self.final_model(settings, cv.k, cv.kappa, surface, cv.best_score, cv.held_out_sharpe, &held_out, warnings)
     }
 
     /// Solves the shrunk problem on the full window at the chosen (K, κ).
@@ -610,6 +692,7 @@ impl ComponentFit {
         surface: Option<CvSurface>,
         best_score: f64,
         held_out_sharpe: f64,
+        held_out: &[calibration::HeldOutSample],
         warnings: &mut Vec<Warning>,
     ) -> Result<ComponentModel, EstimateError> {
         let diagonal = self.scaling.has_diagonal_components();
@@ -623,7 +706,8 @@ impl ComponentFit {
             });
         }
         b.truncate(k);
-        Ok(ComponentModel { basis: self.full.clone(), k, kappa, gamma, b, best_score, held_out_sharpe, surface })
+        let risk = calibration::held_out_ratio(held_out, self.periods, 0.0);
+        Ok(ComponentModel { basis: self.full.clone(), k, kappa, gamma, b, best_score, held_out_sharpe, risk, surface })
     }
 }
 

@@ -111,6 +111,20 @@ pub enum Aggregate {
     Bagged,
 }
 
+/// How the volatility target is carried out of sample (SPEC §13).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum RiskCalibration {
+    /// Scale by the ratio of held-out to training volatility of the
+    /// cross-validation's fold portfolios (fold refits for the baselines).
+    #[default]
+    HeldOut,
+    /// Scale by the Ledoit–Wolf volatility of the portfolio over its sample volatility.
+    LedoitWolf,
+    /// The in-window volatility is the target (no calibration).
+    Off,
+}
+
 /// Rule for missing (NaN) returns (SPEC §1).
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
@@ -135,7 +149,7 @@ macro_rules! display_as_serde_name {
         }
     )+};
 }
-display_as_serde_name!(Method, Scaling, CvCriterion, Normalization, MissingPolicy, Aggregate);
+display_as_serde_name!(Method, Scaling, CvCriterion, Normalization, MissingPolicy, Aggregate, RiskCalibration);
 
 /// A value that is either chosen by cross-validation or fixed by the user.
 #[derive(Clone, Copy, Debug, Default, PartialEq)]
@@ -411,10 +425,17 @@ settings_table! {
     range "(0, 1e6]" if |v| within(*v, 0.0, 1e6);
     meaning "relative risk aversion for `risk-aversion`";
 
-    /// Periods per year.
-    periods_per_year: u32 = 12;
-    range "1..=100000" if |v| (1..=100_000).contains(v);
-    meaning "12 monthly, 52 weekly, 252 daily";
+    /// Periods per year; `auto` reads it from the period labels (SPEC §13).
+    periods_per_year: Choice<u32> = Choice::Auto;
+    range "`auto` or 1..=100000" if |v| v.fixed().is_none_or(|p| (1..=100_000).contains(&p));
+    meaning "12 monthly, 52 weekly, 252 daily; `auto` = read from the period labels' median spacing \
+             (monthly when there are no labels)";
+
+    /// Refuse a fixed `periods_per_year` that the period labels contradict (SPEC §13).
+    frequency_check: bool = true;
+    range "bool" if |_v| true;
+    meaning "refuse a set `periods_per_year` that the period labels contradict (`FREQUENCY_MISMATCH`); \
+             `false` accepts it";
 
     /// Remove market exposure inside the window.
     demarket: bool = true;
@@ -480,6 +501,13 @@ settings_table! {
     range "0 or [1, 1e6]" if |v| *v == 0.0 || (v.is_finite() && (1.0..=1e6).contains(v));
     meaning "`target-volatility` scales with an exponentially weighted covariance of this half-life (periods); \
              0 = the sample covariance";
+
+    /// How the volatility target is carried out of sample (SPEC §13).
+    risk_calibration: RiskCalibration = RiskCalibration::HeldOut;
+    range "`held-out`, `ledoit-wolf`, `off`" if |_v| true;
+    meaning "`target-volatility` is met out of sample: `held-out` = scaled by the cross-validation folds' held-out \
+             over training volatility; `ledoit-wolf` = by the Ledoit–Wolf over the sample volatility; \
+             `off` = the in-window volatility is the target";
 
     /// Stationary-bootstrap draws of the window (SPEC §11); 0 = off.
     bootstrap_draws: u32 = 0;
@@ -616,9 +644,22 @@ impl ValidSettings {
         &self.inner
     }
 
+    /// Settings already known to pass [`Settings::check`] (a checked value
+    /// with a field fixed inside its range).
+    pub(crate) fn trusted(inner: Settings) -> ValidSettings {
+        debug_assert!(inner.clone().check().is_ok());
+        ValidSettings { inner }
+    }
+
+    /// Periods per year in force: the value set or resolved for a panel
+    /// ([`ValidSettings::for_panel`]), else monthly.
+    pub fn periods_per_year(&self) -> u32 {
+        self.inner.periods_per_year.fixed().unwrap_or(super::frequency::ASSUMED_PERIODS_PER_YEAR)
+    }
+
     /// κ per period from an annualised κ: κ/√P (SPEC §5).
     pub fn kappa_per_period(&self, kappa_annual: f64) -> f64 {
-        kappa_annual / f64::from(self.inner.periods_per_year).sqrt()
+        kappa_annual / f64::from(self.periods_per_year()).sqrt()
     }
 
     /// The annualised κ grid: `kappa_grid_points` values log-spaced on
@@ -646,7 +687,7 @@ impl ValidSettings {
 
     /// Cost per unit of weight traded, per period of holding: c_b·1e-4/h (SPEC §10).
     pub fn cost_per_unit(&self) -> f64 {
-        let h = self.inner.holding_periods.fixed().unwrap_or(f64::from(self.inner.periods_per_year));
+        let h = self.inner.holding_periods.fixed().unwrap_or(f64::from(self.periods_per_year()));
         self.inner.cost_bps * 1e-4 / h
     }
 }

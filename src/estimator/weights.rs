@@ -4,12 +4,13 @@
 use sha2::{Digest, Sha256};
 
 use super::basis::ComponentBasis;
+use super::calibration::{self, Calibration, HeldOutRatio};
 use super::cv::CvSurface;
 use super::dense;
 use super::desk::{self, Implementation, Limits};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
-use super::settings::{Method, Normalization, Scaling, Settings, ValidSettings};
+use super::settings::{Method, Normalization, RiskCalibration, Scaling, Settings, ValidSettings};
 use super::stop::Stop;
 use super::window::{ReturnPanel, ReturnWindow};
 
@@ -60,7 +61,7 @@ pub struct ComponentReport {
 }
 
 /// Every warning code a fit can raise, in the README's order.
-pub const WARNING_CODES: [&str; 13] = [
+pub const WARNING_CODES: [&str; 16] = [
     "factors-excluded",
     "short-window",
     "return-scale",
@@ -74,6 +75,9 @@ pub const WARNING_CODES: [&str; 13] = [
     "solver-reduced-accuracy",
     "ill-conditioned-covariance",
     "components-not-separated",
+    "risk-calibration-unavailable",
+    "risk-calibration-limited",
+    "frequency-assumed",
 ];
 
 /// A condition worth knowing; the weights are still valid.
@@ -143,6 +147,13 @@ pub struct Diagnostics {
     pub scaling_scores: Vec<ScalingScore>,
     /// The stationary bootstrap (SPEC §11), when `bootstrap_draws` > 0.
     pub bootstrap: Option<super::bootstrap::BootstrapReport>,
+    /// The out-of-sample risk calibration (SPEC §13), with
+    /// `normalization = target-volatility` and `risk_calibration` on.
+    pub risk_calibration: Option<Calibration>,
+    /// Periods per year in force (SPEC §13).
+    pub periods_per_year: u32,
+    /// Where that frequency came from.
+    pub frequency: super::frequency::FrequencySource,
 }
 
 /// One scaling's best cross-validation score (SPEC §11).
@@ -189,6 +200,8 @@ pub(crate) struct ComponentModel {
     pub surface: Option<CvSurface>,
     pub best_score: f64,
     pub held_out_sharpe: f64,
+    /// The folds' out-of-sample volatility ratio at the chosen point (SPEC §13).
+    pub risk: Option<HeldOutRatio>,
 }
 
 /// Condition number of Σ above which a fit carries the `ill-conditioned-covariance` warning
@@ -208,13 +221,25 @@ pub(crate) fn assemble(
     settings: &ValidSettings,
     direction: &[f64],
     model: Option<ComponentModel>,
+    held_out: Option<HeldOutRatio>,
     mut warnings: Vec<Warning>,
     stop: &Stop,
 ) -> Result<WeightSet, EstimateError> {
     let n = window.factors_used();
     let t = window.periods();
-    let p = f64::from(settings.periods_per_year);
-    let scaled = Normalized::new(window, mom, settings, direction)?;
+    let p = f64::from(settings.periods_per_year());
+    let mut calibration = calibrate(settings, mom, direction, held_out, &mut warnings);
+    let risk_factor = calibration.map_or(1.0, |c| c.factor);
+    let scaled = Normalized::new(window, mom, settings, direction, risk_factor)?;
+    if let Some(c) = calibration.as_mut() {
+        // In-window volatility of the scaled model portfolio (on the covariance the target uses).
+        let var_risk = match settings.volatility_halflife {
+            h if h > 0.0 => mom.portfolio_variance_ew(&scaled.weights, h),
+            _ => mom.portfolio_variance(&scaled.weights),
+        };
+        c.in_window_volatility = (p * var_risk).sqrt();
+        c.calibrated_volatility = c.in_window_volatility / c.factor;
+    }
     let held = Previous::of(panel, window, &mut warnings)?;
     let hedged = settings.demarket && window.market.is_some();
     let (implemented, market_weight, implementation) = if settings.implementation_active() {
@@ -301,6 +326,9 @@ pub(crate) fn assemble(
         chosen_scaling: None,
         scaling_scores: Vec::new(),
         bootstrap: None,
+        risk_calibration: calibration,
+        periods_per_year: settings.periods_per_year(),
+        frequency: super::frequency::FrequencySource::Given,
     };
     let components = match model {
         Some(m) => model_reports(m, window, settings, p, &mut diagnostics),
@@ -327,7 +355,68 @@ pub(crate) fn normalized_weights(
     settings: &ValidSettings,
     direction: &[f64],
 ) -> Result<Vec<f64>, EstimateError> {
-    Normalized::new(window, mom, settings, direction).map(|n| n.weights)
+    Normalized::new(window, mom, settings, direction, 1.0).map(|n| n.weights)
+}
+
+/// The risk calibration in force for `direction` (SPEC §13): none unless the
+/// weights are scaled to a volatility target and a rule is on. The
+/// volatilities are filled in once the weights are scaled.
+fn calibrate(
+    settings: &ValidSettings,
+    mom: &Moments,
+    direction: &[f64],
+    held_out: Option<HeldOutRatio>,
+    warnings: &mut Vec<Warning>,
+) -> Option<Calibration> {
+    if settings.normalization != Normalization::TargetVolatility {
+        return None;
+    }
+    let (measured, standard_error, periods, raw) = match settings.risk_calibration {
+        RiskCalibration::Off => return None,
+        RiskCalibration::HeldOut => match held_out {
+            Some(h) => (h.measured, h.standard_error, h.periods, 1.0 / h.corrected),
+            None => {
+                warnings.push(Warning {
+                    code: "risk-calibration-unavailable",
+                    message: "no cross-validation fold gave a portfolio with variance; the in-window volatility \
+                              is the target"
+                        .into(),
+                });
+                return None;
+            }
+        },
+        RiskCalibration::LedoitWolf => match calibration::ledoit_wolf_factor(mom, direction) {
+            Some(f) => (1.0 / f, f64::NAN, 0, f),
+            None => {
+                warnings.push(Warning {
+                    code: "risk-calibration-unavailable",
+                    message: "the Ledoit–Wolf variance of the portfolio is not usable; the in-window volatility \
+                              is the target"
+                        .into(),
+                });
+                return None;
+            }
+        },
+    };
+    let (factor, limited) = calibration::limit(raw);
+    if limited {
+        warnings.push(Warning {
+            code: "risk-calibration-limited",
+            message: format!(
+                "the risk calibration asked for a factor of {raw:.3}; it is held at {factor} (the documented limit)"
+            ),
+        });
+    }
+    Some(Calibration {
+        rule: settings.risk_calibration,
+        factor,
+        measured_ratio: measured,
+        standard_error,
+        held_out_periods: periods,
+        in_window_volatility: f64::NAN,
+        calibrated_volatility: f64::NAN,
+        limited,
+    })
 }
 
 /// The direction scaled by the normalisation (SPEC §7), with its hedge.
@@ -352,8 +441,9 @@ impl Normalized {
         mom: &Moments,
         settings: &ValidSettings,
         direction: &[f64],
+        risk_factor: f64,
     ) -> Result<Normalized, EstimateError> {
-        let p = f64::from(settings.periods_per_year);
+        let p = f64::from(settings.periods_per_year());
         let var_dir = mom.portfolio_variance(direction);
         if !(var_dir > 0.0 && var_dir.is_finite()) {
             return Err(EstimateError::DegeneratePortfolio {
@@ -373,7 +463,8 @@ impl Normalized {
                     h if h > 0.0 => mom.portfolio_variance_ew(direction, h),
                     _ => var_dir,
                 };
-                settings.target_volatility / (p * var_risk).sqrt()
+                // Out-of-sample calibration (SPEC §13): the target met on returns not fitted.
+                risk_factor * settings.target_volatility / (p * var_risk).sqrt()
             }
             Normalization::RiskAversion => match settings.method {
                 // b-implied mean–variance weights divided by γ (SPEC §7).
@@ -745,7 +836,8 @@ mod tests {
     /// `WARNING_CODES` (what `--fail-on` accepts) is every code the estimator raises.
     #[test]
     fn the_warning_code_list_is_complete() {
-        let sources = [include_str!("mod.rs"), include_str!("weights.rs"), include_str!("desk.rs")];
+        let sources =
+            [include_str!("mod.rs"), include_str!("weights.rs"), include_str!("desk.rs"), include_str!("frequency.rs")];
         let mut raised = Vec::new();
         for src in sources {
             // The code before the tests: each `code: ...` to the end of its line, its string literals.
@@ -780,8 +872,22 @@ mod tests {
     #[test]
     fn each_normalisation_meets_its_definition() {
         // SPEC §7: target volatility, gross exposure Σ|wᵢ| + |w_m| = 1.
-        let tv = fitted(|s| s.target_volatility = 0.07);
+        let tv = fitted(|s| {
+            s.target_volatility = 0.07;
+            s.risk_calibration = crate::estimator::RiskCalibration::Off;
+        });
         assert!((tv.diagnostics.ex_ante_volatility - 0.07).abs() < 1e-12);
+        assert_eq!(tv.diagnostics.risk_calibration, None);
+        // SPEC §13: with the calibration the in-window volatility is the target times its factor,
+        // and the forecast out-of-sample volatility is the target.
+        let cal = fitted(|s| s.target_volatility = 0.07);
+        let c = cal.diagnostics.risk_calibration.unwrap();
+        assert!(!c.limited && c.factor != 1.0);
+        assert!((cal.diagnostics.ex_ante_volatility - 0.07 * c.factor).abs() < 1e-12);
+        assert!((c.calibrated_volatility - 0.07).abs() < 1e-12);
+        for (a, b) in cal.factors.iter().zip(&tv.factors) {
+            assert!((a.weight - c.factor * b.weight).abs() <= 1e-12 * b.weight.abs().max(1e-9));
+        }
         let gross = fitted(|s| s.normalization = Normalization::GrossExposure);
         let total: f64 = gross.factors.iter().map(|f| f.weight.abs()).sum::<f64>() + gross.market_weight.abs();
         assert!((total - 1.0).abs() < 1e-12);

@@ -77,7 +77,7 @@ impl ConstraintSet {
     fn of(s: &ValidSettings) -> ConstraintSet {
         ConstraintSet {
             limits: Limits::of(s),
-            holding_periods: s.holding_periods.fixed().unwrap_or(f64::from(s.periods_per_year)),
+            holding_periods: s.holding_periods.fixed().unwrap_or(f64::from(s.periods_per_year())),
             volatility_halflife: s.volatility_halflife,
             target_volatility: (s.normalization == Normalization::TargetVolatility).then_some(s.target_volatility),
         }
@@ -990,6 +990,9 @@ pub fn run(
             reason: "the specification was checked against a history of another shape".into(),
         });
     }
+    // One frequency for the whole history (SPEC §13), fixed for every strategy's refits.
+    let (configured, _) = configured.for_panel(panel).map_err(BacktestError::History)?;
+    let configured = &configured;
     let plan = Schedule::new(panel, configured, spec);
     let mut fits = fit_all_dates(panel, configured, spec, &plan, progress, stop)?;
     let constraints = ConstraintSet::of(configured);
@@ -1001,7 +1004,7 @@ pub fn run(
             f.last = Some(last);
         }
     }
-    let p = f64::from(configured.periods_per_year);
+    let p = f64::from(configured.periods_per_year());
     let oos = OutOfSample { panel, periods: (spec.window..panel.rows).collect(), window: spec.window, step: spec.step };
     let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.periods.len()));
     let strategies = strategy_results(&oos, &plan, &fits, spec, p, lag);
@@ -1026,7 +1029,7 @@ pub fn run(
     Ok(BacktestResult {
         provenance: Provenance::of(panel, configured, "as given to the backtest"),
         spec: resolved,
-        periods_per_year: configured.periods_per_year,
+        periods_per_year: configured.periods_per_year(),
         periods: oos.periods.iter().map(|&t| label(panel, t)).collect(),
         refits: plan.dates.len(),
         strategies,

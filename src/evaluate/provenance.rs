@@ -102,20 +102,11 @@ fn hex(digest: &[u8]) -> String {
     })
 }
 
-/// `t` as `YYYY-MM-DDTHH:MM:SSZ` (days to civil date after Hinnant's
-/// `civil_from_days`, proleptic Gregorian calendar).
+/// `t` as `YYYY-MM-DDTHH:MM:SSZ` (proleptic Gregorian calendar).
 pub fn rfc3339_utc(t: std::time::SystemTime) -> String {
     let secs = t.duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_secs()) as i64;
     let (days, rem) = (secs.div_euclid(86_400), secs.rem_euclid(86_400));
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let day = doy - (153 * mp + 2) / 5 + 1;
-    let month = if mp < 10 { mp + 3 } else { mp - 9 };
-    let year = yoe + era * 400 + i64::from(month <= 2);
+    let (year, month, day) = crate::estimator::frequency::civil_from_days(days);
     format!("{year:04}-{month:02}-{day:02}T{:02}:{:02}:{:02}Z", rem / 3600, rem % 3600 / 60, rem % 60)
 }
 

@@ -153,6 +153,7 @@ fn input_reason(e: &InputError) -> &'static str {
         InputError::NameTooLong { .. } => "FACTOR_NAME_TOO_LONG",
         InputError::BadPeriodLabel { .. } => "BAD_PERIOD_LABEL",
         InputError::UnsortedPeriods { .. } => "UNSORTED_PERIODS",
+        InputError::IrregularPeriods { .. } => "IRREGULAR_PERIODS",
         InputError::TooFewPeriods { .. } => "TOO_FEW_PERIODS",
         InputError::NoFactors => "NO_FACTORS",
         InputError::NoUsableFactors { .. } => "NO_USABLE_FACTORS",
@@ -188,6 +189,7 @@ fn estimate_status(e: &EstimateError, cols: Option<usize>) -> Status {
                         | InputError::AllMissing { .. }
                         | InputError::BadPeriodLabel { .. }
                         | InputError::UnsortedPeriods { .. } => "returns",
+                        InputError::IrregularPeriods { .. } => "period_labels",
                         InputError::NoFactors
                         | InputError::DuplicateName { .. }
                         | InputError::EmptyName { .. }
@@ -201,6 +203,15 @@ fn estimate_status(e: &EstimateError, cols: Option<usize>) -> Status {
             invalid(input_reason(ie), path, ie.to_string(), meta)
         }
         EstimateError::Settings(se) => settings_status(se),
+        EstimateError::FrequencyMismatch { given, inferred, .. } => {
+            let field = "settings.periods_per_year".to_owned();
+            let meta = HashMap::from([
+                ("field".to_owned(), field.clone()),
+                ("given".to_owned(), given.to_string()),
+                ("inferred".to_owned(), inferred.to_string()),
+            ]);
+            invalid("FREQUENCY_MISMATCH", field, e.to_string(), meta)
+        }
         EstimateError::TooManyComponents { .. } => invalid(
             "TOO_MANY_COMPONENTS",
             "settings.components".into(),

@@ -536,3 +536,92 @@ fn strict_mode_and_misplaced_flags() {
     assert_eq!(o.status.code(), Some(1));
     assert!(stderr(&o).contains("semicolons"), "{}", stderr(&o));
 }
+
+/// Dates `step` calendar days apart from 2019-01-07 (a Monday), business days
+/// only when `business` (weekends skipped), as YYYY-MM-DD.
+fn dates(n: usize, step: u32, business: bool) -> Vec<String> {
+    let month_days = |y: u32, m: u32| match m {
+        2 if y.is_multiple_of(4) && (!y.is_multiple_of(100) || y.is_multiple_of(400)) => 29,
+        2 => 28,
+        4 | 6 | 9 | 11 => 30,
+        _ => 31,
+    };
+    let (mut y, mut m, mut d, mut weekday) = (2019u32, 1u32, 7u32, 0u32);
+    let mut out = Vec::new();
+    while out.len() < n {
+        if !(business && weekday >= 5) {
+            out.push(format!("{y:04}-{m:02}-{d:02}"));
+        }
+        for _ in 0..step {
+            weekday = (weekday + 1) % 7;
+            d += 1;
+            if d > month_days(y, m) {
+                d = 1;
+                m += 1;
+                if m > 12 {
+                    m = 1;
+                    y += 1;
+                }
+            }
+        }
+    }
+    out
+}
+
+/// The CSV of `window(t, n)` with its period labels replaced.
+fn relabelled(t: usize, n: usize, labels: &[String]) -> String {
+    let csv = window(t, n);
+    let mut lines = csv.lines();
+    let mut out = format!("{}\n", lines.next().unwrap());
+    for (line, label) in lines.zip(labels) {
+        let rest = line.split_once(',').unwrap().1;
+        out.push_str(&format!("{label},{rest}\n"));
+    }
+    out
+}
+
+/// SPEC §13: the frequency is read from the labels (daily, weekly, monthly,
+/// quarterly), reported, and a contradicting `periods_per_year` is a usage
+/// error (exit 2) unless `frequency_check = false`; irregular labels are refused.
+#[test]
+fn the_frequency_comes_from_the_labels() {
+    let quarters: Vec<String> =
+        (0..80).map(|i| format!("{:04}-{:02}-{}", 1990 + i / 4, 3 * (i % 4) + 3, [31, 30, 30, 31][i % 4])).collect();
+    for (name, labels, ppy) in [
+        ("daily", dates(300, 1, true), 252),
+        ("weekly", dates(150, 7, false), 52),
+        ("monthly", (0..120).map(|i| format!("{:04}-{:02}", 2001 + i / 12, i % 12 + 1)).collect(), 12),
+        ("quarterly", quarters, 4),
+    ] {
+        let p = file(&format!("freq-{name}.csv"), &relabelled(labels.len(), 5, &labels));
+        let f = p.to_str().unwrap();
+        let o = keelson(&["fit", "--returns", f, "--market", "MKT", "--format", "json"]);
+        assert_eq!(o.status.code(), Some(0), "{name}: {}", stderr(&o));
+        let v: Value = serde_json::from_slice(&o.stdout).unwrap();
+        assert_eq!(v["diagnostics"]["periodsPerYear"], ppy, "{name}");
+        assert_eq!(v["diagnostics"]["periodsPerYearInferred"], true, "{name}");
+        let wrong = if ppy == 12 { "52" } else { "12" };
+        let o = keelson(&["fit", "--returns", f, "--market", "MKT", "--set", &format!("periods_per_year={wrong}")]);
+        assert_eq!(o.status.code(), Some(2), "{name}: {}", stderr(&o));
+        assert!(stderr(&o).contains(&format!("period labels are {ppy} a year")), "{name}: {}", stderr(&o));
+        let o = keelson(&[
+            "fit",
+            "--returns",
+            f,
+            "--market",
+            "MKT",
+            "--set",
+            &format!("periods_per_year={wrong}"),
+            "--set",
+            "frequency_check=false",
+        ]);
+        assert_eq!(o.status.code(), Some(0), "{name}: {}", stderr(&o));
+    }
+    // Daily labels, then monthly ones: no one frequency, named at the first odd gap.
+    let mut mixed = dates(60, 1, true);
+    mixed.extend((0..20).map(|i| format!("{:04}-{:02}-01", 2020 + i / 12, i % 12 + 1)));
+    let p = file("freq-mixed.csv", &relabelled(80, 5, &mixed));
+    let o = keelson(&["fit", "--returns", p.to_str().unwrap(), "--market", "MKT"]);
+    assert_eq!(o.status.code(), Some(1), "{}", stderr(&o));
+    assert!(stderr(&o).contains("not evenly spaced") && stderr(&o).contains("row 60"), "{}", stderr(&o));
+}

@@ -10,7 +10,7 @@ use crate::common::Server;
 use keelson::convert::{request_from_panel, settings_to_proto};
 use keelson::demo::{synthetic_panel, to_csv};
 use keelson::estimator::{
-    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, Scaling, Settings,
+    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, RiskCalibration, Scaling, Settings,
 };
 use keelson::proto::{self, weights_service_client::WeightsServiceClient};
 use tonic::Code;
@@ -148,7 +148,7 @@ fn server_defaults() -> Settings {
         normalization: Normalization::GrossExposure,
         target_volatility: 0.12,
         risk_aversion: 4.0,
-        periods_per_year: 52,
+        periods_per_year: Choice::Fixed(52),
         demarket: false,
         missing_policy: MissingPolicy::Reject,
         rp_gamma: 5.0,
@@ -166,6 +166,8 @@ fn server_defaults() -> Settings {
         bootstrap_cv: true,
         seed: 9,
         aggregate: Aggregate::Bagged,
+        risk_calibration: RiskCalibration::LedoitWolf,
+        frequency_check: false,
     }
 }
 

@@ -8,8 +8,8 @@ use faer::linalg::solvers::Solve as _;
 use keelson::convert::weight_set_to_proto;
 use keelson::demo::synthetic_panel;
 use keelson::estimator::{
-    self, Choice, EigenPath, FitOptions, Moments, Normalization, ReturnPanel, Scaling, Settings, ValidSettings,
-    WeightSet,
+    self, Choice, EigenPath, FitOptions, Moments, Normalization, ReturnPanel, RiskCalibration, Scaling, Settings,
+    ValidSettings, WeightSet,
 };
 use prost::Message as _;
 
@@ -208,7 +208,9 @@ fn diagnostics_are_internally_consistent() {
         let ws = estimator::fit(&p, &settings(|s| s.scaling = scaling)).unwrap();
         let rc: f64 = ws.factors.iter().map(|f| f.risk_contribution).sum();
         assert!((rc - 1.0).abs() < 1e-12, "{scaling:?}: risk contributions sum to {rc}");
-        assert!((ws.diagnostics.ex_ante_volatility - 0.10).abs() < 1e-12);
+        // SPEC §13: the in-window volatility is the target times the risk calibration's factor.
+        let factor = ws.diagnostics.risk_calibration.map_or(1.0, |c| c.factor);
+        assert!((ws.diagnostics.ex_ante_volatility - 0.10 * factor).abs() < 1e-12);
         assert_eq!(ws.factors[4].weight, 0.0);
         assert_eq!(ws.factors[4].excluded.as_ref().map(|e| e.0), Some("missing-values"));
         let surface = ws.diagnostics.cv_surface.as_ref().unwrap();
@@ -223,16 +225,19 @@ fn skipping_the_held_out_check_changes_only_the_held_out_diagnostics() {
     // them off must leave every weight bit-for-bit unchanged, for every scaling.
     let p = synthetic_panel(12, 120, 30);
     for scaling in Scaling::ALL {
+        // The held-out risk calibration needs the folds too (SPEC §13): off here.
         let with = settings(|s| {
             s.scaling = scaling;
             s.components = Choice::Fixed(4);
             s.kappa = Choice::Fixed(0.7);
+            s.risk_calibration = RiskCalibration::Off;
         });
         let without = settings(|s| {
             s.scaling = scaling;
             s.components = Choice::Fixed(4);
             s.kappa = Choice::Fixed(0.7);
             s.held_out_check = false;
+            s.risk_calibration = RiskCalibration::Off;
         });
         let a = estimator::fit(&p, &with).unwrap();
         let b = estimator::fit(&p, &without).unwrap();
@@ -301,7 +306,10 @@ fn the_bootstrap_is_deterministic_and_bagging_renormalises() {
         }),
     )
     .unwrap();
-    assert!((bagged.diagnostics.ex_ante_volatility - 0.10).abs() < 1e-12, "normalised again");
+    // Normalised again, with the point fit's risk calibration (SPEC §13).
+    let factor = bagged.diagnostics.risk_calibration.map_or(1.0, |c| c.factor);
+    assert_eq!(factor, plain.diagnostics.risk_calibration.map_or(1.0, |c| c.factor));
+    assert!((bagged.diagnostics.ex_ante_volatility - 0.10 * factor).abs() < 1e-12, "normalised again");
     assert_ne!(weights(&bagged), weights(&plain));
     // Bagged weights point the way of the draws' mean: a positive multiple of it.
     let b = bagged.diagnostics.bootstrap.as_ref().unwrap();

@@ -100,7 +100,9 @@ proptest! {
             prop_assert!((rc - 1.0).abs() < 1e-8, "risk contributions sum to {}", rc);
             prop_assert!(ws.factors.iter().filter(|f| f.excluded.is_some()).all(|f| f.weight == 0.0));
             if s.normalization == Normalization::TargetVolatility {
-                prop_assert!((ws.diagnostics.ex_ante_volatility - s.target_volatility).abs() < 1e-9 * s.target_volatility.max(1.0));
+                // SPEC §13: the target times the risk calibration's factor.
+                let target = s.target_volatility * ws.diagnostics.risk_calibration.map_or(1.0, |c| c.factor);
+                prop_assert!((ws.diagnostics.ex_ante_volatility - target).abs() < 1e-9 * target.max(1.0));
             }
         }
     }

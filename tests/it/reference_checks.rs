@@ -112,6 +112,9 @@ fn check_case(case: &Value) {
     close(&format!("{name} effective_factors"), d.effective_factors, num(&e["effective_factors"]), 0.0);
     close(&format!("{name} top_sharpe_gross_share"), d.top_sharpe_gross_share, num(&e["top_sharpe_gross_share"]), 0.0);
     close(&format!("{name} condition_number"), d.covariance_condition_number, num(&e["condition_number"]), 0.0);
+    // SPEC §13: the risk calibration's factor (NaN when no rule applies).
+    let factor = d.risk_calibration.map_or(f64::NAN, |c| c.factor);
+    close(&format!("{name} risk calibration factor"), factor, num(&e["risk_factor"]), 0.0);
 
     let excluded: Vec<(usize, String)> = e["excluded"]
         .as_array()
@@ -296,4 +299,16 @@ fn plug_in_matches_numpy_solve_and_lstsq() {
     // Centring and removing the market each take one dimension: rank T − 2.
     assert_eq!(plug.rank, p.rows - 2, "a centred, demarketed T×N panel with T < N has rank T−2");
     close_vec("plug-in lstsq", &plug.weights, &nums(&exp["steps"]["plug_in_lstsq_wide"]["weights"]));
+}
+
+#[test]
+fn wishart_inflation_matches_a_numpy_monte_carlo() {
+    // SPEC §13: the plug-in's window-length correction. The closed form was
+    // recalled from memory; numpy's 20,000-draw Monte Carlo of Wishart(I, m)
+    // moments (tests/reference/make_reference.py) confirms it to sampling error.
+    let e = &expected()["steps"]["wishart_inflation_mc"];
+    let got = keelson::estimator::calibration::wishart_inflation(num(&e["periods"]), num(&e["parameters"]));
+    close("wishart formula", got, num(&e["formula"]), 0.0);
+    let mc = num(&e["ratio"]);
+    assert!((got / mc - 1.0).abs() < 0.02, "formula {got} against Monte Carlo {mc}");
 }

@@ -43,7 +43,11 @@ def _to_dict(message) -> dict:
 def _labels(index: pd.Index) -> list:
     """Period labels as the service reads them: YYYY-MM for months, YYYY-MM-DD for days."""
     if isinstance(index, pd.PeriodIndex):
-        return [str(p) for p in index]
+        # Months as YYYY-MM; any other period by its last day, so that the service reads the
+        # frequency from the labels' spacing (weekly, quarterly and annual periods included).
+        if index.freqstr.startswith("M"):
+            return [p.strftime("%Y-%m") for p in index]
+        return [p.end_time.strftime("%Y-%m-%d") for p in index]
     if isinstance(index, pd.DatetimeIndex):
         return [t.strftime("%Y-%m-%d") for t in index]
     return [str(v) for v in index]

@@ -19,9 +19,11 @@ _ENUMS = {
     "normalization": "NORMALIZATION_",
     "missing_policy": "MISSING_POLICY_",
     "aggregate": "AGGREGATE_",
+    "risk_calibration": "RISK_CALIBRATION_",
 }
-# A number, or "auto" (chosen by cross-validation, or one year for holding_periods).
-_AUTO = ("components", "kappa", "holding_periods")
+# A number, or "auto" (chosen by cross-validation, one year for holding_periods, read
+# from the period labels for periods_per_year).
+_AUTO = ("components", "kappa", "holding_periods", "periods_per_year")
 # A bound, or "off".
 _CAPS = ("max_weight", "max_gross", "max_market_weight", "max_turnover")
 # Everything else is a plain field of the message.
@@ -60,7 +62,7 @@ def settings_message(settings: Optional[Mapping[str, object]]) -> pb.Settings:
             if isinstance(value, str) and value.strip().lower() == "auto":
                 setattr(msg, f"{key}_auto", True)
             else:
-                setattr(msg, key, _number(key, value, integer=key == "components"))
+                setattr(msg, key, _number(key, value, integer=key in ("components", "periods_per_year")))
         elif key in _CAPS:
             if value is None or (isinstance(value, str) and value.strip().lower() == "off"):
                 setattr(msg, f"{key}_off", True)

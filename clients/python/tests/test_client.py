@@ -257,3 +257,23 @@ def test_nan_returns_pass_as_missing_values(server, window):
         result = keelson.compute_weights(factors, market=window["MKT"])
     excluded = result.to_frame().loc[factors.columns[2]]
     assert bool(excluded["excluded"]) and result.weights[factors.columns[2]] == 0.0
+
+
+def test_the_frequency_is_read_from_the_index_and_a_contradiction_refused(server, window):
+    # SPEC §13: business days (pandas bdate_range) → 252 a year; quarters → 4; a stated
+    # monthly frequency that daily labels contradict → FREQUENCY_MISMATCH naming both.
+    factors = window.drop(columns=["MKT"])
+    daily = factors.set_axis(pd.bdate_range("2015-01-02", periods=len(factors)))
+    quarterly = factors.set_axis(pd.period_range("1990Q1", periods=len(factors), freq="Q"))
+    with Client(server.address) as keelson:
+        d = keelson.compute_weights(daily).diagnostics
+        q = keelson.compute_weights(quarterly).diagnostics
+        with pytest.raises(KeelsonError) as err:
+            keelson.compute_weights(daily, settings={"periods_per_year": 12})
+        unchecked = keelson.compute_weights(daily, settings={"periods_per_year": 12, "frequency_check": False})
+    assert (d["periodsPerYear"], d["periodsPerYearInferred"]) == (252, True)
+    assert (q["periodsPerYear"], q["periodsPerYearInferred"]) == (4, True)
+    e = err.value
+    assert e.code == grpc.StatusCode.INVALID_ARGUMENT and e.reason == "FREQUENCY_MISMATCH"
+    assert e.field == "settings.periods_per_year" and e.metadata.get("inferred") == "252"
+    assert unchecked.diagnostics["periodsPerYear"] == 12

@@ -48,6 +48,13 @@ class Method(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     METHOD_PLUG_IN_LEDOIT_WOLF: _ClassVar[Method]
     METHOD_ENSEMBLE: _ClassVar[Method]
 
+class RiskCalibration(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    RISK_CALIBRATION_UNSPECIFIED: _ClassVar[RiskCalibration]
+    RISK_CALIBRATION_HELD_OUT: _ClassVar[RiskCalibration]
+    RISK_CALIBRATION_LEDOIT_WOLF: _ClassVar[RiskCalibration]
+    RISK_CALIBRATION_OFF: _ClassVar[RiskCalibration]
+
 class Aggregate(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     AGGREGATE_UNSPECIFIED: _ClassVar[Aggregate]
@@ -79,6 +86,10 @@ METHOD_EQUAL_WEIGHT: Method
 METHOD_KNS_RIDGE: Method
 METHOD_PLUG_IN_LEDOIT_WOLF: Method
 METHOD_ENSEMBLE: Method
+RISK_CALIBRATION_UNSPECIFIED: RiskCalibration
+RISK_CALIBRATION_HELD_OUT: RiskCalibration
+RISK_CALIBRATION_LEDOIT_WOLF: RiskCalibration
+RISK_CALIBRATION_OFF: RiskCalibration
 AGGREGATE_UNSPECIFIED: Aggregate
 AGGREGATE_POINT: Aggregate
 AGGREGATE_BAGGED: Aggregate
@@ -94,7 +105,7 @@ class Matrix(_message.Message):
     def __init__(self, rows: _Optional[int] = ..., cols: _Optional[int] = ..., values: _Optional[_Iterable[float]] = ...) -> None: ...
 
 class Settings(_message.Message):
-    __slots__ = ("scaling", "components", "components_auto", "max_components", "kappa", "kappa_auto", "kappa_grid_min", "kappa_grid_max", "kappa_grid_points", "l1_penalty", "folds", "cv_criterion", "normalization", "target_volatility", "risk_aversion", "periods_per_year", "demarket", "missing_policy", "rp_gamma", "min_periods", "method", "held_out_check", "max_weight", "max_weight_off", "max_gross", "max_gross_off", "max_market_weight", "max_market_weight_off", "max_turnover", "max_turnover_off", "cost_bps", "holding_periods", "holding_periods_auto", "volatility_halflife", "bootstrap_draws", "bootstrap_block", "bootstrap_cv", "seed", "aggregate")
+    __slots__ = ("scaling", "components", "components_auto", "max_components", "kappa", "kappa_auto", "kappa_grid_min", "kappa_grid_max", "kappa_grid_points", "l1_penalty", "folds", "cv_criterion", "normalization", "target_volatility", "risk_aversion", "periods_per_year", "periods_per_year_auto", "demarket", "missing_policy", "rp_gamma", "min_periods", "method", "held_out_check", "max_weight", "max_weight_off", "max_gross", "max_gross_off", "max_market_weight", "max_market_weight_off", "max_turnover", "max_turnover_off", "cost_bps", "holding_periods", "holding_periods_auto", "volatility_halflife", "bootstrap_draws", "bootstrap_block", "bootstrap_cv", "seed", "aggregate", "risk_calibration", "frequency_check")
     SCALING_FIELD_NUMBER: _ClassVar[int]
     COMPONENTS_FIELD_NUMBER: _ClassVar[int]
     COMPONENTS_AUTO_FIELD_NUMBER: _ClassVar[int]
@@ -111,6 +122,7 @@ class Settings(_message.Message):
     TARGET_VOLATILITY_FIELD_NUMBER: _ClassVar[int]
     RISK_AVERSION_FIELD_NUMBER: _ClassVar[int]
     PERIODS_PER_YEAR_FIELD_NUMBER: _ClassVar[int]
+    PERIODS_PER_YEAR_AUTO_FIELD_NUMBER: _ClassVar[int]
     DEMARKET_FIELD_NUMBER: _ClassVar[int]
     MISSING_POLICY_FIELD_NUMBER: _ClassVar[int]
     RP_GAMMA_FIELD_NUMBER: _ClassVar[int]
@@ -134,6 +146,8 @@ class Settings(_message.Message):
     BOOTSTRAP_CV_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
     AGGREGATE_FIELD_NUMBER: _ClassVar[int]
+    RISK_CALIBRATION_FIELD_NUMBER: _ClassVar[int]
+    FREQUENCY_CHECK_FIELD_NUMBER: _ClassVar[int]
     scaling: Scaling
     components: int
     components_auto: bool
@@ -150,6 +164,7 @@ class Settings(_message.Message):
     target_volatility: float
     risk_aversion: float
     periods_per_year: int
+    periods_per_year_auto: bool
     demarket: bool
     missing_policy: MissingPolicy
     rp_gamma: float
@@ -173,7 +188,9 @@ class Settings(_message.Message):
     bootstrap_cv: bool
     seed: int
     aggregate: Aggregate
-    def __init__(self, scaling: _Optional[_Union[Scaling, str]] = ..., components: _Optional[int] = ..., components_auto: _Optional[bool] = ..., max_components: _Optional[int] = ..., kappa: _Optional[float] = ..., kappa_auto: _Optional[bool] = ..., kappa_grid_min: _Optional[float] = ..., kappa_grid_max: _Optional[float] = ..., kappa_grid_points: _Optional[int] = ..., l1_penalty: _Optional[float] = ..., folds: _Optional[int] = ..., cv_criterion: _Optional[_Union[CvCriterion, str]] = ..., normalization: _Optional[_Union[Normalization, str]] = ..., target_volatility: _Optional[float] = ..., risk_aversion: _Optional[float] = ..., periods_per_year: _Optional[int] = ..., demarket: _Optional[bool] = ..., missing_policy: _Optional[_Union[MissingPolicy, str]] = ..., rp_gamma: _Optional[float] = ..., min_periods: _Optional[int] = ..., method: _Optional[_Union[Method, str]] = ..., held_out_check: _Optional[bool] = ..., max_weight: _Optional[float] = ..., max_weight_off: _Optional[bool] = ..., max_gross: _Optional[float] = ..., max_gross_off: _Optional[bool] = ..., max_market_weight: _Optional[float] = ..., max_market_weight_off: _Optional[bool] = ..., max_turnover: _Optional[float] = ..., max_turnover_off: _Optional[bool] = ..., cost_bps: _Optional[float] = ..., holding_periods: _Optional[float] = ..., holding_periods_auto: _Optional[bool] = ..., volatility_halflife: _Optional[float] = ..., bootstrap_draws: _Optional[int] = ..., bootstrap_block: _Optional[float] = ..., bootstrap_cv: _Optional[bool] = ..., seed: _Optional[int] = ..., aggregate: _Optional[_Union[Aggregate, str]] = ...) -> None: ...
+    risk_calibration: RiskCalibration
+    frequency_check: bool
+    def __init__(self, scaling: _Optional[_Union[Scaling, str]] = ..., components: _Optional[int] = ..., components_auto: _Optional[bool] = ..., max_components: _Optional[int] = ..., kappa: _Optional[float] = ..., kappa_auto: _Optional[bool] = ..., kappa_grid_min: _Optional[float] = ..., kappa_grid_max: _Optional[float] = ..., kappa_grid_points: _Optional[int] = ..., l1_penalty: _Optional[float] = ..., folds: _Optional[int] = ..., cv_criterion: _Optional[_Union[CvCriterion, str]] = ..., normalization: _Optional[_Union[Normalization, str]] = ..., target_volatility: _Optional[float] = ..., risk_aversion: _Optional[float] = ..., periods_per_year: _Optional[int] = ..., periods_per_year_auto: _Optional[bool] = ..., demarket: _Optional[bool] = ..., missing_policy: _Optional[_Union[MissingPolicy, str]] = ..., rp_gamma: _Optional[float] = ..., min_periods: _Optional[int] = ..., method: _Optional[_Union[Method, str]] = ..., held_out_check: _Optional[bool] = ..., max_weight: _Optional[float] = ..., max_weight_off: _Optional[bool] = ..., max_gross: _Optional[float] = ..., max_gross_off: _Optional[bool] = ..., max_market_weight: _Optional[float] = ..., max_market_weight_off: _Optional[bool] = ..., max_turnover: _Optional[float] = ..., max_turnover_off: _Optional[bool] = ..., cost_bps: _Optional[float] = ..., holding_periods: _Optional[float] = ..., holding_periods_auto: _Optional[bool] = ..., volatility_halflife: _Optional[float] = ..., bootstrap_draws: _Optional[int] = ..., bootstrap_block: _Optional[float] = ..., bootstrap_cv: _Optional[bool] = ..., seed: _Optional[int] = ..., aggregate: _Optional[_Union[Aggregate, str]] = ..., risk_calibration: _Optional[_Union[RiskCalibration, str]] = ..., frequency_check: _Optional[bool] = ...) -> None: ...
 
 class FactorWeight(_message.Message):
     __slots__ = ("factor", "weight", "mean_annualized", "volatility_annualized", "sharpe_annualized", "market_beta", "scale", "risk_contribution", "excluded", "exclusion_reason", "model_weight")
@@ -272,7 +289,7 @@ class Warning(_message.Message):
     def __init__(self, code: _Optional[str] = ..., message: _Optional[str] = ...) -> None: ...
 
 class Diagnostics(_message.Message):
-    __slots__ = ("num_components", "kappa", "gamma", "components_cross_validated", "kappa_cross_validated", "cv_surface", "cv_best_score", "cv_sharpe", "in_sample_sharpe", "ex_ante_volatility", "effective_factors", "top_sharpe_gross_share", "turnover", "covariance_condition_number", "excluded", "warnings", "periods", "factors_used", "effective_settings", "implementation", "chosen_scaling", "scaling_scores", "bootstrap")
+    __slots__ = ("num_components", "kappa", "gamma", "components_cross_validated", "kappa_cross_validated", "cv_surface", "cv_best_score", "cv_sharpe", "in_sample_sharpe", "ex_ante_volatility", "effective_factors", "top_sharpe_gross_share", "turnover", "covariance_condition_number", "excluded", "warnings", "periods", "factors_used", "effective_settings", "implementation", "chosen_scaling", "scaling_scores", "bootstrap", "risk_calibration", "periods_per_year", "periods_per_year_inferred")
     NUM_COMPONENTS_FIELD_NUMBER: _ClassVar[int]
     KAPPA_FIELD_NUMBER: _ClassVar[int]
     GAMMA_FIELD_NUMBER: _ClassVar[int]
@@ -296,6 +313,9 @@ class Diagnostics(_message.Message):
     CHOSEN_SCALING_FIELD_NUMBER: _ClassVar[int]
     SCALING_SCORES_FIELD_NUMBER: _ClassVar[int]
     BOOTSTRAP_FIELD_NUMBER: _ClassVar[int]
+    RISK_CALIBRATION_FIELD_NUMBER: _ClassVar[int]
+    PERIODS_PER_YEAR_FIELD_NUMBER: _ClassVar[int]
+    PERIODS_PER_YEAR_INFERRED_FIELD_NUMBER: _ClassVar[int]
     num_components: int
     kappa: float
     gamma: float
@@ -319,7 +339,30 @@ class Diagnostics(_message.Message):
     chosen_scaling: Scaling
     scaling_scores: _containers.RepeatedCompositeFieldContainer[ScalingScore]
     bootstrap: Bootstrap
-    def __init__(self, num_components: _Optional[int] = ..., kappa: _Optional[float] = ..., gamma: _Optional[float] = ..., components_cross_validated: _Optional[bool] = ..., kappa_cross_validated: _Optional[bool] = ..., cv_surface: _Optional[_Union[CvSurface, _Mapping]] = ..., cv_best_score: _Optional[float] = ..., cv_sharpe: _Optional[float] = ..., in_sample_sharpe: _Optional[float] = ..., ex_ante_volatility: _Optional[float] = ..., effective_factors: _Optional[float] = ..., top_sharpe_gross_share: _Optional[float] = ..., turnover: _Optional[float] = ..., covariance_condition_number: _Optional[float] = ..., excluded: _Optional[_Iterable[_Union[ExcludedFactor, _Mapping]]] = ..., warnings: _Optional[_Iterable[_Union[Warning, _Mapping]]] = ..., periods: _Optional[int] = ..., factors_used: _Optional[int] = ..., effective_settings: _Optional[_Union[Settings, _Mapping]] = ..., implementation: _Optional[_Union[Implementation, _Mapping]] = ..., chosen_scaling: _Optional[_Union[Scaling, str]] = ..., scaling_scores: _Optional[_Iterable[_Union[ScalingScore, _Mapping]]] = ..., bootstrap: _Optional[_Union[Bootstrap, _Mapping]] = ...) -> None: ...
+    risk_calibration: RiskCalibrationReport
+    periods_per_year: int
+    periods_per_year_inferred: bool
+    def __init__(self, num_components: _Optional[int] = ..., kappa: _Optional[float] = ..., gamma: _Optional[float] = ..., components_cross_validated: _Optional[bool] = ..., kappa_cross_validated: _Optional[bool] = ..., cv_surface: _Optional[_Union[CvSurface, _Mapping]] = ..., cv_best_score: _Optional[float] = ..., cv_sharpe: _Optional[float] = ..., in_sample_sharpe: _Optional[float] = ..., ex_ante_volatility: _Optional[float] = ..., effective_factors: _Optional[float] = ..., top_sharpe_gross_share: _Optional[float] = ..., turnover: _Optional[float] = ..., covariance_condition_number: _Optional[float] = ..., excluded: _Optional[_Iterable[_Union[ExcludedFactor, _Mapping]]] = ..., warnings: _Optional[_Iterable[_Union[Warning, _Mapping]]] = ..., periods: _Optional[int] = ..., factors_used: _Optional[int] = ..., effective_settings: _Optional[_Union[Settings, _Mapping]] = ..., implementation: _Optional[_Union[Implementation, _Mapping]] = ..., chosen_scaling: _Optional[_Union[Scaling, str]] = ..., scaling_scores: _Optional[_Iterable[_Union[ScalingScore, _Mapping]]] = ..., bootstrap: _Optional[_Union[Bootstrap, _Mapping]] = ..., risk_calibration: _Optional[_Union[RiskCalibrationReport, _Mapping]] = ..., periods_per_year: _Optional[int] = ..., periods_per_year_inferred: _Optional[bool] = ...) -> None: ...
+
+class RiskCalibrationReport(_message.Message):
+    __slots__ = ("rule", "factor", "measured_ratio", "standard_error", "held_out_periods", "in_window_volatility", "calibrated_volatility", "limited")
+    RULE_FIELD_NUMBER: _ClassVar[int]
+    FACTOR_FIELD_NUMBER: _ClassVar[int]
+    MEASURED_RATIO_FIELD_NUMBER: _ClassVar[int]
+    STANDARD_ERROR_FIELD_NUMBER: _ClassVar[int]
+    HELD_OUT_PERIODS_FIELD_NUMBER: _ClassVar[int]
+    IN_WINDOW_VOLATILITY_FIELD_NUMBER: _ClassVar[int]
+    CALIBRATED_VOLATILITY_FIELD_NUMBER: _ClassVar[int]
+    LIMITED_FIELD_NUMBER: _ClassVar[int]
+    rule: RiskCalibration
+    factor: float
+    measured_ratio: float
+    standard_error: float
+    held_out_periods: int
+    in_window_volatility: float
+    calibrated_volatility: float
+    limited: bool
+    def __init__(self, rule: _Optional[_Union[RiskCalibration, str]] = ..., factor: _Optional[float] = ..., measured_ratio: _Optional[float] = ..., standard_error: _Optional[float] = ..., held_out_periods: _Optional[int] = ..., in_window_volatility: _Optional[float] = ..., calibrated_volatility: _Optional[float] = ..., limited: _Optional[bool] = ...) -> None: ...
 
 class FactorInterval(_message.Message):
     __slots__ = ("factor", "q05", "q50", "q95", "sign_agreement")
