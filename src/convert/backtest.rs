@@ -77,6 +77,8 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         kappa_at_edge,
         components_at_cap,
         missing_holding_returns,
+        limit_bound_refits,
+        binding_limits,
     } = s;
     let Metrics { mean, volatility, sharpe, sharpe_se_iid, sharpe_se_nw, cer, max_drawdown, skewness, kurtosis } =
         metrics;
@@ -110,6 +112,11 @@ fn strategy_to_proto(s: &StrategyResult) -> proto::StrategyPerformance {
         skewness: *skewness,
         kurtosis: *kurtosis,
         missing_holding_returns: *missing_holding_returns as u32,
+        limit_bound_refits: *limit_bound_refits as u32,
+        binding_limits: binding_limits
+            .iter()
+            .map(|l| proto::LimitCount { limit: l.limit.clone(), refits: l.refits as u32 })
+            .collect(),
     }
 }
 

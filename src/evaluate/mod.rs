@@ -299,6 +299,20 @@ pub struct StrategyResult {
     pub top_sharpe_share: Vec<f64>,
     /// Holding-period returns that were missing for a factor with weight (counted as 0).
     pub missing_holding_returns: usize,
+    /// Refits at which some limit bound, so that a limit and not the volatility
+    /// target set the risk held (SPEC §10, §13).
+    pub limit_bound_refits: usize,
+    /// Each limit that bound, with the number of refits it bound at, most first.
+    pub binding_limits: Vec<LimitCount>,
+}
+
+/// How often one limit bound across a backtest's refits.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+pub struct LimitCount {
+    /// The setting: `max_weight`, `max_gross`, `max_market_weight`, `max_turnover`.
+    pub limit: String,
+    /// Refits at which it bound.
+    pub refits: usize,
 }
 
 /// How often one warning code was raised across a backtest's refits.
@@ -413,6 +427,9 @@ struct Held {
     sharpe_model: f64,
     /// Codes of every warning the fit (and its implementation stage) raised, sorted, once each.
     warnings: Vec<&'static str>,
+    /// The limits that bound at the implementation stage, sorted, once each
+    /// (empty: the volatility target set the risk).
+    binding: Vec<&'static str>,
     /// Component loadings (configured strategy only) and betas.
     components: Vec<Vec<f64>>,
     betas: Vec<f64>,
@@ -454,6 +471,7 @@ fn held_weights(ws: &WeightSet) -> Held {
             ws.diagnostics.in_sample_sharpe
         },
         warnings: codes(&ws.diagnostics.warnings),
+        binding: Vec::new(),
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -523,6 +541,7 @@ fn market_held(cols: usize) -> Held {
         top_share: 0.0,
         sharpe_model: 0.0,
         warnings: Vec::new(),
+        binding: Vec::new(),
         components: Vec::new(),
         betas: Vec::new(),
     }
@@ -733,6 +752,9 @@ fn implement_strategy(
         h.warnings.extend(warnings.iter().map(|w| w.code));
         h.warnings.sort_unstable();
         h.warnings.dedup();
+        h.binding = done.report.binding.iter().map(|b| b.constraint).collect();
+        h.binding.sort_unstable();
+        h.binding.dedup();
         prev = (h.weights.clone(), h.market);
     }
     Ok(())
@@ -831,6 +853,17 @@ fn strategy_results(
             }
         }
         warnings.sort_by(|a, b| b.refits.cmp(&a.refits).then_with(|| a.code.cmp(&b.code)));
+        let mut binding_limits: Vec<LimitCount> = Vec::new();
+        for f in fits {
+            for &limit in &f.held[si].binding {
+                match binding_limits.iter_mut().find(|l| l.limit == limit) {
+                    Some(l) => l.refits += 1,
+                    None => binding_limits.push(LimitCount { limit: limit.to_owned(), refits: 1 }),
+                }
+            }
+        }
+        binding_limits.sort_by(|a, b| b.refits.cmp(&a.refits).then_with(|| a.limit.cmp(&b.limit)));
+        let limit_bound_refits = fits.iter().filter(|f| !f.held[si].binding.is_empty()).count();
         let refits_with = |code: &str| warnings.iter().find(|w| w.code == code).map_or(0, |w| w.refits);
         let (kappa_at_edge, components_at_cap) =
             (refits_with("kappa-at-grid-edge"), refits_with("components-at-grid-edge"));
@@ -853,6 +886,8 @@ fn strategy_results(
             chosen_kappa: fits.iter().map(|f| f.held[si].kappa).collect(),
             top_sharpe_share: fits.iter().map(|f| f.held[si].top_share).collect(),
             missing_holding_returns: missing,
+            limit_bound_refits,
+            binding_limits,
         });
     }
     results

@@ -49,6 +49,9 @@ pub fn summary_table(r: &BacktestResult) -> String {
         );
     }
     let _ = writeln!(out, "{}", constraint_line(&r.constraints));
+    for line in risk_lines(r) {
+        let _ = writeln!(out, "{line}");
+    }
     for line in warning_lines(r) {
         let _ = writeln!(out, "{line}");
     }
@@ -108,6 +111,30 @@ pub fn constraint_line(c: &crate::evaluate::ConstraintSet) -> String {
             String::new()
         }
     )
+}
+
+/// With limits on, what set each fitted strategy's risk (SPEC §10, §13): the
+/// volatility target, or a limit that bound (with how often each bound).
+pub fn risk_lines(r: &BacktestResult) -> Vec<String> {
+    if !r.constraints.active() {
+        return Vec::new();
+    }
+    r.strategies
+        .iter()
+        .filter(|s| s.target_volatility.is_some() && s.name != crate::evaluate::MODEL)
+        .map(|s| {
+            let by_target = r.refits - s.limit_bound_refits;
+            let limits: Vec<String> = s.binding_limits.iter().map(|l| format!("{} {}", l.limit, l.refits)).collect();
+            format!(
+                "risk set, {}: by the volatility target in {by_target}/{} refits, by a limit in {}/{}{}",
+                s.name,
+                r.refits,
+                s.limit_bound_refits,
+                r.refits,
+                if limits.is_empty() { String::new() } else { format!(" ({})", limits.join(", ")) }
+            )
+        })
+        .collect()
 }
 
 /// Every warning code each strategy's refits raised, one line per strategy:
@@ -594,6 +621,14 @@ fn header(r: &BacktestResult, title: &str) -> String {
 fn performance_section(r: &BacktestResult) -> String {
     let mut html = String::new();
     let _ = write!(html, "<h2>Performance</h2><p>{}</p>", esc(&constraint_line(&r.constraints)));
+    let risk = risk_lines(r);
+    if !risk.is_empty() {
+        html.push_str("<ul class=\"note\">");
+        for line in risk {
+            let _ = write!(html, "<li>{}</li>", esc(&line));
+        }
+        html.push_str("</ul>");
+    }
     html.push_str("<table><tr><th>strategy</th><th>mean</th><th>vol</th><th>vol target</th><th>Sharpe</th><th>SE iid</th><th>SE NW</th><th>CER</th><th>max DD</th><th>gross median</th><th>gross max</th><th>turnover</th><th>net Sharpe</th></tr>");
     for s in &r.strategies {
         let m = &s.metrics;

@@ -575,7 +575,7 @@ class BacktestProgress(_message.Message):
     def __init__(self, fits_done: _Optional[int] = ..., fits_total: _Optional[int] = ...) -> None: ...
 
 class StrategyPerformance(_message.Message):
-    __slots__ = ("name", "returns", "net_returns", "mean", "volatility", "sharpe", "sharpe_se_iid", "sharpe_se_newey_west", "cer", "max_drawdown", "net_sharpe", "average_turnover", "chosen_components", "chosen_kappa", "top_sharpe_share", "gross_median", "gross_max", "target_volatility", "kappa_at_edge", "components_at_cap", "id", "settings", "warnings", "skewness", "kurtosis", "missing_holding_returns")
+    __slots__ = ("name", "returns", "net_returns", "mean", "volatility", "sharpe", "sharpe_se_iid", "sharpe_se_newey_west", "cer", "max_drawdown", "net_sharpe", "average_turnover", "chosen_components", "chosen_kappa", "top_sharpe_share", "gross_median", "gross_max", "target_volatility", "kappa_at_edge", "components_at_cap", "id", "settings", "warnings", "skewness", "kurtosis", "missing_holding_returns", "limit_bound_refits", "binding_limits")
     NAME_FIELD_NUMBER: _ClassVar[int]
     RETURNS_FIELD_NUMBER: _ClassVar[int]
     NET_RETURNS_FIELD_NUMBER: _ClassVar[int]
@@ -602,6 +602,8 @@ class StrategyPerformance(_message.Message):
     SKEWNESS_FIELD_NUMBER: _ClassVar[int]
     KURTOSIS_FIELD_NUMBER: _ClassVar[int]
     MISSING_HOLDING_RETURNS_FIELD_NUMBER: _ClassVar[int]
+    LIMIT_BOUND_REFITS_FIELD_NUMBER: _ClassVar[int]
+    BINDING_LIMITS_FIELD_NUMBER: _ClassVar[int]
     name: str
     returns: _containers.RepeatedScalarFieldContainer[float]
     net_returns: _containers.RepeatedScalarFieldContainer[float]
@@ -628,7 +630,17 @@ class StrategyPerformance(_message.Message):
     skewness: float
     kurtosis: float
     missing_holding_returns: int
-    def __init__(self, name: _Optional[str] = ..., returns: _Optional[_Iterable[float]] = ..., net_returns: _Optional[_Iterable[float]] = ..., mean: _Optional[float] = ..., volatility: _Optional[float] = ..., sharpe: _Optional[float] = ..., sharpe_se_iid: _Optional[float] = ..., sharpe_se_newey_west: _Optional[float] = ..., cer: _Optional[float] = ..., max_drawdown: _Optional[float] = ..., net_sharpe: _Optional[float] = ..., average_turnover: _Optional[float] = ..., chosen_components: _Optional[_Iterable[int]] = ..., chosen_kappa: _Optional[_Iterable[float]] = ..., top_sharpe_share: _Optional[_Iterable[float]] = ..., gross_median: _Optional[float] = ..., gross_max: _Optional[float] = ..., target_volatility: _Optional[float] = ..., kappa_at_edge: _Optional[int] = ..., components_at_cap: _Optional[int] = ..., id: _Optional[str] = ..., settings: _Optional[_Union[Settings, _Mapping]] = ..., warnings: _Optional[_Iterable[_Union[WarningCount, _Mapping]]] = ..., skewness: _Optional[float] = ..., kurtosis: _Optional[float] = ..., missing_holding_returns: _Optional[int] = ...) -> None: ...
+    limit_bound_refits: int
+    binding_limits: _containers.RepeatedCompositeFieldContainer[LimitCount]
+    def __init__(self, name: _Optional[str] = ..., returns: _Optional[_Iterable[float]] = ..., net_returns: _Optional[_Iterable[float]] = ..., mean: _Optional[float] = ..., volatility: _Optional[float] = ..., sharpe: _Optional[float] = ..., sharpe_se_iid: _Optional[float] = ..., sharpe_se_newey_west: _Optional[float] = ..., cer: _Optional[float] = ..., max_drawdown: _Optional[float] = ..., net_sharpe: _Optional[float] = ..., average_turnover: _Optional[float] = ..., chosen_components: _Optional[_Iterable[int]] = ..., chosen_kappa: _Optional[_Iterable[float]] = ..., top_sharpe_share: _Optional[_Iterable[float]] = ..., gross_median: _Optional[float] = ..., gross_max: _Optional[float] = ..., target_volatility: _Optional[float] = ..., kappa_at_edge: _Optional[int] = ..., components_at_cap: _Optional[int] = ..., id: _Optional[str] = ..., settings: _Optional[_Union[Settings, _Mapping]] = ..., warnings: _Optional[_Iterable[_Union[WarningCount, _Mapping]]] = ..., skewness: _Optional[float] = ..., kurtosis: _Optional[float] = ..., missing_holding_returns: _Optional[int] = ..., limit_bound_refits: _Optional[int] = ..., binding_limits: _Optional[_Iterable[_Union[LimitCount, _Mapping]]] = ...) -> None: ...
+
+class LimitCount(_message.Message):
+    __slots__ = ("limit", "refits")
+    LIMIT_FIELD_NUMBER: _ClassVar[int]
+    REFITS_FIELD_NUMBER: _ClassVar[int]
+    limit: str
+    refits: int
+    def __init__(self, limit: _Optional[str] = ..., refits: _Optional[int] = ...) -> None: ...
 
 class WarningCount(_message.Message):
     __slots__ = ("code", "refits")
