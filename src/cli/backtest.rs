@@ -117,19 +117,25 @@ fn writable_dir(dir: &std::path::Path) -> std::io::Result<()> {
     std::fs::remove_file(&probe)
 }
 
-/// Inference lines under the summary table.
+/// Inference lines under the summary table: each comparison, raw and
+/// adjusted, then the verdict.
 pub(crate) fn footer(r: &BacktestResult) -> String {
-    let mut out = String::new();
+    let mut out = String::from("comparisons of Sharpe ratios, gross of costs (p: raw · Holm · Romano–Wolf):\n");
     for c in &r.comparisons {
         out.push_str(&format!(
-            "configured vs {:<40} ΔSharpe {:>6.2}  z {:>6.2}  p {:.3}\n",
-            c.against, c.test.difference, c.test.z, c.test.p_value
+            "configured vs {:<40} ΔSharpe {:>6.2}  z {:>6.2}  p {:.3} · {:.3} · {:.3}\n",
+            c.against, c.test.difference, c.test.z, c.test.p_value, c.p_holm, c.p_romano_wolf
         ));
     }
     out.push_str(&format!(
-        "probabilistic Sharpe ratio (vs 0) {:.3}; deflated Sharpe ratio over {} configurations {:.3}\n",
-        r.psr, r.trials, r.dsr
+        "probabilistic Sharpe ratio (vs 0) {:.3}; deflated Sharpe ratio over {} distinct candidates {:.3}\n",
+        r.psr,
+        r.trials.len(),
+        r.dsr
     ));
+    out.push_str("verdict: ");
+    out.push_str(&keelson::evaluate::verdict::verdict(r).sentences.join(" "));
+    out.push('\n');
     out
 }
 
@@ -208,9 +214,10 @@ fn demo_reading(r: &BacktestResult) -> String {
         ));
     }
     out.push_str(&format!(
-        ". The deflated Sharpe ratio of the configured method over {} configurations tried is {:.2}. \
+        ". The deflated Sharpe ratio of the configured method over {} distinct candidates tried is {:.2}. \
          On invented data this shows how to read the report, not which method to use: run the backtest on your own history.\n",
-        r.trials, r.dsr
+        r.trials.len(),
+        r.dsr
     ));
     out
 }

@@ -126,8 +126,15 @@ fn sweep_to_proto(p: &SweepPoint) -> proto::SweepPoint {
 }
 
 fn comparison_to_proto(c: &Comparison) -> proto::SharpeComparison {
-    let Comparison { against, test: SharpeDifference { difference, z, p_value } } = c;
-    proto::SharpeComparison { against: against.clone(), difference: *difference, z: *z, p_value: *p_value }
+    let Comparison { against, test: SharpeDifference { difference, z, p_value }, p_holm, p_romano_wolf } = c;
+    proto::SharpeComparison {
+        against: against.clone(),
+        difference: *difference,
+        z: *z,
+        p_value: *p_value,
+        p_value_holm: *p_holm,
+        p_value_romano_wolf: *p_romano_wolf,
+    }
 }
 
 fn alpha_to_proto(a: &AlphaTest) -> proto::AlphaTest {
@@ -217,13 +224,17 @@ pub fn backtest_result_to_proto(r: &BacktestResult, request_id: &str) -> proto::
         comparisons: comparisons.iter().map(comparison_to_proto).collect(),
         probabilistic_sharpe: *psr,
         deflated_sharpe: *dsr,
-        trials: *trials as u32,
+        trials: trials.len() as u32,
+        trial_names: trials.clone(),
+        verdict: crate::evaluate::verdict::verdict(r).sentences,
         alphas: alphas.iter().map(alpha_to_proto).collect(),
         pricing: pricing.as_ref().map(pricing_to_proto),
         newey_west_lag: *nw_lag as u32,
-        latest_fit: last_fit.as_ref().map(|ws| weight_set_to_proto(ws, request_id)),
+        latest_fit: last_fit.as_ref().map(|l| weight_set_to_proto(&l.fit, request_id)),
         options: Some(options_to_proto(spec, *periods_per_year)),
         provenance: Some(provenance_to_proto(provenance)),
+        latest_fit_first_period: last_fit.as_ref().map(|l| l.first_period.clone()).unwrap_or_default(),
+        latest_fit_last_period: last_fit.as_ref().map(|l| l.last_period.clone()).unwrap_or_default(),
     }
 }
 

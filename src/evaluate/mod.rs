@@ -10,6 +10,7 @@
 pub mod provenance;
 pub mod spec;
 pub mod stats;
+pub mod verdict;
 
 pub use provenance::Provenance;
 pub use spec::{BacktestBudget, BacktestSpec, ValidBacktestSpec};
@@ -372,8 +373,12 @@ pub struct PricingTest {
 pub struct Comparison {
     /// Baseline.
     pub against: String,
-    /// The test.
+    /// The test, on returns gross of costs.
     pub test: stats::SharpeDifference,
+    /// Holm (1979) adjusted p-value over every comparison.
+    pub p_holm: f64,
+    /// Romano & Wolf (2005) step-down p-value by the stationary bootstrap.
+    pub p_romano_wolf: f64,
 }
 
 /// Result of a backtest.
@@ -397,15 +402,15 @@ pub struct BacktestResult {
     pub psr: f64,
     /// Deflated Sharpe ratio of the configured method.
     pub dsr: f64,
-    /// Configurations counted as trials for the DSR.
-    pub trials: usize,
+    /// The distinct candidate configurations counted as trials for the DSR.
+    pub trials: Vec<String>,
     /// Alphas of every strategy against every benchmark set.
     pub alphas: Vec<AlphaTest>,
     /// Pricing test of the configured K-component model.
     pub pricing: Option<PricingTest>,
     /// The configured method's fit on the latest window.
     #[serde(skip)]
-    pub last_fit: Option<WeightSet>,
+    pub last_fit: Option<LatestFit>,
     /// Newey–West lag used.
     pub nw_lag: usize,
     /// The implementation limits every fitted strategy ran under (SPEC §10).
@@ -413,6 +418,17 @@ pub struct BacktestResult {
     /// What ran, on what, by which build, when (the caller names the
     /// invocation and the input).
     pub provenance: Provenance,
+}
+
+/// The portfolio to hold: the configured method's fit on the latest window.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LatestFit {
+    /// Label of the window's first period.
+    pub first_period: String,
+    /// Label of the window's last period (the data's latest).
+    pub last_period: String,
+    /// The fit, with the implementation stage when limits or costs are set.
+    pub fit: WeightSet,
 }
 
 /// One refit's outcome for one strategy.
@@ -509,8 +525,13 @@ impl Schedule {
         let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
         // Bounded by check(): at most the window's rank and settings.max_components.
         let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k()).collect();
-        let sweep_scalings =
-            if spec.sweep_max_k() > 0 && has_sweep(configured) { Scaling::ALL.to_vec() } else { Vec::new() };
+        // The ridge on every component always uses the covariance basis: its
+        // sweep is that basis alone (every other scaling would repeat it).
+        let sweep_scalings = match configured.method {
+            _ if spec.sweep_max_k() == 0 || !has_sweep(configured) => Vec::new(),
+            Method::KnsRidge => vec![Scaling::Covariance],
+            _ => Scaling::ALL.to_vec(),
+        };
         let dates = (spec.window..panel.rows).step_by(spec.step).collect();
         Schedule { dates, strategies, sweep_ks, sweep_scalings }
     }
@@ -527,8 +548,6 @@ struct DateFits {
     sweep: Vec<Vec<Option<Held>>>,
     /// The configured scaling's loadings at the sweep's largest fitted K.
     basis: Option<Held>,
-    /// The configured method's full fit, kept for the last date only.
-    last: Option<WeightSet>,
 }
 
 /// The market itself, held as a strategy.
@@ -565,9 +584,7 @@ fn fit_date(
         EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
         e => BacktestError::Window { strategy: strategy.to_owned(), period: label(panel, t), source: e },
     };
-    let is_last = d + 1 == plan.dates.len();
     let mut held = Vec::with_capacity(plan.strategies.len());
-    let mut last = None;
     for (i, s) in plan.strategies.iter().enumerate() {
         held.push(match &s.settings {
             None => market_held(panel.cols),
@@ -575,19 +592,9 @@ fn fit_date(
                 // The model portfolios are fitted here, in parallel over dates; the
                 // implementation stage runs after, date by date (see `implement_all`).
                 let settings = &model_settings(settings);
-                // Only the latest configured fit is reported whole, fingerprint included.
-                let ws = if i == 0 && is_last {
-                    estimator::fit_with(&window, settings, &opts)
-                } else {
-                    estimator::fit_unhashed(&window, settings, &opts)
-                }
-                .map_err(|e| wrap(&s.name, e))?;
+                let ws = estimator::fit_unhashed(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
                 // Only the configured fits feed the pricing test: the others keep no loadings.
-                let h = if i == 0 { held_from(&ws) } else { held_weights(&ws) };
-                if i == 0 && is_last {
-                    last = Some(ws);
-                }
-                h
+                if i == 0 { held_from(&ws) } else { held_weights(&ws) }
             }
         });
         tick();
@@ -609,7 +616,7 @@ fn fit_date(
         sweep.push(fits.iter().map(|r| r.as_ref().ok().map(held_weights)).collect());
         tick();
     }
-    Ok(DateFits { held, sweep, basis, last })
+    Ok(DateFits { held, sweep, basis })
 }
 
 /// Fits every date, split across `spec.threads` workers; results in date order.
@@ -928,34 +935,75 @@ fn candidates(configured: &ValidSettings) -> usize {
     }
 }
 
-/// Luck or skill: JKM tests against every other strategy, and the
-/// probabilistic and deflated Sharpe ratios of the configured method.
+/// Luck or skill: JKM tests against every other strategy (raw, Holm and
+/// Romano–Wolf adjusted), and the probabilistic and deflated Sharpe ratios
+/// of the configured method over the distinct candidates tried.
 struct Inference {
     comparisons: Vec<Comparison>,
     psr: f64,
     dsr: f64,
-    trials: usize,
+    trials: Vec<String>,
+}
+
+/// Bootstrap draws of the Romano–Wolf step-down (fixed seed 0).
+pub const ROMANO_WOLF_DRAWS: usize = 1000;
+
+/// Whether a strategy is a benchmark rather than a candidate configuration:
+/// the market, equal weight and the configured method's model-portfolio row.
+fn is_benchmark(s: &StrategyResult) -> bool {
+    s.name == MODEL || s.settings.as_ref().is_none_or(|v| v.method == Method::EqualWeight)
 }
 
 fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64, candidates: usize) -> Inference {
     let configured = &results[0].returns;
+    let raw: Vec<stats::SharpeDifference> =
+        results[1..].iter().map(|r| stats::jobson_korkie_memmel(configured, &r.returns, p)).collect();
+    let holm = stats::holm(&raw.iter().map(|t| t.p_value).collect::<Vec<_>>());
+    let others: Vec<&[f64]> = results[1..].iter().map(|r| r.returns.as_slice()).collect();
+    let block = (configured.len() as f64).cbrt().ceil();
+    let romano_wolf = stats::romano_wolf(configured, &others, ROMANO_WOLF_DRAWS, block, 0);
     let comparisons = results[1..]
         .iter()
-        .map(|r| Comparison { against: r.name.clone(), test: stats::jobson_korkie_memmel(configured, &r.returns, p) })
+        .zip(raw)
+        .enumerate()
+        .map(|(i, (r, test))| Comparison {
+            against: r.name.clone(),
+            test,
+            p_holm: holm[i],
+            p_romano_wolf: romano_wolf[i],
+        })
         .collect();
     let sr = stats::sharpe(configured);
     let (skew, kurt) = stats::skew_kurt(configured);
     let psr = stats::probabilistic_sharpe(sr, 0.0, configured.len(), skew, kurt);
-    // Every configuration evaluated counts as a trial: the strategies and the sweep points.
-    let mut trial_srs: Vec<f64> = results.iter().map(|r| r.metrics.sharpe / p.sqrt()).collect();
-    trial_srs.extend(sweep.iter().map(|s| s.sharpe / p.sqrt()));
-    trial_srs.retain(|v| v.is_finite());
-    // The configured method's own candidates (every scaling for `auto` and the ensemble)
-    // are trials too (SPEC §11); those not already a row add to the count.
+    // Trials (SPEC §13): every distinct candidate configuration evaluated, the
+    // fitted strategies and the sweep points; benchmarks are not candidates, and
+    // configurations whose out-of-sample Sharpe ratios agree to the last bit
+    // (the same return series) count once.
+    let mut seen: Vec<u64> = Vec::new();
+    let mut trials = Vec::new();
+    let mut trial_srs = Vec::new();
+    let named = results
+        .iter()
+        .filter(|r| !is_benchmark(r))
+        .map(|r| (r.name.clone(), r.metrics.sharpe))
+        .chain(sweep.iter().map(|s| (format!("{} components, scaling {}", s.k, s.scaling), s.sharpe)));
+    for (name, annual) in named {
+        if !annual.is_finite() || seen.contains(&annual.to_bits()) {
+            continue;
+        }
+        seen.push(annual.to_bits());
+        trials.push(name);
+        trial_srs.push(annual / p.sqrt());
+    }
+    // The configured method's own candidates (every scaling for `auto` and the
+    // ensemble) are trials too (SPEC §11); those not already a row add to the count.
     let rows_of_members = results.iter().filter(|r| r.name.starts_with("scaling ")).count();
-    let trials = trial_srs.len() + candidates.saturating_sub(1).saturating_sub(rows_of_members);
-    let dsr = if trials >= 2 {
-        stats::deflated_sharpe(sr, configured.len(), skew, kurt, stats::var(&trial_srs), trials)
+    for i in 0..candidates.saturating_sub(1).saturating_sub(rows_of_members) {
+        trials.push(format!("member {} of the configured method", i + 2));
+    }
+    let dsr = if trials.len() >= 2 && trial_srs.len() >= 2 {
+        stats::deflated_sharpe(sr, configured.len(), skew, kurt, stats::var(&trial_srs), trials.len())
     } else {
         f64::NAN
     };
@@ -1033,12 +1081,8 @@ pub fn run(
     let constraints = ConstraintSet::of(configured);
     if configured.implementation_active() {
         implement_all(panel, configured, spec, &plan, &mut fits, stop)?;
-        if let Some(last) = last_implemented(panel, configured, spec, &plan, &fits, stop)?
-            && let Some(f) = fits.last_mut()
-        {
-            f.last = Some(last);
-        }
     }
+    let last_fit = portfolio_to_hold(panel, configured, spec, &fits, stop)?;
     let p = f64::from(configured.periods_per_year());
     let oos = OutOfSample { panel, periods: (spec.window..panel.rows).collect(), window: spec.window, step: spec.step };
     let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.periods.len()));
@@ -1054,7 +1098,6 @@ pub fn run(
     let sweep_index = plan.sweep_scalings.iter().position(|&sc| sc == configured.scaling);
     let sweep_fits = SweepFits { fits: &per_date_sweep, basis: &per_date_basis, index: sweep_index };
     let pricing = pricing_test(&oos, &per_date_held, &sweep_fits, lag, configured);
-    let last_fit = fits.into_iter().last().and_then(|f| f.last);
     // The specification as run: the sweep's K and the benchmark sets resolved.
     let resolved = BacktestSpec {
         sweep_max_k: Some(spec.sweep_max_k()),
@@ -1081,20 +1124,21 @@ pub fn run(
     })
 }
 
-/// The configured method's full fit on the latest window, starting from the
-/// weights it held after the previous refit: the portfolio to trade next.
-fn last_implemented(
+/// The portfolio to hold now: the configured method's full fit on the
+/// latest window of the data (its last `window` periods, or all of them
+/// when expanding), from the weights it held after the last refit.
+fn portfolio_to_hold(
     panel: &ReturnPanel,
     configured: &ValidSettings,
     spec: &ValidBacktestSpec,
-    plan: &Schedule,
     fits: &[DateFits],
     stop: &Stop,
-) -> Result<Option<WeightSet>, BacktestError> {
-    let Some(&t) = plan.dates.last() else { return Ok(None) };
-    let start = if spec.expanding { 0 } else { t - spec.window };
-    let mut window = sub_panel(panel, start, t);
-    if let Some(before) = fits.len().checked_sub(2).map(|d| &fits[d].held[0]) {
+) -> Result<Option<LatestFit>, BacktestError> {
+    let end = panel.rows;
+    let start = if spec.expanding { 0 } else { end - spec.window };
+    let mut window = sub_panel(panel, start, end);
+    // Trades from the weights held matter only to the implementation stage.
+    if let Some(before) = fits.last().map(|f| &f.held[0]).filter(|_| configured.implementation_active()) {
         window.previous_weights =
             panel.factor_names.iter().cloned().zip(before.weights.iter().copied()).filter(|(_, w)| *w != 0.0).collect();
         if panel.market.is_some() {
@@ -1104,10 +1148,11 @@ fn last_implemented(
         }
     }
     let opts = FitOptions { threads: 1, stop: stop.clone(), ..FitOptions::default() };
-    estimator::fit_with(&window, configured, &opts).map(Some).map_err(|e| match e {
+    let fit = estimator::fit_with(&window, configured, &opts).map_err(|e| match e {
         EstimateError::Cancelled | EstimateError::DeadlineExceeded => BacktestError::Stopped(e),
-        e => BacktestError::Window { strategy: "configured".into(), period: label(panel, t), source: e },
-    })
+        e => BacktestError::Window { strategy: "configured".into(), period: "the latest window".into(), source: e },
+    })?;
+    Ok(Some(LatestFit { first_period: label(panel, start), last_period: label(panel, end - 1), fit }))
 }
 
 /// The sweep's fixed-K fits per date and scaling, and per date the loadings

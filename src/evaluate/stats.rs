@@ -284,6 +284,80 @@ pub fn grs(assets: &[Vec<f64>], factors: &[Vec<f64>]) -> Option<Grs> {
     Some(Grs { statistic, p_value: 1.0 - f.cdf(statistic), assets: n, factors: l, periods: t })
 }
 
+/// Holm (1979) step-down adjustment of p-values for multiple comparisons:
+/// with p sorted ascending, p̃₍ᵢ₎ = max_{j≤i} min(1, (m − j + 1)·p₍ⱼ₎), returned
+/// in the input order (NaN p-values are left out of m and stay NaN).
+pub fn holm(p: &[f64]) -> Vec<f64> {
+    let mut order: Vec<usize> = (0..p.len()).filter(|&i| p[i].is_finite()).collect();
+    order.sort_by(|&a, &b| p[a].total_cmp(&p[b]));
+    let m = order.len();
+    let mut out = vec![f64::NAN; p.len()];
+    let mut running = 0.0f64;
+    for (j, &i) in order.iter().enumerate() {
+        running = running.max(((m - j) as f64 * p[i]).min(1.0));
+        out[i] = running;
+    }
+    out
+}
+
+/// Romano & Wolf (2005) step-down p-values for the hypotheses that `base`
+/// has the Sharpe ratio of each of `others`, by the stationary bootstrap of
+/// whole periods (Politis & Romano 1994; all series resampled together).
+///
+/// Statistics are studentised by each pair's Jobson–Korkie–Memmel standard
+/// error on the sample; in each draw the centred statistics
+/// |(d*ⱼ − dⱼ)/seⱼ| are formed, and the hypothesis with the i-th largest
+/// |tⱼ| gets the share of draws whose maximum over the hypotheses not yet
+/// rejected (the i-th and smaller) reaches |tⱼ|, made monotone. Deterministic
+/// for a seed.
+pub fn romano_wolf(base: &[f64], others: &[&[f64]], draws: usize, mean_block: f64, seed: u64) -> Vec<f64> {
+    use crate::estimator::bootstrap::{SplitMix, stationary_indices};
+    let t = base.len();
+    let m = others.len();
+    let se = |a: &[f64], b: &[f64]| -> (f64, f64) {
+        let jkm = jobson_korkie_memmel(a, b, 1.0);
+        (jkm.difference, if jkm.z != 0.0 && jkm.z.is_finite() { jkm.difference / jkm.z } else { f64::NAN })
+    };
+    let sample: Vec<(f64, f64)> = others.iter().map(|o| se(base, o)).collect();
+    let stat: Vec<f64> = sample.iter().map(|(d, s)| (d / s).abs()).collect();
+    if t < 3 || m == 0 || draws == 0 {
+        return vec![f64::NAN; m];
+    }
+    // Per draw, the centred statistic of every hypothesis.
+    let mut boot = vec![0.0; draws * m];
+    let mut resampled = vec![0.0; t];
+    let mut other_resampled = vec![0.0; t];
+    for d in 0..draws {
+        let idx = stationary_indices(&mut SplitMix::for_draw(seed, d), t, mean_block);
+        for (r, &i) in resampled.iter_mut().zip(&idx) {
+            *r = base[i];
+        }
+        let sr_base = sharpe(&resampled);
+        for (j, o) in others.iter().enumerate() {
+            for (r, &i) in other_resampled.iter_mut().zip(&idx) {
+                *r = o[i];
+            }
+            let (diff, scale) = sample[j];
+            boot[d * m + j] = ((sr_base - sharpe(&other_resampled) - diff) / scale).abs();
+        }
+    }
+    let mut order: Vec<usize> = (0..m).filter(|&j| stat[j].is_finite()).collect();
+    order.sort_by(|&a, &b| stat[b].total_cmp(&stat[a]));
+    let mut out = vec![f64::NAN; m];
+    let mut running = 0.0f64;
+    for (step, &j) in order.iter().enumerate() {
+        let remaining = &order[step..];
+        let exceed = (0..draws)
+            .filter(|&d| {
+                remaining.iter().map(|&h| boot[d * m + h]).filter(|v| v.is_finite()).fold(0.0, f64::max) >= stat[j]
+            })
+            .count();
+        running = running.max(exceed as f64 / draws as f64);
+        out[j] = running;
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -297,6 +371,36 @@ mod tests {
         let sr = 2.5 / p.sqrt();
         let dsr = deflated_sharpe(sr, 1250, -3.0, 10.0, 0.5 / p, 100);
         assert!((dsr - 0.9004).abs() < 5e-5, "DSR = {dsr}");
+    }
+
+    #[test]
+    fn holm_adjusts_by_the_step_down_formula() {
+        // Holm (1979): sorted 0.005, 0.01, 0.03, 0.04 → ×4, ×3, ×2, ×1, made monotone:
+        // 0.02, 0.03, 0.06, max(0.04, 0.06) = 0.06 (statsmodels multipletests(method="holm") agrees).
+        let got = holm(&[0.01, 0.04, 0.03, 0.005, f64::NAN]);
+        let want = [0.03, 0.06, 0.06, 0.02];
+        for (g, w) in got.iter().zip(want) {
+            assert!((g - w).abs() < 1e-15, "{got:?}");
+        }
+        assert!(got[4].is_nan());
+        assert_eq!(holm(&[0.9, 0.8]), vec![1.0, 1.0]);
+    }
+
+    #[test]
+    fn romano_wolf_separates_a_real_difference_from_noise() {
+        let mut rng = crate::estimator::bootstrap::SplitMix(5);
+        let t = 600;
+        let base: Vec<f64> = (0..t).map(|_| 0.01 + 0.02 * rng.normal()).collect();
+        // The same premium with other noise, and one with none.
+        let twin: Vec<f64> = (0..t).map(|_| 0.01 + 0.02 * rng.normal()).collect();
+        let dud: Vec<f64> = (0..t).map(|_| 0.02 * rng.normal()).collect();
+        let p = romano_wolf(&base, &[&twin, &dud], 400, 4.0, 1);
+        assert!(p[1] < 0.01, "{p:?}");
+        assert!(p[0] > 0.05, "{p:?}");
+        assert_eq!(p, romano_wolf(&base, &[&twin, &dud], 400, 4.0, 1), "deterministic for a seed");
+        // Step-down: the larger |t| never gets the larger adjusted p-value.
+        let z = |o: &[f64]| jobson_korkie_memmel(&base, o, 1.0).z.abs();
+        assert!(z(&dud) > z(&twin) && p[1] <= p[0]);
     }
 
     #[test]

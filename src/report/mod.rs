@@ -11,6 +11,7 @@ use std::path::Path;
 
 use anyhow::Context as _;
 
+use crate::estimator::Method;
 use crate::evaluate::{BacktestResult, KNS_PUBLISHED, MARKET, MODEL, StrategyResult};
 use charts::Series;
 
@@ -166,6 +167,9 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
     std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     std::fs::write(dir.join("returns.csv"), returns_csv(r)).context("writing returns.csv")?;
     std::fs::write(dir.join("summary.json"), summary_json(r)?).context("writing summary.json")?;
+    if let Some(csv) = weights_csv(r) {
+        std::fs::write(dir.join("weights.csv"), csv).context("writing weights.csv")?;
+    }
     let mut all = performance_charts(r)?;
     all.extend(latest_fit_charts(r)?);
     all.extend(over_time_charts(r)?);
@@ -176,6 +180,8 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
             .with_context(|| format!("writing charts/{}.svg", c.file))?;
     }
     let mut html = header(r, title);
+    html.push_str(&verdict_section(r));
+    html.push_str(&holding_section(r));
     html.push_str(&provenance_section(r));
     html.push_str(&performance_section(r));
     html.push_str(&warning_section(r));
@@ -224,6 +230,79 @@ fn chart(
 }
 
 /// returns.csv: period, then one column per strategy id, the configured method first.
+/// The portfolio to hold (the configured method's fit on the latest window):
+/// one row per factor with its model and implemented weight, then the hedge.
+fn weights_csv(r: &BacktestResult) -> Option<String> {
+    let l = r.last_fit.as_ref()?;
+    let mut csv = format!("# fit on {} to {}\nfactor,model_weight,weight\n", l.first_period, l.last_period);
+    for fct in &l.fit.factors {
+        let _ = writeln!(csv, "{},{},{}", csv_field(&fct.name), fct.model_weight, fct.weight);
+    }
+    let hedge = if r.strategies.iter().any(|s| s.name == MARKET) { "market hedge" } else { "" };
+    if !hedge.is_empty() {
+        let _ = writeln!(csv, "{hedge},{},{}", l.fit.model_market_weight, l.fit.market_weight);
+    }
+    Some(csv)
+}
+
+/// The verdict at the top of the report.
+fn verdict_section(r: &BacktestResult) -> String {
+    let v = crate::evaluate::verdict::verdict(r);
+    let mut html = String::from("<h2>Verdict</h2><div class=\"verdict\">");
+    for line in &v.sentences {
+        let _ = write!(html, "<p>{}</p>", esc(line));
+    }
+    html.push_str("</div>");
+    html
+}
+
+/// The portfolio to hold: dated window, model and implemented weights, the hedge.
+fn holding_section(r: &BacktestResult) -> String {
+    let Some(l) = &r.last_fit else { return String::new() };
+    let ws = &l.fit;
+    let mut html = String::new();
+    let _ = write!(
+        html,
+        "<h2>The portfolio to hold</h2><p>The configured method fitted on the latest window, {} to {} ({} periods), \
+         starting from the weights held after the last refit. Weights are fractions of NAV; the model portfolio is \
+         the estimate before limits and costs. The same table is in <code>weights.csv</code>.</p>\
+         <table><tr><th>factor</th><th>model weight</th><th>weight to hold</th></tr>",
+        esc(&l.first_period),
+        esc(&l.last_period),
+        ws.diagnostics.periods
+    );
+    for fct in &ws.factors {
+        let _ = write!(
+            html,
+            "<tr><td>{}</td><td>{}</td><td>{}</td></tr>",
+            esc(&fct.name),
+            f(fct.model_weight, 4),
+            f(fct.weight, 4)
+        );
+    }
+    if r.strategies.iter().any(|s| s.name == MARKET) {
+        let _ = write!(
+            html,
+            "<tr class=\"hedge\"><td>market hedge −β′w</td><td>{}</td><td>{}</td></tr>",
+            f(ws.model_market_weight, 4),
+            f(ws.market_weight, 4)
+        );
+    }
+    let gross = ws.factors.iter().map(|x| x.weight.abs()).sum::<f64>() + ws.market_weight.abs();
+    let cal = ws.diagnostics.risk_calibration.map_or_else(
+        || "no risk calibration".to_owned(),
+        |c| format!("risk calibration factor {:.3} ({})", c.factor, c.rule),
+    );
+    let _ = write!(
+        html,
+        "</table><p class=\"note\">Gross exposure {}; ex-ante volatility {}% in the window; {}.</p>",
+        f(gross, 2),
+        f(100.0 * ws.diagnostics.ex_ante_volatility, 2),
+        esc(&cal)
+    );
+    html
+}
+
 fn returns_csv(r: &BacktestResult) -> String {
     let mut csv = String::from("period");
     for s in &r.strategies {
@@ -371,7 +450,8 @@ fn performance_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
 /// The latest window's CV surface and weights.
 fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
     let mut out = Vec::new();
-    let Some(ws) = &r.last_fit else { return Ok(out) };
+    let Some(latest) = &r.last_fit else { return Ok(out) };
+    let ws = &latest.fit;
     if let Some(s) = &ws.diagnostics.cv_surface
         && !s.components.is_empty()
         && !s.kappas.is_empty()
@@ -594,7 +674,8 @@ fn header(r: &BacktestResult, title: &str) -> String {
          table.kv th,table.kv td,table.settings th,table.settings td{{text-align:left}}\
          tr.configured td{{background:#fbe9e2;font-weight:600}}td.na{{color:#7a7a7a}}\
          .note{{color:#555;font-size:12.5px}}.chart{{background:#fff;border:1px solid #e3ded0;margin-bottom:1em}}\
-         .caution{{background:#fdf3e1;border-left:5px solid #bc3d16;padding:8px 12px}}</style></head><body><h1>{t}</h1>",
+         .caution{{background:#fdf3e1;border-left:5px solid #bc3d16;padding:8px 12px}}\
+         .verdict{{background:#eef2f7;border-left:5px solid #1b3a6b;padding:4px 14px}}tr.hedge td{{font-style:italic;border-top:2px solid #c9c3b3}}</style></head><body><h1>{t}</h1>",
         t = esc(title)
     );
     let first = r.periods.first().cloned().unwrap_or_default();
@@ -657,24 +738,37 @@ fn performance_section(r: &BacktestResult) -> String {
 
 fn comparison_section(r: &BacktestResult) -> String {
     let mut html = String::new();
-    html.push_str("<h2>Is the configured method better?</h2><table><tr><th>against</th><th>ΔSharpe</th><th>z (JKM)</th><th>p-value</th></tr>");
+    html.push_str(
+        "<h2>Is the configured method better?</h2><table><tr><th>against</th><th>ΔSharpe (gross)</th>\
+         <th>z (JKM)</th><th>p raw</th><th>p Holm</th><th>p Romano–Wolf</th></tr>",
+    );
     for c in &r.comparisons {
         let _ = write!(
             html,
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             esc(&c.against),
             f(c.test.difference, 2),
             f(c.test.z, 2),
-            f(c.test.p_value, 3)
+            f(c.test.p_value, 3),
+            f(c.p_holm, 3),
+            f(c.p_romano_wolf, 3)
         );
     }
     let _ = write!(
         html,
-        "</table><p>Jobson–Korkie test with Memmel's correction. Probabilistic Sharpe ratio (against 0): {}. \
-         Deflated Sharpe ratio over {} configurations tried: {}.</p>",
+        "</table><p class=\"note\">ΔSharpe is the configured method's annualised Sharpe ratio minus the other's, \
+         on returns gross of costs. Jobson–Korkie test with Memmel's correction; p Holm adjusts for the {} comparisons \
+         (Holm 1979); p Romano–Wolf is the step-down of Romano &amp; Wolf (2005) by {} stationary-bootstrap draws \
+         (seed 0). Probabilistic Sharpe ratio (against 0): {}. Deflated Sharpe ratio over {} distinct candidate \
+         configurations: {} (Bailey &amp; López de Prado 2014; benchmarks and repeated configurations are not \
+         trials).</p><details><summary>The {} trials counted</summary><p>{}</p></details>",
+        r.comparisons.len(),
+        crate::evaluate::ROMANO_WOLF_DRAWS,
         f(r.psr, 3),
-        r.trials,
-        f(r.dsr, 3)
+        r.trials.len(),
+        f(r.dsr, 3),
+        r.trials.len(),
+        esc(&r.trials.join("; "))
     );
     html
 }
@@ -728,6 +822,17 @@ fn pricing_section(r: &BacktestResult) -> String {
             p.grs.as_ref().map_or("n/a".into(), |g| f(g.statistic, 3)),
             p.grs.as_ref().map_or("n/a".into(), |g| f(g.p_value, 4)),
         );
+    } else {
+        let why = match r.last_fit.as_ref().map(|l| l.fit.settings.method) {
+            Some(Method::Components) => "the configured method's K-component fits did not cover every refit".to_owned(),
+            Some(m) => format!(
+                "the configured method ({m}) holds no K-component model to test: it weights every principal \
+                 component (kns-ridge), averages several (ensemble) or uses none (a baseline); a backtest with \
+                 method = components runs the GRS test on the components it chooses"
+            ),
+            None => "there is no fit of the configured method".to_owned(),
+        };
+        let _ = write!(html, "<h2>Pricing test</h2><p class=\"note\">Not run: {}.</p>", esc(&why));
     }
     html
 }

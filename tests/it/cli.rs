@@ -286,7 +286,19 @@ fn backtest_writes_report_summary_and_returns() {
     let summary: Value = serde_json::from_str(&text).unwrap();
     assert_eq!(summary["refits"], 20);
     assert!(summary["strategies"][0].get("sharpeSeNeweyWest").is_some(), "proto names");
-    assert_eq!(summary["sweep"].as_array().unwrap().len(), 18, "K = 1..3 for six scalings");
+    // The ridge on every component always uses the covariance basis: its sweep is that basis alone.
+    let sweep = summary["sweep"].as_array().unwrap();
+    assert_eq!(sweep.len(), 3, "K = 1..3, once");
+    assert!(sweep.iter().all(|p| p["scaling"] == "SCALING_COVARIANCE"), "{sweep:?}");
+    // Trials: distinct candidates only, named; benchmarks are not among them.
+    let trials: Vec<&str> = summary["trialNames"].as_array().unwrap().iter().map(|t| t.as_str().unwrap()).collect();
+    assert_eq!(summary["trials"], trials.len());
+    assert!(!trials.iter().any(|t| *t == "market" || *t == "equal weight"), "{trials:?}");
+    let mut unique = trials.clone();
+    unique.dedup();
+    assert_eq!(unique.len(), trials.len());
+    assert!(out.join("weights.csv").exists(), "the portfolio to hold beside the report");
+    assert!(summary["verdict"].as_array().unwrap().len() >= 3);
     let sets: Vec<&Value> = summary["alphas"].as_array().unwrap().iter().map(|a| &a["benchmarks"]).collect();
     assert!(sets.iter().any(|b| b.as_array().unwrap().len() == 2), "the user's benchmark set is tested");
     // Provenance: versions, UTC run time, invocation, the input's SHA-256, span, options, settings.

@@ -277,7 +277,7 @@ fn backtests_hold_implemented_weights_within_the_limits() {
     let r = desk_backtest(1, &limits);
     // Everything but the specification's own thread count.
     let json = |r: &keelson::evaluate::BacktestResult| {
-        let last: Option<Vec<f64>> = r.last_fit.as_ref().map(|w| w.factors.iter().map(|f| f.weight).collect());
+        let last: Option<Vec<f64>> = r.last_fit.as_ref().map(|w| w.fit.factors.iter().map(|f| f.weight).collect());
         serde_json::to_string(&(&r.strategies, last)).unwrap()
     };
     assert!(json(&r) == json(&desk_backtest(3, &limits)), "the thread count changed the results");
@@ -293,10 +293,13 @@ fn backtests_hold_implemented_weights_within_the_limits() {
         assert!(s.average_turnover <= 0.4 + 1e-8, "{}: turnover {}", s.name, s.average_turnover);
     }
     assert_eq!(r.constraints.limits.max_gross, Some(1.5));
-    // The latest fit is the one to trade next: implemented from the weights held.
+    // The latest fit is the one to trade next: on the data's last window, implemented
+    // from the weights held after the last refit.
     let last = r.last_fit.as_ref().unwrap();
-    let imp = last.diagnostics.implementation.as_ref().unwrap();
+    let imp = last.fit.diagnostics.implementation.as_ref().unwrap();
     assert!(imp.gross <= 1.5 + 1e-8 && imp.turnover <= 0.4 + 1e-8);
+    assert_eq!(last.last_period, *r.periods.last().unwrap(), "the window ends at the data's last period");
+    assert_eq!(last.fit.diagnostics.periods, 60);
 }
 
 #[test]

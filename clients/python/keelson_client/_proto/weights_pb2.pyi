@@ -711,16 +711,20 @@ class SweepPoint(_message.Message):
     def __init__(self, scaling: _Optional[_Union[Scaling, str]] = ..., components: _Optional[int] = ..., sharpe: _Optional[float] = ...) -> None: ...
 
 class SharpeComparison(_message.Message):
-    __slots__ = ("against", "difference", "z", "p_value")
+    __slots__ = ("against", "difference", "z", "p_value", "p_value_holm", "p_value_romano_wolf")
     AGAINST_FIELD_NUMBER: _ClassVar[int]
     DIFFERENCE_FIELD_NUMBER: _ClassVar[int]
     Z_FIELD_NUMBER: _ClassVar[int]
     P_VALUE_FIELD_NUMBER: _ClassVar[int]
+    P_VALUE_HOLM_FIELD_NUMBER: _ClassVar[int]
+    P_VALUE_ROMANO_WOLF_FIELD_NUMBER: _ClassVar[int]
     against: str
     difference: float
     z: float
     p_value: float
-    def __init__(self, against: _Optional[str] = ..., difference: _Optional[float] = ..., z: _Optional[float] = ..., p_value: _Optional[float] = ...) -> None: ...
+    p_value_holm: float
+    p_value_romano_wolf: float
+    def __init__(self, against: _Optional[str] = ..., difference: _Optional[float] = ..., z: _Optional[float] = ..., p_value: _Optional[float] = ..., p_value_holm: _Optional[float] = ..., p_value_romano_wolf: _Optional[float] = ...) -> None: ...
 
 class AlphaTest(_message.Message):
     __slots__ = ("strategy", "benchmarks", "alpha", "t_newey_west", "t_robust", "r_squared", "note")
@@ -755,7 +759,7 @@ class PricingTest(_message.Message):
     def __init__(self, components: _Optional[int] = ..., assets: _Optional[int] = ..., significant: _Optional[int] = ..., grs: _Optional[float] = ..., grs_p_value: _Optional[float] = ...) -> None: ...
 
 class BacktestResult(_message.Message):
-    __slots__ = ("periods", "refits", "strategies", "sweep", "comparisons", "probabilistic_sharpe", "deflated_sharpe", "trials", "alphas", "pricing", "newey_west_lag", "latest_fit", "options", "provenance")
+    __slots__ = ("periods", "refits", "strategies", "sweep", "comparisons", "probabilistic_sharpe", "deflated_sharpe", "trials", "alphas", "pricing", "newey_west_lag", "latest_fit", "options", "provenance", "latest_fit_first_period", "latest_fit_last_period", "trial_names", "verdict")
     PERIODS_FIELD_NUMBER: _ClassVar[int]
     REFITS_FIELD_NUMBER: _ClassVar[int]
     STRATEGIES_FIELD_NUMBER: _ClassVar[int]
@@ -770,6 +774,10 @@ class BacktestResult(_message.Message):
     LATEST_FIT_FIELD_NUMBER: _ClassVar[int]
     OPTIONS_FIELD_NUMBER: _ClassVar[int]
     PROVENANCE_FIELD_NUMBER: _ClassVar[int]
+    LATEST_FIT_FIRST_PERIOD_FIELD_NUMBER: _ClassVar[int]
+    LATEST_FIT_LAST_PERIOD_FIELD_NUMBER: _ClassVar[int]
+    TRIAL_NAMES_FIELD_NUMBER: _ClassVar[int]
+    VERDICT_FIELD_NUMBER: _ClassVar[int]
     periods: _containers.RepeatedScalarFieldContainer[str]
     refits: int
     strategies: _containers.RepeatedCompositeFieldContainer[StrategyPerformance]
@@ -784,7 +792,11 @@ class BacktestResult(_message.Message):
     latest_fit: ComputeWeightsResponse
     options: BacktestOptions
     provenance: Provenance
-    def __init__(self, periods: _Optional[_Iterable[str]] = ..., refits: _Optional[int] = ..., strategies: _Optional[_Iterable[_Union[StrategyPerformance, _Mapping]]] = ..., sweep: _Optional[_Iterable[_Union[SweepPoint, _Mapping]]] = ..., comparisons: _Optional[_Iterable[_Union[SharpeComparison, _Mapping]]] = ..., probabilistic_sharpe: _Optional[float] = ..., deflated_sharpe: _Optional[float] = ..., trials: _Optional[int] = ..., alphas: _Optional[_Iterable[_Union[AlphaTest, _Mapping]]] = ..., pricing: _Optional[_Union[PricingTest, _Mapping]] = ..., newey_west_lag: _Optional[int] = ..., latest_fit: _Optional[_Union[ComputeWeightsResponse, _Mapping]] = ..., options: _Optional[_Union[BacktestOptions, _Mapping]] = ..., provenance: _Optional[_Union[Provenance, _Mapping]] = ...) -> None: ...
+    latest_fit_first_period: str
+    latest_fit_last_period: str
+    trial_names: _containers.RepeatedScalarFieldContainer[str]
+    verdict: _containers.RepeatedScalarFieldContainer[str]
+    def __init__(self, periods: _Optional[_Iterable[str]] = ..., refits: _Optional[int] = ..., strategies: _Optional[_Iterable[_Union[StrategyPerformance, _Mapping]]] = ..., sweep: _Optional[_Iterable[_Union[SweepPoint, _Mapping]]] = ..., comparisons: _Optional[_Iterable[_Union[SharpeComparison, _Mapping]]] = ..., probabilistic_sharpe: _Optional[float] = ..., deflated_sharpe: _Optional[float] = ..., trials: _Optional[int] = ..., alphas: _Optional[_Iterable[_Union[AlphaTest, _Mapping]]] = ..., pricing: _Optional[_Union[PricingTest, _Mapping]] = ..., newey_west_lag: _Optional[int] = ..., latest_fit: _Optional[_Union[ComputeWeightsResponse, _Mapping]] = ..., options: _Optional[_Union[BacktestOptions, _Mapping]] = ..., provenance: _Optional[_Union[Provenance, _Mapping]] = ..., latest_fit_first_period: _Optional[str] = ..., latest_fit_last_period: _Optional[str] = ..., trial_names: _Optional[_Iterable[str]] = ..., verdict: _Optional[_Iterable[str]] = ...) -> None: ...
 
 class RunBacktestResponse(_message.Message):
     __slots__ = ("progress", "result", "request_id")
