@@ -49,6 +49,7 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         100.0 * d.ex_ante_volatility,
         d.effective_factors
     );
+    calibration_line(&mut out, d);
     let _ = writeln!(
         out,
         "top-30% Sharpe factors hold {:.1}% of gross weight · covariance condition number {:.3e}{}",
@@ -133,13 +134,36 @@ fn factor_lines(out: &mut String, r: &ComputeWeightsResponse, boot: Option<&prot
 }
 
 /// Gross (Σ|w| + |w_m|) and net (Σw + w_m) exposure of the model and the implemented weights.
+/// Gross exposure Σ|wᵢ| + |w_m|. A net (signed) sum is not shown: the factors
+/// are self-financing long–short portfolios, so it is no measure of capital.
 fn exposure_lines(out: &mut String, r: &ComputeWeightsResponse, width: usize) {
-    for (label, gross) in [("gross exposure", true), ("net exposure", false)] {
-        let size = |v: f64| if gross { v.abs() } else { v };
-        let model = r.weights.iter().map(|f| size(f.model_weight)).sum::<f64>() + size(r.model_market_weight);
-        let held = r.weights.iter().map(|f| size(f.weight)).sum::<f64>() + size(r.market_weight);
-        let _ = writeln!(out, "{label:<width$}  {:>8}  {model:>9.4}  {held:>9.4}", "");
-    }
+    let model = r.weights.iter().map(|f| f.model_weight.abs()).sum::<f64>() + r.model_market_weight.abs();
+    let held = r.weights.iter().map(|f| f.weight.abs()).sum::<f64>() + r.market_weight.abs();
+    let _ = writeln!(out, "{:<width$}  {:>8}  {model:>9.4}  {held:>9.4}", "gross exposure", "");
+}
+
+/// The risk calibration (SPEC §13) and the frequency in force.
+fn calibration_line(out: &mut String, d: &proto::Diagnostics) {
+    let freq = format!(
+        "{} periods a year ({})",
+        d.periods_per_year,
+        if d.periods_per_year_inferred { "read from the labels" } else { "as set" }
+    );
+    let _ = match &d.risk_calibration {
+        Some(c) => writeln!(
+            out,
+            "risk calibration {}: weights × {:.3} (held-out over in-window volatility {:.3}, SE of its log {}, {} periods) · \
+             in-window volatility {:.2}%, out-of-sample forecast {:.2}% · {freq}",
+            setting_word(c.rule().as_str_name(), "RISK_CALIBRATION_"),
+            c.factor,
+            c.measured_ratio,
+            if c.standard_error.is_finite() { format!("{:.3}", c.standard_error) } else { "n/a".into() },
+            c.held_out_periods,
+            100.0 * c.in_window_volatility,
+            100.0 * c.calibrated_volatility
+        ),
+        None => writeln!(out, "risk calibration off · {freq}"),
+    };
 }
 
 /// The implementation stage's lines: tracking error, turnover, cost, γ*, solver, binding limits.

@@ -112,7 +112,8 @@ impl Moments {
 
     /// Exponentially weighted variance of the portfolio with weights `w`:
     /// Σ_t a_t (y_t − ȳ_a)², y = X_c w, a_t ∝ 2^(−age/h) with the latest
-    /// period at age 0, Σa_t = 1, ȳ_a = Σ a_t y_t (RiskMetrics 1996; SPEC §10).
+    /// period at age 0, Σa_t = 1, ȳ_a = Σ a_t y_t (an exponentially weighted moving average with decay λ = 2^(−1/h):
+    /// the integrated GARCH(1,1) without intercept of Engle & Bollerslev 1986; SPEC §10).
     pub fn portfolio_variance_ew(&self, w: &[f64], halflife: f64) -> f64 {
         let y = self.portfolio_centered(w);
         let t = y.len();

@@ -90,7 +90,10 @@ pub fn constraint_line(c: &crate::evaluate::ConstraintSet) -> String {
         return format!(
             "limits: none (model portfolios as estimated){}",
             if c.volatility_halflife > 0.0 {
-                format!("; volatility target on an EWMA covariance, half-life {} periods", c.volatility_halflife)
+                format!(
+                    "; volatility target on an exponentially weighted covariance, half-life {} periods",
+                    c.volatility_halflife
+                )
             } else {
                 String::new()
             }

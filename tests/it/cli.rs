@@ -198,7 +198,7 @@ fn drop_factor_policy_excludes_and_reports() {
     let v: Value = serde_json::from_slice(&o.stdout).unwrap();
     let ex = v["diagnostics"]["excluded"].as_array().unwrap();
     assert_eq!(ex.len(), 1);
-    assert_eq!(ex[0]["factor"], "brook_size");
+    assert_eq!(ex[0]["factor"], "sieve_size");
     assert_eq!(ex[0]["code"], "missing-values");
     assert_eq!(v["weights"][4]["weight"], 0.0);
     assert_eq!(v["weights"][4]["excluded"], true);
@@ -415,7 +415,7 @@ fn limits_and_costs_from_the_command_line_match_the_service() {
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let out = stdout(&o);
     for needle in
-        ["model", "weight", "gross exposure", "net exposure", "implementation: tracking error", "solver solved"]
+        ["model", "weight", "gross exposure", "risk calibration", "implementation: tracking error", "solver solved"]
     {
         assert!(out.contains(needle), "table lacks {needle:?}:\n{out}");
     }
