@@ -1,5 +1,9 @@
-//! Keelson: shrunk, Sharpe-scaled principal-component weights for factor
-//! portfolios, with the diagnostics a portfolio team needs to trust them.
+//! Keelson: factor portfolio weights from the shrunk mean–variance portfolio
+//! of principal components (by default the ridge on every component of the
+//! covariance, its penalty chosen by time-series cross-validation; scaled
+//! components such as Sharpe-scaled PCA on request), turned into a portfolio
+//! a desk can hold within its limits, with a volatility target met out of
+//! sample and the diagnostics a portfolio team needs to trust them.
 //!
 //! [`estimator`] is the pure numerical core (SPEC §1–8); [`panel_csv`] reads
 //! windows from CSV files; [`proto`] holds the generated `keelson.v1`

@@ -120,6 +120,32 @@ fn explanation(ws: &ComputeWeightsResponse, plain: Option<&ComputeWeightsRespons
         d.cv_sharpe,
         d.in_sample_sharpe
     );
+    // Where the largest position is the market hedge, say so: it offsets the
+    // factors' market exposure and is no bet on the market.
+    let largest_factor = top.first().map_or(0.0, |f| f.weight.abs());
+    if ws.market_weight.abs() > largest_factor {
+        out.push_str(&format!(
+            " The largest single position is the market hedge ({:+.2} × NAV): it offsets the factors' \
+             combined market beta, it is not a view on the market.",
+            ws.market_weight
+        ));
+    }
+    if let Some(c) = &d.risk_calibration {
+        out.push_str(&format!(
+            " The weights are scaled by {:.2} so that the {:.0}% volatility target holds out of sample: \
+             in the window the portfolio runs at {:.1}%.",
+            c.factor,
+            100.0 * c.calibrated_volatility,
+            100.0 * c.in_window_volatility
+        ));
+    }
+    if d.implementation.is_none() {
+        let gross = ws.weights.iter().map(|f| f.weight.abs()).sum::<f64>() + ws.market_weight.abs();
+        out.push_str(&format!(
+            " This is the unconstrained model portfolio (gross {gross:.1} × NAV, no limits, no costs); \
+             `--config examples/desk.toml` shows it within a desk's limits and trading costs."
+        ));
+    }
     if let Some(pd) = plain.and_then(|p| p.diagnostics.as_ref()) {
         let what = match pd.effective_settings.map(|s| s.scaling()) {
             Some(proto::Scaling::Covariance) => "plain PCA (scaling covariance)",

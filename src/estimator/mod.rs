@@ -1,6 +1,8 @@
-//! The pure estimator: a window of factor returns in, shrunk Sharpe-scaled
-//! component weights and their diagnostics out (SPEC §1–8). No async
-//! runtime and no protobuf types live here.
+//! The pure estimator: a window of factor returns in, the shrunk
+//! mean–variance portfolio of its principal components (by default the ridge
+//! on every component of the covariance; the leading components of a scaling
+//! such as Sharpe-scaled PCA on request) and its diagnostics out (SPEC §1–8,
+//! §10, §13). No async runtime and no protobuf types live here.
 //!
 //! The entry point is [`fit`]: validate the window ([`ReturnWindow`]),
 //! demarket and take moments, build the [`ComponentBasis`] of the chosen

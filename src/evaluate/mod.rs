@@ -165,7 +165,7 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
                     s.method = Method::Components;
                     s.scaling = sc;
                 });
-                out.push(Strategy { id: format!("scaling-{sc}"), name: format!("scaling {sc}"), settings });
+                out.push(Strategy { id: format!("scaling-{sc}"), name: format!("components, scaling {sc}"), settings });
             }
         }
     }
@@ -998,7 +998,7 @@ fn inference(results: &[StrategyResult], sweep: &[SweepPoint], p: f64, candidate
     }
     // The configured method's own candidates (every scaling for `auto` and the
     // ensemble) are trials too (SPEC §11); those not already a row add to the count.
-    let rows_of_members = results.iter().filter(|r| r.name.starts_with("scaling ")).count();
+    let rows_of_members = results.iter().filter(|r| r.id.starts_with("scaling-")).count();
     for i in 0..candidates.saturating_sub(1).saturating_sub(rows_of_members) {
         trials.push(format!("member {} of the configured method", i + 2));
     }

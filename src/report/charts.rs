@@ -5,7 +5,7 @@
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
-use super::palette::{self, MUTED};
+use super::palette::{self, Dash, MUTED};
 
 /// Width of every chart, and of the legend column in it.
 const W: u32 = 900;
@@ -29,6 +29,24 @@ pub(super) struct Series<T> {
     pub(super) colour: RGBColor,
     /// Stroke width in pixels.
     pub(super) width: u32,
+    /// Dash pattern.
+    pub(super) dash: Dash,
+}
+
+/// Draws `pts` as one line in the series' colour, width and dash.
+fn stroke<DB: DrawingBackend, CT: CoordTranslate<From = (f64, f64)>>(
+    chart: &mut ChartContext<'_, DB, CT>,
+    pts: Vec<(f64, f64)>,
+    colour: RGBColor,
+    width: u32,
+    dash: Dash,
+) -> Result<(), DrawingAreaErrorKind<DB::ErrorType>> {
+    let style = colour.stroke_width(width);
+    match dash {
+        Dash::Solid => chart.draw_series(LineSeries::new(pts, style)).map(|_| ()),
+        Dash::Dashed => chart.draw_series(DashedLineSeries::new(pts, 9, 5, style)).map(|_| ()),
+        Dash::Dotted => chart.draw_series(DashedLineSeries::new(pts, 2, 4, style)).map(|_| ()),
+    }
 }
 
 /// Draws into a fresh SVG of `w` × `h` pixels.
@@ -79,7 +97,20 @@ fn legend<T>(area: &Area<'_>, series: &[Series<T>]) -> Plot<'static> {
     let font = ("sans-serif", 13).into_font().color(&BLACK);
     for (i, s) in series.iter().enumerate() {
         let y = 40 + 20 * i as i32;
-        area.draw(&PathElement::new(vec![(6, y), (30, y)], s.colour.stroke_width(s.width.max(2))))?;
+        let style = s.colour.stroke_width(s.width.max(2));
+        match s.dash {
+            Dash::Solid => area.draw(&PathElement::new(vec![(6, y), (30, y)], style))?,
+            Dash::Dashed => {
+                for x in [6, 20] {
+                    area.draw(&PathElement::new(vec![(x, y), (x + 9, y)], style))?;
+                }
+            }
+            Dash::Dotted => {
+                for x in [6, 12, 18, 24] {
+                    area.draw(&PathElement::new(vec![(x, y), (x + 2, y)], style))?;
+                }
+            }
+        }
         area.draw(&Text::new(s.name.clone(), (36, y - 7), font.clone()))?;
     }
     Ok(())
@@ -132,7 +163,7 @@ pub(super) fn lines(
         for s in order {
             let pts: Vec<(f64, f64)> =
                 s.values.iter().enumerate().map(|(x, &v)| (x as f64, tr(v))).filter(|p| p.1.is_finite()).collect();
-            chart.draw_series(LineSeries::new(pts, s.colour.stroke_width(s.width)))?;
+            stroke(&mut chart, pts, s.colour, s.width, s.dash)?;
         }
         legend(&side, series)
     })
@@ -161,7 +192,7 @@ pub(super) fn xy(title: &str, x_label: &str, y_label: &str, series: &[Series<(f6
             .draw()?;
         for s in series {
             let pts: Vec<(f64, f64)> = s.values.iter().copied().filter(|p| p.1.is_finite()).collect();
-            chart.draw_series(LineSeries::new(pts.clone(), s.colour.stroke_width(s.width)))?;
+            stroke(&mut chart, pts.clone(), s.colour, s.width, s.dash)?;
             chart.draw_series(pts.into_iter().map(|p| Circle::new(p, 2 + s.width / 2, s.colour.filled())))?;
         }
         legend(&side, series)
@@ -205,7 +236,7 @@ pub(super) fn small_multiples(
                 .y_desc(y_label)
                 .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
                 .y_label_formatter(&|y| if log_y { format!("{:.2}", 10f64.powf(*y)) } else { format!("{y:.0}") })
-                .label_style(("sans-serif", 10))
+                .label_style(("sans-serif", 12))
                 .draw()?;
             // Step lines: a value holds until the next refit.
             let mut pts = Vec::with_capacity(2 * s.values.len());

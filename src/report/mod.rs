@@ -328,9 +328,11 @@ fn csv_field(s: &str) -> String {
     if s.contains([',', '"', '\n', '\r']) { format!("\"{}\"", s.replace('"', "\"\"")) } else { s.to_owned() }
 }
 
-/// A strategy's line: its colour (ember for the configured method) and width.
+/// A strategy's line: its fixed colour and dash (ember for the configured
+/// method, drawn thickest).
 fn series_of<T>(index: usize, s: &StrategyResult, values: Vec<T>) -> Series<T> {
-    Series { name: s.name.clone(), values, colour: palette::series(index), width: if index == 0 { 3 } else { 1 } }
+    let (colour, dash) = palette::style(&s.id);
+    Series { name: s.name.clone(), values, colour, width: if index == 0 { 3 } else { 1 }, dash }
 }
 
 /// The strategies drawn where every one would be a tangle: the configured
@@ -426,16 +428,19 @@ fn performance_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
         let configured = r.strategies.first().and_then(|s| s.settings.as_ref()).map(|s| s.scaling);
         let mut by_scaling: Vec<Series<(f64, f64)>> = Vec::new();
         for p in &r.sweep {
-            let name = p.scaling.to_string();
+            let name = format!("components, scaling {}", p.scaling);
             match by_scaling.iter_mut().find(|s| s.name == name) {
                 Some(s) => s.values.push((p.k as f64, p.sharpe)),
                 None => {
+                    // Each scaling in the colour of its own strategy row.
                     let own = Some(p.scaling) == configured;
+                    let (colour, dash) = palette::style(&format!("scaling-{}", p.scaling));
                     by_scaling.push(Series {
                         name,
                         values: vec![(p.k as f64, p.sharpe)],
-                        colour: if own { palette::EMBER } else { palette::series(1 + by_scaling.len()) },
+                        colour,
                         width: if own { 3 } else { 1 },
+                        dash,
                     });
                 }
             }
@@ -504,7 +509,7 @@ fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
 fn over_time_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
     let mut out = Vec::new();
     let fitted: Vec<usize> =
-        (0..r.strategies.len()).filter(|&i| r.strategies[i].chosen_k.iter().any(|&k| k > 0)).take(8).collect();
+        (0..r.strategies.len()).filter(|&i| r.strategies[i].chosen_k.iter().any(|&k| k > 0)).collect();
     let Some(&first) = fitted.first() else { return Ok(out) };
     let refit_labels: Vec<String> = (0..r.strategies[first].chosen_k.len())
         .map(|d| r.periods.get(d * r.spec.step).cloned().unwrap_or_default())

@@ -31,9 +31,44 @@ pub const LONG: RGBColor = RGBColor(0, 110, 190);
 /// Short bars.
 pub const SHORT: RGBColor = EMBER;
 
-/// The colour of the strategy at `index` in the result's strategy order.
-pub fn series(index: usize) -> RGBColor {
-    SERIES[index % SERIES.len()]
+/// How a line is stroked: the palette's ten colours with three dash
+/// patterns give every strategy a style of its own.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Dash {
+    /// A continuous line.
+    Solid,
+    /// Long dashes.
+    Dashed,
+    /// Short dots.
+    Dotted,
+}
+
+/// Every strategy id a backtest can produce, with its fixed style: a
+/// strategy looks the same in every chart and every report, and no two
+/// share one.
+pub const STRATEGY_STYLES: [(&str, usize, Dash); 15] = [
+    ("configured", 0, Dash::Solid),
+    ("configured-model", 0, Dash::Dashed),
+    ("scaling-sharpe", 1, Dash::Solid),
+    ("scaling-sharpe-raw", 1, Dash::Dashed),
+    ("scaling-standardized", 3, Dash::Solid),
+    ("scaling-covariance", 4, Dash::Solid),
+    ("scaling-risk-premium", 6, Dash::Solid),
+    ("scaling-sharpe-shrunk", 9, Dash::Solid),
+    ("plug-in", 7, Dash::Solid),
+    ("plug-in-ledoit-wolf", 7, Dash::Dashed),
+    ("kns-ridge-pricing-r2", 8, Dash::Solid),
+    ("kns-ridge-sharpe", 8, Dash::Dashed),
+    ("equal-weight", 5, Dash::Solid),
+    ("market", 2, Dash::Solid),
+    // A scaling chosen by cross-validation (sweep lines of `auto`).
+    ("scaling-auto", 9, Dash::Dashed),
+];
+
+/// The fixed colour and dash of a strategy id; an id not in
+/// [`STRATEGY_STYLES`] is muted and dotted.
+pub fn style(id: &str) -> (RGBColor, Dash) {
+    STRATEGY_STYLES.iter().find(|(i, ..)| *i == id).map_or((MUTED, Dash::Dotted), |&(_, c, d)| (SERIES[c], d))
 }
 
 /// The heat map's sequential scale at `u` ∈ [0, 1]: pale sand (low) through
@@ -56,7 +91,33 @@ pub fn sequential(u: f64) -> RGBColor {
 
 #[cfg(test)]
 mod tests {
-    use super::{SERIES, sequential};
+    use super::{SERIES, STRATEGY_STYLES, sequential};
+
+    #[test]
+    fn every_strategy_has_a_style_of_its_own() {
+        // The full strategy list with every option on (limits set, so the model row too).
+        let settings = crate::estimator::Settings {
+            max_gross: crate::estimator::Cap::At(3.0),
+            ..crate::estimator::Settings::default()
+        }
+        .check()
+        .unwrap();
+        let ids: Vec<String> = crate::evaluate::strategies(&settings, true, true).into_iter().map(|s| s.id).collect();
+        let components =
+            crate::estimator::Settings { method: crate::estimator::Method::Components, ..settings.settings().clone() }
+                .check()
+                .unwrap();
+        let mut all = ids.clone();
+        all.extend(crate::evaluate::strategies(&components, true, true).into_iter().map(|s| s.id));
+        for id in &all {
+            assert!(STRATEGY_STYLES.iter().any(|(i, ..)| i == id), "{id} has no fixed style");
+        }
+        for (a, x) in STRATEGY_STYLES.iter().enumerate() {
+            for y in &STRATEGY_STYLES[a + 1..] {
+                assert!((x.1, x.2) != (y.1, y.2), "{} and {} share a style", x.0, y.0);
+            }
+        }
+    }
 
     fn linear(c: u8) -> f64 {
         let c = f64::from(c) / 255.0;
