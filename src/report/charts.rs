@@ -116,6 +116,38 @@ fn legend<T>(area: &Area<'_>, series: &[Series<T>]) -> Plot<'static> {
     Ok(())
 }
 
+/// Every `k`-th year boundary in the labels (`YYYY-…`): (index of the first
+/// period of that year, the year), at most `most` of them; empty when the
+/// labels are not dates.
+fn year_ticks(periods: &[String], most: usize) -> Vec<(f64, String)> {
+    let year = |l: &String| l.get(..4).filter(|y| y.bytes().all(|b| b.is_ascii_digit())).map(str::to_owned);
+    let mut starts: Vec<(f64, String)> = Vec::new();
+    for (i, l) in periods.iter().enumerate() {
+        let Some(y) = year(l) else { return Vec::new() };
+        if i > 0 && year(&periods[i - 1]).as_ref() != Some(&y) {
+            starts.push((i as f64, y));
+        }
+    }
+    let years: Vec<u32> = starts.iter().filter_map(|(_, y)| y.parse().ok()).collect();
+    let every: u32 =
+        [1, 2, 5, 10, 20, 25, 50, 100].into_iter().find(|&k| starts.len().div_ceil(k as usize) <= most).unwrap_or(100);
+    starts.into_iter().zip(years).filter(|(_, y)| y % every == 0).map(|(s, _)| s).collect()
+}
+
+/// The values 1, 2, 5 × 10ᵏ whose log10 lies in [lo, hi].
+fn log_ticks(lo: f64, hi: f64) -> Vec<f64> {
+    let mut out = Vec::new();
+    for e in (lo.floor() as i32 - 1)..=(hi.ceil() as i32) {
+        for m in [1.0, 2.0, 5.0] {
+            let v = m * 10f64.powi(e);
+            if (lo..=hi).contains(&v.log10()) {
+                out.push(v);
+            }
+        }
+    }
+    out
+}
+
 /// Lines of `series` against period index; `log_y` draws log10 of the values
 /// (non-positive values are left out) and labels ticks in the values' units.
 pub(super) fn lines(
@@ -137,23 +169,40 @@ pub(super) fn lines(
             .x_label_area_size(36)
             .y_label_area_size(64)
             .build_cartesian_2d(0f64..(n - 1) as f64, lo..hi)?;
+        // Our own ticks: years at year boundaries, and on a log scale the values
+        // 1, 2, 5 × 10ᵏ; plotters' own ticks sit at arbitrary values of both.
+        let years = year_ticks(periods, 8);
+        let log_ticks = if log_y { log_ticks(lo, hi) } else { Vec::new() };
         let labels = periods.to_vec();
-        chart
-            .configure_mesh()
-            .light_line_style(GRID_FINE)
-            .bold_line_style(GRID_MAJOR)
-            .y_desc(y_label)
-            .x_labels(6)
-            .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
-            .y_label_formatter(&|y| {
-                if log_y {
-                    let v = 10f64.powf(*y);
-                    if v >= 10.0 { format!("{v:.0}") } else { format!("{v:.2}") }
-                } else {
-                    tick(*y, hi - lo)
-                }
-            })
-            .draw()?;
+        let by_period = |x: &f64| labels.get(x.round() as usize).cloned().unwrap_or_default();
+        let linear = |y: &f64| tick(*y, hi - lo);
+        let mut mesh = chart.configure_mesh();
+        mesh.light_line_style(GRID_FINE).bold_line_style(GRID_MAJOR).y_desc(y_label);
+        if years.is_empty() {
+            mesh.x_labels(6).x_label_formatter(&by_period);
+        } else {
+            mesh.x_labels(0).disable_x_mesh();
+        }
+        if log_y {
+            mesh.y_labels(0).disable_y_mesh();
+        } else {
+            mesh.y_label_formatter(&linear);
+        }
+        mesh.draw()?;
+        let font = ("sans-serif", 12).into_font();
+        let (left, bottom) = chart.backend_coord(&(0.0, lo));
+        for &(x, ref label) in &years {
+            chart.draw_series(LineSeries::new([(x, lo), (x, hi)], GRID_MAJOR.stroke_width(1)))?;
+            let (px, _) = chart.backend_coord(&(x, lo));
+            plot.draw(&Text::new(label.clone(), (px - 14, bottom + 8), font.clone()))?;
+        }
+        for &v in &log_ticks {
+            let y = v.log10();
+            chart.draw_series(LineSeries::new([(0.0, y), ((n - 1) as f64, y)], GRID_MAJOR.stroke_width(1)))?;
+            let (_, py) = chart.backend_coord(&(0.0, y));
+            let text = if v >= 1.0 { format!("{v:.0}") } else { format!("{v}") };
+            plot.draw(&Text::new(text, (left - 36, py - 6), font.clone()))?;
+        }
         if zero_line && lo < 0.0 && hi > 0.0 {
             chart.draw_series(LineSeries::new([(0.0, 0.0), ((n - 1) as f64, 0.0)], MUTED.stroke_width(1)))?;
         }
