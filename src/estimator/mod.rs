@@ -41,6 +41,7 @@ pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug
 pub use stop::Stop;
 pub use weights::{
     ComponentReport, Diagnostics, ExcludedReport, FactorReport, ScalingScore, WARNING_CODES, Warning, WeightSet,
+    warning_meaning,
 };
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
 

@@ -536,6 +536,33 @@ settings_table! {
 }
 
 impl Settings {
+    /// Whether `key` has any effect under these settings: the method's own
+    /// settings, the normalisation's, the bootstrap's when it runs, and so on.
+    /// What a report lists as "in force".
+    pub fn is_used(&self, key: &str) -> bool {
+        let components = matches!(self.method, Method::Components | Method::Ensemble);
+        let cross_validated = components || self.method == Method::KnsRidge;
+        let target = self.normalization == Normalization::TargetVolatility;
+        let bootstrap = self.bootstrap_draws > 0;
+        match key {
+            "scaling" => self.method == Method::Components,
+            "components" | "max_components" => components,
+            "rp_gamma" => {
+                self.method == Method::Ensemble
+                    || self.method == Method::Components && matches!(self.scaling, Scaling::RiskPremium | Scaling::Auto)
+            }
+            "kappa" | "kappa_grid_min" | "kappa_grid_max" | "kappa_grid_points" | "l1_penalty" | "cv_criterion"
+            | "held_out_check" => cross_validated,
+            // The folds also measure the held-out risk of every method.
+            "folds" => cross_validated || target && self.risk_calibration == RiskCalibration::HeldOut,
+            "target_volatility" | "risk_calibration" | "volatility_halflife" => target,
+            "risk_aversion" => self.normalization == Normalization::RiskAversion,
+            "holding_periods" => self.cost_bps > 0.0,
+            "bootstrap_block" | "bootstrap_cv" | "seed" | "aggregate" => bootstrap,
+            _ => true,
+        }
+    }
+
     /// The default of `key` as the README shows it: words in backticks,
     /// numbers and booleans plain.
     pub fn shown_value(&self, key: &str) -> Option<String> {
@@ -695,6 +722,18 @@ impl ValidSettings {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn settings_in_force_follow_the_method() {
+        let d = Settings::default();
+        assert!(!d.is_used("scaling") && !d.is_used("components") && !d.is_used("risk_aversion"));
+        assert!(d.is_used("kappa") && d.is_used("folds") && d.is_used("risk_calibration") && d.is_used("method"));
+        assert!(!d.is_used("seed") && !d.is_used("holding_periods"));
+        let c = Settings { method: Method::Components, scaling: Scaling::RiskPremium, ..Settings::default() };
+        assert!(c.is_used("scaling") && c.is_used("components") && c.is_used("rp_gamma"));
+        let p = Settings { method: Method::PlugIn, normalization: Normalization::GrossExposure, ..Settings::default() };
+        assert!(!p.is_used("kappa") && !p.is_used("folds") && !p.is_used("target_volatility"));
+    }
 
     #[test]
     fn set_parses_words_numbers_and_auto() {

@@ -80,6 +80,29 @@ pub const WARNING_CODES: [&str; 16] = [
     "frequency-assumed",
 ];
 
+/// What a warning code means, in one line (the report's warning table).
+pub fn warning_meaning(code: &str) -> &'static str {
+    match code {
+        "factors-excluded" => "some factors were left out (missing values, no variance, or spanned by the market)",
+        "short-window" => "fewer than twice as many periods as factors: estimates are noisy",
+        "return-scale" => "returns look like percentages, not decimals (0.01 means 1%)",
+        "components-at-grid-edge" => "cross-validation chose the largest K it may: raise max_components",
+        "kappa-at-grid-edge" => "cross-validation chose an end of the κ grid: the grid, not the data, decided",
+        "components-capped-by-rank" => "the window's rank allowed fewer components than asked",
+        "singular-covariance" => "the covariance is singular: the plug-in used the minimum-norm solution",
+        "solver-not-converged" => "a solver stopped at its iteration limit; its answer meets the limits",
+        "previous-weights-unknown-factor" => "a previous weight names a factor not in the window: it is sold",
+        "model-no-edge" => "the model's own Sharpe ratio was not positive: trades are priced at a floor",
+        "solver-reduced-accuracy" => "the implementation solver reached only reduced accuracy",
+        "ill-conditioned-covariance" => "the covariance is nearly singular (condition number above 1e10)",
+        "components-not-separated" => "two eigenvalues tie: the K-component subspace is arbitrary",
+        "risk-calibration-unavailable" => "no fold measured out-of-sample risk: the in-window volatility is the target",
+        "risk-calibration-limited" => "the risk calibration was held at its limit of 1/4 or 4",
+        "frequency-assumed" => "no period labels and no periods_per_year: monthly was assumed",
+        _ => "a condition the fit reported",
+    }
+}
+
 /// A condition worth knowing; the weights are still valid.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Warning {
@@ -854,6 +877,7 @@ mod tests {
         }
         for code in super::WARNING_CODES {
             assert!(raised.iter().any(|c| c == code), "{code} is listed but never raised");
+            assert_ne!(super::warning_meaning(code), super::warning_meaning("no-such-code"), "{code} has no meaning");
         }
     }
 

@@ -56,31 +56,6 @@ pub fn summary_table(r: &BacktestResult) -> String {
     for line in warning_lines(r) {
         let _ = writeln!(out, "{line}");
     }
-    for line in edge_lines(r) {
-        let _ = writeln!(out, "{line}");
-    }
-    out
-}
-
-/// Strategies whose cross-validated κ or K sat at an edge of its grid in
-/// most refits: the grid, not the data, made the choice there.
-pub fn edge_lines(r: &BacktestResult) -> Vec<String> {
-    let mut out = Vec::new();
-    for s in &r.strategies {
-        for (count, what) in [
-            (s.kappa_at_edge, "κ at an end of its grid (see kappa_grid_min, kappa_grid_max)"),
-            (s.components_at_cap, "K at the top of its grid (see max_components)"),
-        ] {
-            if 2 * count > r.refits {
-                out.push(format!(
-                    "note: {}: {what} in {count} of {} refits ({:.0}%)",
-                    s.name,
-                    r.refits,
-                    100.0 * count as f64 / r.refits.max(1) as f64
-                ));
-            }
-        }
-    }
     out
 }
 
@@ -144,7 +119,8 @@ pub fn risk_lines(r: &BacktestResult) -> Vec<String> {
 /// Every warning code each strategy's refits raised, one line per strategy:
 /// the number and share of refits.
 pub fn warning_lines(r: &BacktestResult) -> Vec<String> {
-    r.strategies
+    let mut out: Vec<String> = r
+        .strategies
         .iter()
         .filter(|s| !s.warnings.is_empty())
         .map(|s| {
@@ -155,7 +131,13 @@ pub fn warning_lines(r: &BacktestResult) -> Vec<String> {
                 .collect();
             format!("warnings, {}: {}", s.name, codes.join("; "))
         })
-        .collect()
+        .collect();
+    // Each code once, with what it means.
+    let mut codes: Vec<&str> = r.strategies.iter().flat_map(|s| s.warnings.iter().map(|w| w.code.as_str())).collect();
+    codes.sort_unstable();
+    codes.dedup();
+    out.extend(codes.iter().map(|c| format!("  {c}: {}", crate::estimator::warning_meaning(c))));
+    out
 }
 
 fn share(count: usize, of: usize) -> f64 {
@@ -606,10 +588,14 @@ fn settings_tables(r: &BacktestResult) -> String {
             _ => Vec::new(),
         }
     };
-    let Some(base) = r.strategies.first().and_then(|s| s.settings.as_ref()) else { return String::new() };
-    let base = flat(base);
-    let mut html = String::from("<h3>Settings of the configured method</h3><table class=\"settings\"><tr>");
-    for (i, (k, v)) in base.iter().enumerate() {
+    let Some(configured) = r.strategies.first().and_then(|s| s.settings.as_ref()) else { return String::new() };
+    let base = flat(configured);
+    let mut html = String::from(
+        "<h3>Settings of the configured method</h3><p class=\"note\">Those in force for its method; the full \
+         list is in summary.json.</p><table class=\"settings\"><tr>",
+    );
+    let in_force: Vec<&(String, String)> = base.iter().filter(|(k, _)| configured.is_used(k)).collect();
+    for (i, (k, v)) in in_force.iter().enumerate() {
         if i > 0 && i % 3 == 0 {
             html.push_str("</tr><tr>");
         }
@@ -647,24 +633,24 @@ fn warning_section(r: &BacktestResult) -> String {
         html.push_str("<p>No fit raised a warning.</p>");
         return html;
     }
-    html.push_str("<table><tr><th>strategy</th><th>warning code</th><th>refits</th><th>share</th></tr>");
+    html.push_str(
+        "<table><tr><th>strategy</th><th>warning code</th><th>refits</th><th>share</th><th>what it means</th></tr>",
+    );
     for s in &r.strategies {
         for w in &s.warnings {
             let _ = write!(
                 html,
-                "<tr><td>{}</td><td><code>{}</code></td><td>{} of {}</td><td>{:.0}%</td></tr>",
+                "<tr><td>{}</td><td><code>{}</code></td><td>{} of {}</td><td>{:.0}%</td><td style=\"text-align:left\">{}</td></tr>",
                 esc(&s.name),
                 esc(&w.code),
                 w.refits,
                 r.refits,
-                share(w.refits, r.refits)
+                share(w.refits, r.refits),
+                esc(crate::estimator::warning_meaning(&w.code))
             );
         }
     }
     html.push_str("</table>");
-    for line in edge_lines(r) {
-        let _ = write!(html, "<p class=\"note\">{}</p>", esc(&line));
-    }
     html
 }
 
