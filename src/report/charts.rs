@@ -388,7 +388,13 @@ pub(super) fn surface(
 
 /// Sorted horizontal bars of weights with full names; `model` marks the
 /// model portfolio's weight of each row when it differs.
-pub(super) fn weight_bars(title: &str, rows: &[(String, f64, Option<f64>)]) -> Result<String, String> {
+/// Horizontal weight bars, row 0 at the top; with `hedge_last` the last row
+/// is the market hedge, drawn in grey below a rule.
+pub(super) fn weight_bars(
+    title: &str,
+    rows: &[(String, f64, Option<f64>)],
+    hedge_last: bool,
+) -> Result<String, String> {
     let longest = rows.iter().map(|r| r.0.chars().count()).max().unwrap_or(8) as u32;
     let label_w = (7 * longest + 16).clamp(80, 360);
     let height = 90 + 18 * rows.len() as u32;
@@ -423,9 +429,18 @@ pub(super) fn weight_bars(title: &str, rows: &[(String, f64, Option<f64>)]) -> R
             .draw()?;
         chart.draw_series(rows.iter().enumerate().map(|(i, (_, w, _))| {
             let y = (n - 1 - i) as f64;
-            let c = if *w >= 0.0 { palette::LONG } else { palette::SHORT };
+            let c = if hedge_last && i + 1 == rows.len() {
+                MUTED
+            } else if *w >= 0.0 {
+                palette::LONG
+            } else {
+                palette::SHORT
+            };
             Rectangle::new([(0.0, y - 0.36), (*w, y + 0.36)], c.filled())
         }))?;
+        if hedge_last {
+            chart.draw_series(LineSeries::new([(lo, 0.5), (hi, 0.5)], BLACK.stroke_width(1)))?;
+        }
         chart.draw_series(rows.iter().enumerate().filter_map(|(i, (_, w, m))| {
             let y = (n - 1 - i) as f64;
             m.filter(|m| (m - w).abs() > 1e-12)

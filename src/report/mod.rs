@@ -471,18 +471,20 @@ fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
         .filter(|f| f.weight != 0.0 || f.model_weight != 0.0)
         .map(|f| (f.name.clone(), f.weight, implemented.then_some(f.model_weight)))
         .collect();
-    if ws.market_weight != 0.0 || ws.model_market_weight != 0.0 {
-        rows.push(("market hedge".into(), ws.market_weight, implemented.then_some(ws.model_market_weight)));
-    }
     rows.sort_by(|a, b| b.1.total_cmp(&a.1));
+    // The hedge below the factors, apart: it offsets their market beta and is no factor bet.
+    let hedged = ws.market_weight != 0.0 || ws.model_market_weight != 0.0;
+    if hedged {
+        rows.push(("market hedge −β′w".into(), ws.market_weight, implemented.then_some(ws.model_market_weight)));
+    }
     out.push(chart(
         "weights",
         "Latest weights",
         format!(
-            "Weights to hold after the latest window, configured method, largest long at the top (blue long, ember short){}; factors with zero weight are left out.",
+            "Weights to hold after the latest window, configured method, largest long at the top (blue long, ember short){}; factors with zero weight are left out; the market hedge, in grey below the line, offsets the factors' market beta.",
             if implemented { "; the black tick is the model portfolio's weight before limits and costs" } else { "" }
         ),
-        charts::weight_bars("Weights of the latest window (configured method)", &rows),
+        charts::weight_bars("Weights of the latest window (configured method)", &rows, hedged),
     )?);
     Ok(out)
 }
