@@ -83,6 +83,15 @@ pub(super) fn finite_range(values: impl Iterator<Item = f64>) -> (f64, f64) {
 
 /// A tick label with as many decimals as the axis range needs.
 fn tick(v: f64, range: f64) -> String {
+    // A tick that rounds to zero reads 0, not -0.0.
+    let digits = if range >= 20.0 {
+        0
+    } else if range >= 2.0 {
+        1
+    } else {
+        2
+    };
+    let v = if (v * 10f64.powi(digits)).round() == 0.0 { 0.0 } else { v };
     if range >= 20.0 {
         format!("{v:.0}")
     } else if range >= 2.0 {
@@ -223,6 +232,8 @@ pub(super) fn xy(title: &str, x_label: &str, y_label: &str, series: &[Series<(f6
     svg(W, H, |root| {
         let (plot, side) = root.split_horizontally(W - LEGEND);
         let (xlo, xhi) = finite_range(series.iter().flat_map(|s| s.values.iter().map(|p| p.0)));
+        // Counts (K) get whole-number ticks only.
+        let integer_x = series.iter().flat_map(|s| s.values.iter()).all(|p| p.0 == p.0.round());
         let (ylo, yhi) = finite_range(series.iter().flat_map(|s| s.values.iter().map(|p| p.1)));
         let mut chart = ChartBuilder::on(&plot)
             .caption(title, ("sans-serif", 17))
@@ -237,7 +248,16 @@ pub(super) fn xy(title: &str, x_label: &str, y_label: &str, series: &[Series<(f6
             .x_desc(x_label)
             .y_desc(y_label)
             .y_label_formatter(&|y| tick(*y, yhi - ylo))
-            .x_label_formatter(&|x| tick(*x, xhi - xlo))
+            .x_labels(if integer_x { ((xhi - xlo).round() as usize + 1).min(12) } else { 10 })
+            .x_label_formatter(&|x| {
+                if !integer_x {
+                    tick(*x, xhi - xlo)
+                } else if (x - x.round()).abs() < 1e-9 {
+                    format!("{x:.0}")
+                } else {
+                    String::new()
+                }
+            })
             .draw()?;
         for s in series {
             let pts: Vec<(f64, f64)> = s.values.iter().copied().filter(|p| p.1.is_finite()).collect();
@@ -281,10 +301,19 @@ pub(super) fn small_multiples(
                 .light_line_style(GRID_FINE)
                 .bold_line_style(GRID_MAJOR)
                 .x_labels(4)
-                .y_labels(4)
+                .y_labels(if log_y { 4 } else { ((hi - lo).round() as usize + 1).clamp(2, 5) })
                 .y_desc(y_label)
                 .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
-                .y_label_formatter(&|y| if log_y { format!("{:.2}", 10f64.powf(*y)) } else { format!("{y:.0}") })
+                .y_label_formatter(&|y| {
+                    if log_y {
+                        format!("{:.2}", 10f64.powf(*y))
+                    } else if (y - y.round()).abs() < 1e-9 {
+                        format!("{y:.0}")
+                    } else {
+                        // A count between whole numbers is no tick.
+                        String::new()
+                    }
+                })
                 .label_style(("sans-serif", 12))
                 .draw()?;
             // Step lines: a value holds until the next refit.
