@@ -459,11 +459,13 @@ settings_table! {
 
     /// With K and κ both fixed, still refit on the CV folds to report the
     /// held-out Sharpe ratio (one extra eigensolve per fold); `false` skips
-    /// the folds and leaves that diagnostic unset.
+    /// the folds and leaves that diagnostic unset, unless the held-out risk
+    /// calibration needs them (SPEC §13).
     held_out_check: bool = true;
     range "bool" if |_v| true;
     meaning "with `components` and `kappa` both fixed, still refit the folds to report the held-out Sharpe ratio; \
-             `false` skips them (about 4× faster for a 50 × 120 window) and leaves `cv_sharpe` unset";
+             `false` skips them (about 4× faster for a 50 × 120 window) and leaves `cv_sharpe` unset, \
+             unless `risk_calibration = held-out` needs the folds";
 
     /// Largest absolute weight on any one factor (SPEC §10).
     max_weight: Cap = Cap::Off;
