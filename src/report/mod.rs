@@ -454,7 +454,45 @@ fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
             .enumerate()
             .min_by(|a, b| (a.1.ln() - d.kappa.ln()).abs().total_cmp(&(b.1.ln() - d.kappa.ln()).abs()))
             .map(|(c, _)| c);
-        out.push(chart(
+        if s.components.len() == 1 {
+            // One K (fixed, or every component for the ridge): the score against κ as a line.
+            let line: Vec<(f64, f64)> = s.kappas.iter().zip(&s.scores).map(|(k, v)| (k.log10(), *v)).collect();
+            let chosen = col.map(|c| vec![(s.kappas[c].log10(), s.scores[c])]).unwrap_or_default();
+            let series = [
+                Series {
+                    name: format!("K = {}", s.components[0]),
+                    values: line,
+                    colour: palette::LONG,
+                    width: 1,
+                    dash: palette::Dash::Solid,
+                },
+                Series {
+                    name: "the choice".into(),
+                    values: chosen,
+                    colour: palette::EMBER,
+                    width: 3,
+                    dash: palette::Dash::Solid,
+                },
+            ];
+            out.push(chart(
+                "cv-surface",
+                "Cross-validation score against κ",
+                format!(
+                    "Mean held-out {} against κ (log10 of the annualised κ) in the latest window's {}-fold cross-validation, K = {}; the ember point is the choice (κ = {:.3}), ties going to more shrinkage.",
+                    s.criterion, s.folds, s.components[0], d.kappa
+                ),
+                charts::xy(
+                    "Cross-validation score of the latest window",
+                    "log10 κ (annualised)",
+                    &match s.criterion {
+                        crate::estimator::CvCriterion::Sharpe => "mean held-out Sharpe ratio".to_owned(),
+                        c => format!("mean held-out {c}"),
+                    },
+                    &series,
+                ),
+            )?);
+        } else {
+            out.push(chart(
             "cv-surface",
             "Cross-validation surface",
             format!(
@@ -463,6 +501,7 @@ fn latest_fit_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
             ),
             charts::surface("Cross-validation surface of the latest window", &s.components, &s.kappas, &s.scores, row.zip(col)),
         )?);
+        }
     }
     let implemented = ws.diagnostics.implementation.is_some();
     let mut rows: Vec<(String, f64, Option<f64>)> = ws
