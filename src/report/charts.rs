@@ -8,8 +8,8 @@ use plotters::prelude::*;
 use super::palette::{self, Dash, MUTED};
 
 /// Width of every chart, and of the legend column in it.
-const W: u32 = 900;
-const LEGEND: u32 = 270;
+const W: u32 = 1000;
+const LEGEND: u32 = 250;
 const H: u32 = 380;
 
 /// Grid lines of every chart: fine and major.
@@ -103,7 +103,7 @@ fn tick(v: f64, range: f64) -> String {
 
 /// The legend column: one swatch and name per series, top to bottom.
 fn legend<T>(area: &Area<'_>, series: &[Series<T>]) -> Plot<'static> {
-    let font = ("sans-serif", 13).into_font().color(&BLACK);
+    let font = ("sans-serif", 12).into_font().color(&BLACK);
     for (i, s) in series.iter().enumerate() {
         let y = 40 + 20 * i as i32;
         let style = s.colour.stroke_width(s.width.max(2));

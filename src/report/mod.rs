@@ -376,13 +376,32 @@ const ROLLING: usize = 36;
 
 /// Growth of one unit, drawdowns, the rolling Sharpe ratio and the sweep.
 fn performance_charts(r: &BacktestResult) -> anyhow::Result<Vec<Chart>> {
-    let all: Vec<Series<f64>> =
+    let mut all: Vec<Series<f64>> =
         r.strategies.iter().enumerate().map(|(i, s)| series_of(i, s, wealth(&s.returns))).collect();
+    // A strategy whose wealth runs far beyond the others' (an unconstrained model at 10⁶, say)
+    // would squeeze every other line: it leaves the chart, and the note says so.
+    let peak = |s: &Series<f64>| s.values.iter().copied().filter(|v| v.is_finite()).fold(0.0f64, f64::max);
+    let mut peaks: Vec<f64> = all.iter().map(peak).collect();
+    peaks.sort_by(f64::total_cmp);
+    let typical = peaks.get(peaks.len() / 2).copied().unwrap_or(1.0).max(1.0);
+    let (outliers, kept): (Vec<Series<f64>>, Vec<Series<f64>>) =
+        all.drain(..).partition(|s| peak(s) > 100.0 * typical && s.name != crate::evaluate::CONFIGURED);
+    let left_out = if outliers.is_empty() {
+        String::new()
+    } else {
+        format!(
+            " Left out so as not to flatten the others: {} (peak wealth {}).",
+            outliers.iter().map(|s| s.name.as_str()).collect::<Vec<_>>().join(", "),
+            outliers.iter().map(|s| format!("{:.3e}", peak(s))).collect::<Vec<_>>().join(", ")
+        )
+    };
     let mut out = vec![chart(
         "growth",
         "Growth of one unit",
-        "Compounded out-of-sample returns (gross of costs) of every strategy on a log scale: equal vertical distances are equal percentage gains. Ember and thickest: the configured method. Strategies other than the market are scaled to their volatility target inside each window.",
-        charts::lines("Growth of one unit invested (log scale)", "wealth", &r.periods, &all, true, false),
+        format!(
+            "Compounded out-of-sample returns (gross of costs) of every strategy on a log scale: equal vertical distances are equal percentage gains. Ember and thickest: the configured method. Strategies other than the market are scaled to their volatility target inside each window.{left_out}"
+        ),
+        charts::lines("Growth of one unit invested (log scale)", "wealth", &r.periods, &kept, true, false),
     )?];
     let keys = key_strategies(r);
     let dd: Vec<Series<f64>> =
