@@ -14,17 +14,23 @@ use std::time::Duration;
 use criterion::{BenchmarkId, Criterion, criterion_group, criterion_main};
 use faer::Mat;
 use keelson::demo::synthetic_panel;
-use keelson::estimator::{self, Choice, EigenPath, FitOptions, Method, Scaling, Settings, ValidSettings};
+use keelson::estimator::{
+    self, Choice, EigenPath, FitOptions, Method, RiskCalibration, Scaling, Settings, ValidSettings,
+};
 use keelson::evaluate::{self, BacktestSpec};
 
 /// The three kinds of fit: `fixed` (K = 5, κ = 1, with the held-out check
-/// on the folds), `bare` (the same without the folds) and `cv` (defaults).
+/// on the folds), `bare` (the same without the folds, so without the held-out
+/// risk calibration too) and `cv` (defaults).
 fn settings(scaling: Scaling, kind: &str) -> ValidSettings {
     let mut s = Settings { method: Method::Components, scaling, ..Settings::default() };
     if kind != "cv" {
         s.components = Choice::Fixed(5);
         s.kappa = Choice::Fixed(1.0);
         s.held_out_check = kind == "fixed";
+        if kind == "bare" {
+            s.risk_calibration = RiskCalibration::Off;
+        }
     }
     s.check().expect("valid bench settings")
 }

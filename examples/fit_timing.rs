@@ -90,6 +90,8 @@ fn main() -> anyhow::Result<()> {
         components: Choice::Fixed(5),
         kappa: Choice::Fixed(1.0),
         held_out_check: false,
+        // No folds at all: the held-out risk calibration would run them.
+        risk_calibration: keelson::estimator::RiskCalibration::Off,
         ..Settings::default()
     }
     .check()?;
