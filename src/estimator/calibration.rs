@@ -115,7 +115,9 @@ pub(crate) fn held_out_ratio(samples: &[HeldOutSample], periods: usize, paramete
     // inverse-Wishart moments say; for shrunk estimators the measured ratio is
     // kept (see the function's documentation).
     let corrected_var = if parameters > 0.0 {
-        var * wishart_inflation(periods as f64, parameters) / wishart_inflation(train / nf, parameters)
+        let v = var * wishart_inflation(periods as f64, parameters) / wishart_inflation(train / nf, parameters);
+        // Windows too short for the moments (m ≤ 3) keep the measured ratio.
+        if v.is_finite() && v > 0.0 { v } else { var }
     } else {
         var
     };
@@ -232,6 +234,13 @@ mod tests {
         // m = 119, d = 33: 119·118/(86·83).
         assert!((wishart_inflation(120.0, 33.0) - 119.0 * 118.0 / (86.0 * 83.0)).abs() < 1e-12);
         assert!(wishart_inflation(20.0, 1e6).is_finite());
+    }
+
+    #[test]
+    fn a_window_too_short_for_the_moments_keeps_the_measured_ratio() {
+        let r = alternating(2, 1.0);
+        let got = held_out_ratio(&[sample(1.0, r, 2)], 3, 5.0).unwrap();
+        assert!(got.corrected.is_finite() && got.corrected == got.measured, "{got:?}");
     }
 
     #[test]

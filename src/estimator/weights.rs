@@ -396,7 +396,7 @@ fn calibrate(
     }
     let (measured, standard_error, periods, raw) = match settings.risk_calibration {
         RiskCalibration::Off => return None,
-        RiskCalibration::HeldOut => match held_out {
+        RiskCalibration::HeldOut => match held_out.filter(|h| h.corrected.is_finite() && h.corrected > 0.0) {
             Some(h) => (h.measured, h.standard_error, h.periods, 1.0 / h.corrected),
             None => {
                 warnings.push(Warning {
