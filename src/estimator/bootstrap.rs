@@ -10,7 +10,7 @@
 //! whatever the thread count.
 
 use super::error::EstimateError;
-use super::settings::{Aggregate, Cap, Choice, Method, Scaling, Settings, ValidSettings};
+use super::settings::{Aggregate, Cap, Choice, Method, RiskCalibration, Scaling, Settings, ValidSettings};
 use super::window::ReturnPanel;
 use super::{FitOptions, WeightSet};
 
@@ -133,6 +133,9 @@ fn draw_settings(settings: &ValidSettings, point: &WeightSet) -> Result<ValidSet
     s.max_turnover = Cap::Off;
     s.cost_bps = 0.0;
     s.held_out_check = false;
+    // The draws' folds would only re-measure the risk calibration: each draw
+    // takes the point fit's factor instead (see `run`).
+    s.risk_calibration = RiskCalibration::Off;
     let d = &point.diagnostics;
     if !s.bootstrap_cv {
         match s.method {
@@ -192,12 +195,14 @@ pub fn run(
     let s = draw_settings(settings, point)?;
     let block = mean_block(settings, panel.rows);
     let seed = settings.seed;
+    // The point fit's risk calibration (SPEC §13) scales every draw alike.
+    let factor = point.diagnostics.risk_calibration.map_or(1.0, |c| c.factor);
     let inner = FitOptions { threads: 1, stop: options.stop.clone(), eigen_path: options.eigen_path };
     let one = |d: usize| -> Result<Draw, EstimateError> {
         options.stop.check()?;
         let idx = stationary_indices(&mut SplitMix::for_draw(seed, d), panel.rows, block);
         match super::fit_unhashed(&resample(panel, &idx), &s, &inner) {
-            Ok(ws) => Ok(Some((ws.factors.iter().map(|f| f.weight).collect(), ws.diagnostics.num_components))),
+            Ok(ws) => Ok(Some((ws.factors.iter().map(|f| factor * f.weight).collect(), ws.diagnostics.num_components))),
             Err(e @ (EstimateError::Cancelled | EstimateError::DeadlineExceeded)) => Err(e),
             Err(_) => Ok(None),
         }
