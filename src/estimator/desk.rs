@@ -273,7 +273,8 @@ pub fn gamma_star(problem: &Problem<'_>, sigma_model: f64, warnings: &mut Vec<Wa
     (sr / sigma_model, sr * root_p)
 }
 
-fn quad(omega: &Mat<f64>, a: &[f64], b: &[f64]) -> f64 {
+/// a'Ωb.
+pub(crate) fn quad(omega: &Mat<f64>, a: &[f64], b: &[f64]) -> f64 {
     let n = a.len();
     let mut total = 0.0;
     for j in 0..n {
@@ -724,12 +725,8 @@ impl DeskWindow {
         for (j, &c) in used.iter().enumerate() {
             weights[c] = done.weights[j];
         }
-        let n = used.len();
-        let mut order: Vec<usize> = (0..n).collect();
-        order.sort_by(|&a, &b| self.mom.sharpe(b).total_cmp(&self.mom.sharpe(a)));
-        let gross: f64 = done.weights.iter().map(|w| w.abs()).sum();
-        let top = (0.3 * n as f64).ceil() as usize;
-        let top_sharpe_gross_share = order[..top].iter().map(|&j| done.weights[j].abs()).sum::<f64>() / gross;
+        let sharpe: Vec<f64> = (0..used.len()).map(|j| self.mom.sharpe(j)).collect();
+        let top_sharpe_gross_share = super::weights::top_sharpe_share(&done.weights, &sharpe);
         Ok(DeskAnswer { weights, market_weight: done.market_weight, top_sharpe_gross_share, report: done.report })
     }
 }

@@ -252,15 +252,10 @@ pub(crate) fn assemble(
     let t = window.periods();
     let p = f64::from(settings.periods_per_year());
     let mut calibration = calibrate(settings, mom, direction, held_out, &mut warnings);
-    let risk_factor = calibration.map_or(1.0, |c| c.factor);
-    let scaled = Normalized::new(window, mom, settings, direction, risk_factor)?;
+    let scaled = Normalized::new(window, mom, settings, direction, calibration.map_or(1.0, |c| c.factor))?;
     if let Some(c) = calibration.as_mut() {
         // In-window volatility of the scaled model portfolio (on the covariance the target uses).
-        let var_risk = match settings.volatility_halflife {
-            h if h > 0.0 => mom.portfolio_variance_ew(&scaled.weights, h),
-            _ => mom.portfolio_variance(&scaled.weights),
-        };
-        c.in_window_volatility = (p * var_risk).sqrt();
+        c.in_window_volatility = (p * risk_variance(mom, settings, &scaled.weights)).sqrt();
         c.calibrated_volatility = c.in_window_volatility / c.factor;
     }
     let held = Previous::of(panel, window, &mut warnings)?;
@@ -271,22 +266,8 @@ pub(crate) fn assemble(
             .as_ref()
             .map(|m| m.held_out_sharpe)
             .filter(|v| v.is_finite())
-            .unwrap_or_else(|| scaled.in_sample_sharpe(p))
-            / p.sqrt();
-        let omega = super::shrinkage::ledoit_wolf(mom).0;
-        let names: Vec<&str> = window.used.iter().map(|&c| window.names[c].as_str()).collect();
-        let problem = desk::Problem {
-            model: &scaled.weights,
-            beta: hedged.then_some(&mom.beta[..]),
-            omega: &omega,
-            previous: &held.used,
-            previous_market: held.market,
-            forced_turnover: held.outside + if hedged { 0.0 } else { held.market.abs() },
-            model_sharpe,
-            periods_per_year: p,
-            names: &names,
-        };
-        let done = desk::implement(&problem, &Limits::of(settings), stop, &mut warnings)?;
+            .unwrap_or_else(|| scaled.in_sample_sharpe(p));
+        let done = implement_stage(window, mom, settings, &scaled.weights, &held, model_sharpe, stop, &mut warnings)?;
         (Some(done.weights), done.market_weight, Some(done.report))
     } else {
         (None, scaled.market_weight, None)
@@ -294,11 +275,7 @@ pub(crate) fn assemble(
     let w = implemented.as_deref().unwrap_or(&scaled.weights);
     let sigma_w = mom.sigma_times(w);
     let var_w: f64 = w.iter().zip(&sigma_w).map(|(a, b)| a * b).sum();
-    let var_risk = match settings.volatility_halflife {
-        h if h > 0.0 => mom.portfolio_variance_ew(w, h),
-        _ => var_w,
-    };
-    let gross: f64 = w.iter().map(|x| x.abs()).sum();
+    let var_risk = if settings.volatility_halflife > 0.0 { risk_variance(mom, settings, w) } else { var_w };
     let sharpe_ann: Vec<f64> = (0..n).map(|j| p.sqrt() * mom.sharpe(j)).collect();
     let (mut factors, excluded) = factor_reports(window, mom, model.as_ref(), w, &sigma_w, var_w, &sharpe_ann, p);
     for (j, &col) in window.used.iter().enumerate() {
@@ -313,11 +290,9 @@ pub(crate) fn assemble(
     spectrum_warnings(model.as_ref(), covariance_condition_number, t, n, &mut warnings);
 
     // Concentration diagnostics.
+    let gross: f64 = w.iter().map(|x| x.abs()).sum();
     let effective_factors = 1.0 / w.iter().map(|x| (x.abs() / gross).powi(2)).sum::<f64>();
-    let top = (0.3 * n as f64).ceil() as usize;
-    let mut order: Vec<usize> = (0..n).collect();
-    order.sort_by(|&a, &b| sharpe_ann[b].total_cmp(&sharpe_ann[a]));
-    let top_sharpe_gross_share = order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross;
+    let top_sharpe_gross_share = top_sharpe_share(w, &sharpe_ann);
     let in_sample_sharpe = match implemented {
         None => scaled.in_sample_sharpe(p),
         Some(_) => {
@@ -368,6 +343,56 @@ pub(crate) fn assemble(
         estimator_version: super::ESTIMATOR_VERSION,
         settings: settings.settings().clone(),
     })
+}
+
+/// Variance of the portfolio `w` on the covariance the volatility target
+/// uses: exponentially weighted with `volatility_halflife`, else the sample one.
+fn risk_variance(mom: &Moments, settings: &ValidSettings, w: &[f64]) -> f64 {
+    match settings.volatility_halflife {
+        h if h > 0.0 => mom.portfolio_variance_ew(w, h),
+        _ => mom.portfolio_variance(w),
+    }
+}
+
+/// Share of gross weight in the ⌈0.3N⌉ factors of highest Sharpe ratio (SPEC §8).
+pub(crate) fn top_sharpe_share(w: &[f64], sharpe: &[f64]) -> f64 {
+    let n = w.len();
+    let gross: f64 = w.iter().map(|x| x.abs()).sum();
+    let top = (0.3 * n as f64).ceil() as usize;
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&a, &b| sharpe[b].total_cmp(&sharpe[a]));
+    order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross
+}
+
+/// The implementation stage (SPEC §10) for the scaled model portfolio, from
+/// the positions held; `model_sharpe` is annualised.
+#[allow(clippy::too_many_arguments)]
+fn implement_stage(
+    window: &ReturnWindow,
+    mom: &Moments,
+    settings: &ValidSettings,
+    model: &[f64],
+    held: &Previous,
+    model_sharpe: f64,
+    stop: &Stop,
+    warnings: &mut Vec<Warning>,
+) -> Result<desk::Implemented, EstimateError> {
+    let p = f64::from(settings.periods_per_year());
+    let hedged = settings.demarket && window.market.is_some();
+    let omega = super::shrinkage::ledoit_wolf(mom).0;
+    let names: Vec<&str> = window.used.iter().map(|&c| window.names[c].as_str()).collect();
+    let problem = desk::Problem {
+        model,
+        beta: hedged.then_some(&mom.beta[..]),
+        omega: &omega,
+        previous: &held.used,
+        previous_market: held.market,
+        forced_turnover: held.outside + if hedged { 0.0 } else { held.market.abs() },
+        model_sharpe: model_sharpe / p.sqrt(),
+        periods_per_year: p,
+        names: &names,
+    };
+    desk::implement(&problem, &Limits::of(settings), stop, warnings)
 }
 
 /// The direction scaled by the normalisation (SPEC §7): the weights over the
@@ -482,10 +507,8 @@ impl Normalized {
         let c = match settings.normalization {
             Normalization::TargetVolatility => {
                 // Honest risk (SPEC §10): the target on an exponentially weighted covariance.
-                let var_risk = match settings.volatility_halflife {
-                    h if h > 0.0 => mom.portfolio_variance_ew(direction, h),
-                    _ => var_dir,
-                };
+                let var_risk =
+                    if settings.volatility_halflife > 0.0 { risk_variance(mom, settings, direction) } else { var_dir };
                 // Out-of-sample calibration (SPEC §13): the target met on returns not fitted.
                 risk_factor * settings.target_volatility / (p * var_risk).sqrt()
             }

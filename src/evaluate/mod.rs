@@ -810,6 +810,22 @@ impl OutOfSample<'_> {
     }
 }
 
+/// How many refits named each name (each refit's names are distinct), most
+/// first, ties by name.
+fn refit_counts<'a>(per_refit: impl Iterator<Item = &'a [&'static str]>) -> Vec<(&'static str, usize)> {
+    let mut counts: Vec<(&'static str, usize)> = Vec::new();
+    for names in per_refit {
+        for &name in names {
+            match counts.iter_mut().find(|(n, _)| *n == name) {
+                Some((_, c)) => *c += 1,
+                None => counts.push((name, 1)),
+            }
+        }
+    }
+    counts.sort_by(|a, b| b.1.cmp(&a.1).then_with(|| a.0.cmp(b.0)));
+    counts
+}
+
 /// Each strategy's returns, gross and net of costs, with its metrics.
 fn strategy_results(
     oos: &OutOfSample<'_>,
@@ -850,26 +866,14 @@ fn strategy_results(
             .as_ref()
             .filter(|v| v.normalization == Normalization::TargetVolatility)
             .map(|v| v.target_volatility);
-        let mut warnings: Vec<WarningCount> = Vec::new();
-        for f in fits {
-            for &code in &f.held[si].warnings {
-                match warnings.iter_mut().find(|w| w.code == code) {
-                    Some(w) => w.refits += 1,
-                    None => warnings.push(WarningCount { code: code.to_owned(), refits: 1 }),
-                }
-            }
-        }
-        warnings.sort_by(|a, b| b.refits.cmp(&a.refits).then_with(|| a.code.cmp(&b.code)));
-        let mut binding_limits: Vec<LimitCount> = Vec::new();
-        for f in fits {
-            for &limit in &f.held[si].binding {
-                match binding_limits.iter_mut().find(|l| l.limit == limit) {
-                    Some(l) => l.refits += 1,
-                    None => binding_limits.push(LimitCount { limit: limit.to_owned(), refits: 1 }),
-                }
-            }
-        }
-        binding_limits.sort_by(|a, b| b.refits.cmp(&a.refits).then_with(|| a.limit.cmp(&b.limit)));
+        let warnings: Vec<WarningCount> = refit_counts(fits.iter().map(|f| f.held[si].warnings.as_slice()))
+            .into_iter()
+            .map(|(code, refits)| WarningCount { code: code.to_owned(), refits })
+            .collect();
+        let binding_limits: Vec<LimitCount> = refit_counts(fits.iter().map(|f| f.held[si].binding.as_slice()))
+            .into_iter()
+            .map(|(limit, refits)| LimitCount { limit: limit.to_owned(), refits })
+            .collect();
         let limit_bound_refits = fits.iter().filter(|f| !f.held[si].binding.is_empty()).count();
         let refits_with = |code: &str| warnings.iter().find(|w| w.code == code).map_or(0, |w| w.refits);
         let (kappa_at_edge, components_at_cap) =
