@@ -43,8 +43,9 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
     let _ = writeln!(out);
     let _ = writeln!(
         out,
-        "in-window Sharpe {:.2} · held-out Sharpe (CV) {} · ex-ante volatility {:.2}% · effective factors {:.1}",
+        "in-window Sharpe {:.2} · held-out Sharpe (CV{}) {} · ex-ante volatility {:.2}% · effective factors {:.1}",
         d.in_sample_sharpe,
+        if d.effective_settings.is_some_and(|s| s.method() == proto::Method::Blend) { ", ridge half" } else { "" },
         if d.cv_sharpe.is_finite() { format!("{:.2}", d.cv_sharpe) } else { "n/a".into() },
         100.0 * d.ex_ante_volatility,
         d.effective_factors
@@ -92,6 +93,12 @@ fn method_line(out: &mut String, d: &proto::Diagnostics) {
             d.kappa,
             how(d.kappa_cross_validated),
             d.gamma
+        ),
+        proto::Method::Blend => writeln!(
+            out,
+            "method blend · ½ ridge on every component of the covariance (κ = {:.4} annualised, {}) + ½ Ledoit–Wolf plug-in",
+            d.kappa,
+            how(d.kappa_cross_validated)
         ),
         proto::Method::Ensemble => {
             writeln!(out, "method ensemble · the average of every scaling's cross-validated component portfolio")

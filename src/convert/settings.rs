@@ -52,6 +52,7 @@ fn method_to_proto(m: Method) -> proto::Method {
         Method::PlugIn => proto::Method::PlugIn,
         Method::EqualWeight => proto::Method::EqualWeight,
         Method::KnsRidge => proto::Method::KnsRidge,
+        Method::Blend => proto::Method::Blend,
         Method::PlugInLedoitWolf => proto::Method::PlugInLedoitWolf,
         Method::Ensemble => proto::Method::Ensemble,
     }
@@ -241,6 +242,7 @@ fn method_from_proto(m: proto::Method) -> Option<Method> {
         proto::Method::PlugIn => Some(Method::PlugIn),
         proto::Method::EqualWeight => Some(Method::EqualWeight),
         proto::Method::KnsRidge => Some(Method::KnsRidge),
+        proto::Method::Blend => Some(Method::Blend),
         proto::Method::PlugInLedoitWolf => Some(Method::PlugInLedoitWolf),
         proto::Method::Ensemble => Some(Method::Ensemble),
     }

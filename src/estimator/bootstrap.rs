@@ -148,7 +148,7 @@ fn draw_settings(settings: &ValidSettings, point: &WeightSet) -> Result<ValidSet
                 s.components = Choice::Fixed(d.num_components as u32);
                 s.kappa = Choice::Fixed(d.kappa);
             }
-            Method::KnsRidge => s.kappa = Choice::Fixed(d.kappa),
+            Method::KnsRidge | Method::Blend => s.kappa = Choice::Fixed(d.kappa),
             Method::Ensemble | Method::PlugIn | Method::PlugInLedoitWolf | Method::EqualWeight => {}
         }
     }

@@ -157,7 +157,7 @@ pub(crate) fn baseline_samples(
             Method::PlugInLedoitWolf => shrinkage::plug_in_ledoit_wolf(&mom).map(|p| p.weights).ok(),
             Method::EqualWeight => Some(vec![1.0 / n as f64; n]),
             // The components methods bring their own folds.
-            Method::Components | Method::KnsRidge | Method::Ensemble => None,
+            Method::Components | Method::KnsRidge | Method::Ensemble | Method::Blend => None,
         };
         let Some(d) = direction else { continue };
         let m_test: Option<Vec<f64>> = market.map(|m| m[start..end].to_vec());

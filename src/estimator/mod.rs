@@ -327,6 +327,39 @@ fn fit_phased(
             lap(&mut mark, &mut ph.assemble);
             r
         }
+        Method::Blend => {
+            let (ridge_settings, lw_settings) = blend_members(settings)?;
+            let prepared = ComponentFit::prepare(&window, &mom, &ridge_settings, KPolicy::All, options)?;
+            lap(&mut mark, &mut ph.components);
+            let ridge = prepared.solve(&ridge_settings, KPolicy::All, options, &mut warnings)?;
+            options.stop.check()?;
+            let lw = shrinkage::plug_in_ledoit_wolf(&mom)?;
+            // Each member at the target (or as the normalisation says), then the equal-weight average.
+            let members = [
+                weights::normalized_weights(&window, &mom, &ridge_settings, &direction_of(&ridge))?,
+                weights::normalized_weights(&window, &mom, &lw_settings, &lw.weights)?,
+            ];
+            let average: Vec<f64> = members[0].iter().zip(&members[1]).map(|(a, b)| 0.5 * (a + b)).collect();
+            let risks: Vec<calibration::HeldOutRatio> =
+                ridge.risk.into_iter().chain(baseline_risk(&window, &lw_settings)).collect();
+            let risk = mean_risk(&risks);
+            lap(&mut mark, &mut ph.solve);
+            let r = weights::assemble(panel, &window, &mom, settings, &average, None, risk, warnings, &options.stop)
+                .map(|mut ws| {
+                    // The ridge member's choices, for the diagnostics and the bootstrap's draws.
+                    let d = &mut ws.diagnostics;
+                    d.num_components = ridge.k;
+                    d.kappa = ridge.kappa;
+                    d.gamma = ridge.gamma;
+                    d.kappa_cross_validated = ridge_settings.kappa.fixed().is_none();
+                    d.cv_best_score = ridge.best_score;
+                    d.cv_sharpe = ridge.held_out_sharpe;
+                    d.cv_surface = ridge.surface;
+                    ws
+                });
+            lap(&mut mark, &mut ph.assemble);
+            r
+        }
         Method::PlugIn | Method::PlugInLedoitWolf => {
             let plug = if settings.method == Method::PlugIn {
                 shrinkage::plug_in(&mom)?
@@ -478,10 +511,22 @@ fn baseline_risk(window: &ReturnWindow, settings: &ValidSettings) -> Option<cali
     calibration::held_out_ratio(&samples, t, parameters)
 }
 
+/// The blend's two members (SPEC §11): the KNS ridge and the Ledoit–Wolf
+/// plug-in under the blend's other settings.
+fn blend_members(settings: &ValidSettings) -> Result<(ValidSettings, ValidSettings), EstimateError> {
+    let member = |method: Method| Settings { method, ..settings.settings().clone() }.check();
+    Ok((member(Method::KnsRidge)?, member(Method::PlugInLedoitWolf)?))
+}
+
 /// The ensemble's held-out ratio (SPEC §13): the members' calibration factors
 /// averaged (the average of calibrated members, renormalised).
 fn ensemble_risk(members: &[Member]) -> Option<calibration::HeldOutRatio> {
     let risks: Vec<calibration::HeldOutRatio> = members.iter().filter_map(|m| m.model.risk).collect();
+    mean_risk(&risks)
+}
+
+/// Members' held-out ratios combined: their calibration factors averaged.
+fn mean_risk(risks: &[calibration::HeldOutRatio]) -> Option<calibration::HeldOutRatio> {
     if risks.is_empty() {
         return None;
     }

@@ -519,7 +519,7 @@ impl Normalized {
                 }
                 // A fixed direction: its mean–variance optimal scale μ'w̃/(γ w̃'Σw̃); the
                 // ensemble's average of scaled portfolios is one too.
-                Method::EqualWeight | Method::Ensemble => mean_dir / (settings.risk_aversion * var_dir),
+                Method::EqualWeight | Method::Ensemble | Method::Blend => mean_dir / (settings.risk_aversion * var_dir),
             },
             Normalization::GrossExposure => 1.0 / (direction.iter().map(|w| w.abs()).sum::<f64>() + hedge_dir.abs()),
         };

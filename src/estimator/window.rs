@@ -295,7 +295,7 @@ fn check_market_values(panel: &ReturnPanel, m: &[f64]) -> Result<(), InputError>
 /// The fewest periods a window may have under `settings`: `min_periods`, and
 /// 8 per cross-validation fold for the component methods.
 pub fn min_periods_required(settings: &ValidSettings) -> usize {
-    let per_fold = if matches!(settings.method, Method::Components | Method::KnsRidge) {
+    let per_fold = if matches!(settings.method, Method::Components | Method::KnsRidge | Method::Blend) {
         settings.folds as usize * MIN_PERIODS_PER_FOLD
     } else {
         0

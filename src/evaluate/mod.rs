@@ -157,7 +157,7 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
     if !baselines {
         return out;
     }
-    if matches!(base.method, Method::Components | Method::Ensemble | Method::KnsRidge) {
+    if matches!(base.method, Method::Components | Method::Ensemble | Method::KnsRidge | Method::Blend) {
         // Each scaling's components method (for an ensemble or `auto`, each of its members).
         for sc in Scaling::ALL {
             if sc != base.scaling || base.method != Method::Components {
@@ -529,7 +529,7 @@ impl Schedule {
         // sweep is that basis alone (every other scaling would repeat it).
         let sweep_scalings = match configured.method {
             _ if spec.sweep_max_k() == 0 || !has_sweep(configured) => Vec::new(),
-            Method::KnsRidge => vec![Scaling::Covariance],
+            Method::KnsRidge | Method::Blend => vec![Scaling::Covariance],
             _ => Scaling::ALL.to_vec(),
         };
         let dates = (spec.window..panel.rows).step_by(spec.step).collect();
@@ -927,7 +927,7 @@ fn sweep_points(oos: &OutOfSample<'_>, plan: &Schedule, fits: &[DateFits], p: f6
 /// Whether the backtest sweeps the out-of-sample Sharpe ratio against K:
 /// for every method built on principal components.
 pub(crate) fn has_sweep(configured: &ValidSettings) -> bool {
-    matches!(configured.method, Method::Components | Method::KnsRidge | Method::Ensemble)
+    matches!(configured.method, Method::Components | Method::KnsRidge | Method::Ensemble | Method::Blend)
 }
 
 /// Configurations the configured method chooses among or combines in every

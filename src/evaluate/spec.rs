@@ -377,9 +377,9 @@ mod tests {
         let small = BacktestSpec { step: 12, ..BacktestSpec::default() }.check(&panel(240, 8), &s).unwrap().budget();
         let big = BacktestSpec::default().check(&panel(600, 40), &s).unwrap().budget();
         assert_eq!(small.refits, 10);
-        // 12 strategies with a market (configured, 5 scalings, plug-in, Ledoit-Wolf, 2 KNS ridges,
-        // equal weight, market) and 6 scalings × 8 sweep points.
-        assert_eq!(small.fits, 10 * (12 + 6 * 8));
+        // 13 strategies with a market (the configured blend, 6 scalings, plug-in, Ledoit-Wolf,
+        // 2 KNS ridges, equal weight, market) and at most 6 scalings × 8 sweep points.
+        assert_eq!(small.fits, 10 * (13 + 6 * 8));
         assert_eq!(big.refits, 480);
         assert!(big.fits > small.fits && big.cells > small.cells && big.bytes > small.bytes);
         assert!(big.bytes < 256 << 20, "a 40-factor, 600-month research backtest is well within 256 MiB");

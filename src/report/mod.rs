@@ -881,7 +881,7 @@ fn pricing_section(r: &BacktestResult) -> String {
             Some(Method::Components) => "the configured method's K-component fits did not cover every refit".to_owned(),
             Some(m) => format!(
                 "the configured method ({m}) holds no K-component model to test: it weights every principal \
-                 component (kns-ridge), averages several (ensemble) or uses none (a baseline); a backtest with \
+                 component (kns-ridge, blend), averages several (ensemble) or uses none (a baseline); a backtest with \
                  method = components runs the GRS test on the components it chooses"
             ),
             None => "there is no fit of the configured method".to_owned(),

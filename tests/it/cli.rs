@@ -326,7 +326,7 @@ fn backtest_writes_report_summary_and_returns() {
         let fitted = s["id"] != "market";
         assert_eq!(s.get("settings").is_some(), fitted, "{}", s["id"]);
     }
-    assert_eq!(strategies[0]["settings"]["method"], "METHOD_KNS_RIDGE");
+    assert_eq!(strategies[0]["settings"]["method"], "METHOD_BLEND");
     // Warnings counted across refits: κ at the grid edge somewhere, with counts at most the refits.
     let counts: Vec<u64> = strategies
         .iter()

@@ -63,7 +63,7 @@ fn over_budget_backtests_are_refused_and_the_server_keeps_serving() {
         // Every option out of range is in the bad-input corpus (tests/bad_input_corpus.rs).
         let mut slowest = Duration::ZERO;
         // Within the default budget (250,000 fits) the shape is legal, but 20,000
-        // monthly refits × (12 strategies + 6 scalings × 6 sweep points) is not affordable.
+        // monthly refits × (13 strategies + 6 scalings × 6 sweep points) is not affordable.
         let mut huge = backtest_request(20_000, 6);
         huge.window = 24;
         huge.step = 1;
@@ -74,7 +74,7 @@ fn over_budget_backtests_are_refused_and_the_server_keeps_serving() {
         let info = s.get_details_error_info().unwrap();
         assert_eq!(info.reason, "REQUEST_OVER_BUDGET");
         assert_eq!(info.metadata["what"], "fits");
-        assert_eq!(info.metadata["estimate"], (19_976u64 * 48).to_string());
+        assert_eq!(info.metadata["estimate"], (19_976u64 * 49).to_string());
         assert!(good_call(&mut c).await, "the server stopped serving after an over-budget backtest");
         println!("slowest refusal: {:.1} ms", slowest.as_secs_f64() * 1e3);
         server.shutdown().await;

@@ -145,6 +145,14 @@ fn check_case(case: &Value) {
         Some(c) => assert_eq!(d.chosen_scaling.map(|s| s.to_string()).as_deref(), c.as_str(), "{name}: chosen"),
         None => assert_eq!(d.chosen_scaling, None, "{name}: no choice"),
     }
+    // method = blend: the ridge member's choices are the diagnostics'.
+    if let Some(k) = e.get("member_K") {
+        assert_eq!(d.num_components as u64, k.as_u64().unwrap(), "{name}: the ridge member's K");
+        close(&format!("{name} ridge member kappa"), d.kappa, num(&e["member_kappa"]), 0.0);
+        close(&format!("{name} ridge member cv_sharpe"), d.cv_sharpe, num(&e["member_cv_sharpe"]), 1.0);
+        assert!(ws.components.is_empty(), "{name}: a blend reports no component loadings");
+        return;
+    }
     if e.get("K").is_none() {
         assert_eq!(d.num_components, 0, "{name}: baselines use no components");
         return;
