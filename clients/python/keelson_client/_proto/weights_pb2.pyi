@@ -47,6 +47,7 @@ class Method(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     METHOD_KNS_RIDGE: _ClassVar[Method]
     METHOD_PLUG_IN_LEDOIT_WOLF: _ClassVar[Method]
     METHOD_ENSEMBLE: _ClassVar[Method]
+    METHOD_BLEND: _ClassVar[Method]
 
 class RiskCalibration(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -86,6 +87,7 @@ METHOD_EQUAL_WEIGHT: Method
 METHOD_KNS_RIDGE: Method
 METHOD_PLUG_IN_LEDOIT_WOLF: Method
 METHOD_ENSEMBLE: Method
+METHOD_BLEND: Method
 RISK_CALIBRATION_UNSPECIFIED: RiskCalibration
 RISK_CALIBRATION_HELD_OUT: RiskCalibration
 RISK_CALIBRATION_LEDOIT_WOLF: RiskCalibration
