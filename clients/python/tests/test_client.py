@@ -159,7 +159,7 @@ def test_bad_settings_are_refused_with_the_field(server, window):
 def test_service_info_gives_defaults_and_limits(server):
     with Client(server.address) as keelson:
         info = keelson.service_info()
-    assert info["defaultSettings"]["method"] == "METHOD_KNS_RIDGE"
+    assert info["defaultSettings"]["method"] == "METHOD_BLEND"
     assert int(info["limits"]["maxFactors"]) > 0
     assert {s["name"] for s in info["settings"]} >= {"method", "max_weight", "seed"}
 
