@@ -272,6 +272,14 @@ fn paired(cells: &[&Cell], a: usize, b: usize) -> (f64, f64) {
 
 const CHOICE_T: [usize; 2] = [120, 240];
 
+/// The sets of markets: label, generator family, seed salt.
+const SETS: [(&str, Family, u64); 4] = [
+    ("broad", Family::Broad, 0),
+    ("probe", Family::Probe, 0x0DD5_EED0_0000_0000),
+    ("fresh", Family::Broad, 0xF7E5_4000_0000_0000),
+    ("holdout", Family::Holdout, 0x4E1D_0000_0000_0000),
+];
+
 /// The families the default may be chosen on.
 const TUNING: [&str; 2] = ["broad", "probe"];
 
@@ -440,13 +448,9 @@ fn main() {
         let cands = candidates(rule);
         let mut all: Vec<Cell> = Vec::new();
         for f in &families {
-            let (family, label, s) = match f.as_str() {
-                "broad" => (Family::Broad, "broad", seed),
-                "fresh" => (Family::Broad, "fresh", seed ^ 0xF7E5_4000_0000_0000),
-                "probe" => (Family::Probe, "probe", seed ^ 0x0DD5_EED0_0000_0000),
-                "holdout" => (Family::Holdout, "holdout", seed ^ 0x4E1D_0000_0000_0000),
-                other => panic!("--families: unknown family {other:?}"),
-            };
+            let (label, family, salt) =
+                *SETS.iter().find(|(l, ..)| l == f).unwrap_or_else(|| panic!("--families: unknown family {f:?}"));
+            let s = seed ^ salt;
             let started = std::time::Instant::now();
             all.extend(study(family, label, s, markets, &periods, (sizes[0], sizes[1]), open, &cands));
             eprintln!("{label}: {:.1} s", started.elapsed().as_secs_f64());
@@ -479,11 +483,7 @@ fn main() {
         };
         for f in &families {
             let cells = of(f);
-            let designs = match f.as_str() {
-                "probe" => Family::Probe.designs(),
-                "holdout" => Family::Holdout.designs(),
-                _ => Family::Broad.designs(),
-            };
+            let designs = SETS.iter().find(|(l, ..)| l == f).map_or(&[][..], |(_, family, _)| family.designs());
             family_table(&mut out, f, &cells, designs, &cands);
             target_line(&mut out, f, &cells, &cands);
             comparison_table(&mut out, f, &cells, &cands, 0);

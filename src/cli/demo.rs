@@ -110,8 +110,7 @@ fn explanation(ws: &ComputeWeightsResponse, plain: Option<&ComputeWeightsRespons
     let mut top: Vec<_> = ws.weights.iter().filter(|f| !f.excluded).collect();
     top.sort_by(|a, b| b.weight.abs().total_cmp(&a.weight.abs()));
     let names: Vec<&str> = top.iter().take(3).map(|f| f.factor.as_str()).collect();
-    let blend = d.effective_settings.is_some_and(|s| s.method() == proto::Method::Blend);
-    let (what, whose) = if blend {
+    let (what, whose) = if output::is_blend(d) {
         (
             format!("half the ridge on all {} components and half the Ledoit–Wolf plug-in", d.num_components),
             "of the ridge half",

@@ -45,7 +45,7 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
         out,
         "in-window Sharpe {:.2} · held-out Sharpe (CV{}) {} · ex-ante volatility {:.2}% · effective factors {:.1}",
         d.in_sample_sharpe,
-        if d.effective_settings.is_some_and(|s| s.method() == proto::Method::Blend) { ", ridge half" } else { "" },
+        if is_blend(d) { ", ridge half" } else { "" },
         if d.cv_sharpe.is_finite() { format!("{:.2}", d.cv_sharpe) } else { "n/a".into() },
         100.0 * d.ex_ante_volatility,
         d.effective_factors
@@ -72,6 +72,11 @@ pub fn table(r: &ComputeWeightsResponse, source: &str, labels: &[String]) -> Str
 }
 
 /// The method, with its K, κ and γ where it has them.
+/// Whether the fit is a blend, whose K, κ and held-out Sharpe ratio are its ridge member's.
+pub(crate) fn is_blend(d: &proto::Diagnostics) -> bool {
+    d.effective_settings.is_some_and(|s| s.method() == proto::Method::Blend)
+}
+
 fn method_line(out: &mut String, d: &proto::Diagnostics) {
     let settings = d.effective_settings.unwrap_or_default();
     let how = |cv: bool| if cv { "cross-validated" } else { "fixed" };

@@ -327,39 +327,7 @@ fn fit_phased(
             lap(&mut mark, &mut ph.assemble);
             r
         }
-        Method::Blend => {
-            let (ridge_settings, lw_settings) = blend_members(settings)?;
-            let prepared = ComponentFit::prepare(&window, &mom, &ridge_settings, KPolicy::All, options)?;
-            lap(&mut mark, &mut ph.components);
-            let ridge = prepared.solve(&ridge_settings, KPolicy::All, options, &mut warnings)?;
-            options.stop.check()?;
-            let lw = shrinkage::plug_in_ledoit_wolf(&mom)?;
-            // Each member at the target (or as the normalisation says), then the equal-weight average.
-            let members = [
-                weights::normalized_weights(&window, &mom, &ridge_settings, &direction_of(&ridge))?,
-                weights::normalized_weights(&window, &mom, &lw_settings, &lw.weights)?,
-            ];
-            let average: Vec<f64> = members[0].iter().zip(&members[1]).map(|(a, b)| 0.5 * (a + b)).collect();
-            let risks: Vec<calibration::HeldOutRatio> =
-                ridge.risk.into_iter().chain(baseline_risk(&window, &lw_settings)).collect();
-            let risk = mean_risk(&risks);
-            lap(&mut mark, &mut ph.solve);
-            let r = weights::assemble(panel, &window, &mom, settings, &average, None, risk, warnings, &options.stop)
-                .map(|mut ws| {
-                    // The ridge member's choices, for the diagnostics and the bootstrap's draws.
-                    let d = &mut ws.diagnostics;
-                    d.num_components = ridge.k;
-                    d.kappa = ridge.kappa;
-                    d.gamma = ridge.gamma;
-                    d.kappa_cross_validated = ridge_settings.kappa.fixed().is_none();
-                    d.cv_best_score = ridge.best_score;
-                    d.cv_sharpe = ridge.held_out_sharpe;
-                    d.cv_surface = ridge.surface;
-                    ws
-                });
-            lap(&mut mark, &mut ph.assemble);
-            r
-        }
+        Method::Blend => fit_blend(panel, &window, &mom, settings, options, warnings, ph, &mut mark),
         Method::PlugIn | Method::PlugInLedoitWolf => {
             let plug = if settings.method == Method::PlugIn {
                 shrinkage::plug_in(&mom)?
@@ -509,6 +477,45 @@ fn baseline_risk(window: &ReturnWindow, settings: &ValidSettings) -> Option<cali
     let bounds = fold_bounds(t, settings.folds as usize);
     let samples = calibration::baseline_samples(window.returns.as_ref(), market, &bounds, settings.method);
     calibration::held_out_ratio(&samples, t, parameters)
+}
+
+/// The blend (SPEC §11): the ridge and the Ledoit–Wolf plug-in, each
+/// normalised, averaged, with the members' mean risk calibration; the ridge
+/// member's choices in the diagnostics (and for the bootstrap's draws).
+#[allow(clippy::too_many_arguments)]
+fn fit_blend(
+    panel: &ReturnPanel,
+    window: &ReturnWindow,
+    mom: &Moments,
+    settings: &ValidSettings,
+    options: &FitOptions,
+    mut warnings: Vec<Warning>,
+    ph: &mut PhaseTimes,
+    mark: &mut Instant,
+) -> Result<WeightSet, EstimateError> {
+    let (ridge_settings, lw_settings) = blend_members(settings)?;
+    let prepared = ComponentFit::prepare(window, mom, &ridge_settings, KPolicy::All, options)?;
+    lap(mark, &mut ph.components);
+    let ridge = prepared.solve(&ridge_settings, KPolicy::All, options, &mut warnings)?;
+    options.stop.check()?;
+    let lw = shrinkage::plug_in_ledoit_wolf(mom)?;
+    let members = [
+        weights::normalized_weights(window, mom, &ridge_settings, &direction_of(&ridge))?,
+        weights::normalized_weights(window, mom, &lw_settings, &lw.weights)?,
+    ];
+    let average: Vec<f64> = members[0].iter().zip(&members[1]).map(|(a, b)| 0.5 * (a + b)).collect();
+    let risks: Vec<calibration::HeldOutRatio> =
+        ridge.risk.into_iter().chain(baseline_risk(window, &lw_settings)).collect();
+    lap(mark, &mut ph.solve);
+    let r = weights::assemble(panel, window, mom, settings, &average, None, mean_risk(&risks), warnings, &options.stop)
+        .map(|mut ws| {
+            weights::record_choices(&mut ws.diagnostics, ridge, &ridge_settings);
+            // The ridge uses every component: K is not a cross-validated choice here.
+            ws.diagnostics.components_cross_validated = false;
+            ws
+        });
+    lap(mark, &mut ph.assemble);
+    r
 }
 
 /// The blend's two members (SPEC §11): the KNS ridge and the Ledoit–Wolf

@@ -714,6 +714,13 @@ fn model_reports(
             }
         })
         .collect();
+    record_choices(diag, m, settings);
+    components
+}
+
+/// A component model's choices (K, κ, γ, the CV surface and scores) in the
+/// diagnostics: for the model itself, or for the ridge member of a blend.
+pub(crate) fn record_choices(diag: &mut Diagnostics, m: ComponentModel, settings: &ValidSettings) {
     diag.num_components = m.k;
     diag.kappa = m.kappa;
     diag.gamma = m.gamma;
@@ -722,7 +729,6 @@ fn model_reports(
     diag.cv_best_score = m.best_score;
     diag.cv_sharpe = m.held_out_sharpe;
     diag.cv_surface = m.surface;
-    components
 }
 
 /// The positions held before this fit, as the implementation stage and the
