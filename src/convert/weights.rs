@@ -207,6 +207,8 @@ fn implementation_to_proto(i: &Implementation) -> proto::Implementation {
         binding,
         solver_status,
         iterations,
+        omega_form,
+        dust_cleared,
     } = i;
     proto::Implementation {
         tracking_error: *tracking_error,
@@ -228,6 +230,8 @@ fn implementation_to_proto(i: &Implementation) -> proto::Implementation {
             .collect(),
         solver_status: (*solver_status).to_owned(),
         iterations: *iterations,
+        omega_form: (*omega_form).to_owned(),
+        dust_cleared: *dust_cleared,
     }
 }
 

@@ -172,8 +172,7 @@ pub(crate) fn baseline_samples(
 
 /// The Ledoit–Wolf rule: √(w'Σw / w'Ω_LW w) for the direction `w`.
 pub(crate) fn ledoit_wolf_factor(mom: &Moments, direction: &[f64]) -> Option<f64> {
-    let (omega, _) = shrinkage::ledoit_wolf(mom);
-    let q = super::desk::quad(&omega, direction, direction);
+    let q = shrinkage::LedoitWolf::new(mom).quad(direction, direction);
     let sample = mom.portfolio_variance(direction);
     let f = (sample / q).sqrt();
     (f.is_finite() && f > 0.0).then_some(f)

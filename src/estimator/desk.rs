@@ -20,18 +20,17 @@
 
 use std::panic::{AssertUnwindSafe, catch_unwind};
 
-use clarabel::algebra::CscMatrix;
-use clarabel::solver::{
-    DefaultInfo, DefaultSettings, DefaultSolver, IPSolver, NonnegativeConeT, SolverStatus, SupportedConeT,
-};
-use faer::Mat;
-
 use super::error::EstimateError;
 use super::moments::Moments;
 use super::settings::ValidSettings;
+use super::shrinkage::LedoitWolf;
 use super::stop::Stop;
 use super::weights::Warning;
 use super::window::{ReturnPanel, ReturnWindow};
+use clarabel::algebra::CscMatrix;
+use clarabel::solver::{
+    DefaultInfo, DefaultSettings, DefaultSolver, IPSolver, NonnegativeConeT, SolverStatus, SupportedConeT, ZeroConeT,
+};
 
 /// Floor of the model's Sharpe ratio in γ*, annualised (SPEC §10).
 pub const MODEL_SHARPE_FLOOR: f64 = 0.1;
@@ -88,8 +87,8 @@ pub struct Problem<'a> {
     pub model: &'a [f64],
     /// Market betas β (the hedge is w_m = −β'w), or `None` without a hedge.
     pub beta: Option<&'a [f64]>,
-    /// Ω, per period, positive definite.
-    pub omega: &'a Mat<f64>,
+    /// Ω, per period, positive definite, in factor form.
+    pub omega: &'a LedoitWolf,
     /// Previous weights p of the usable factors.
     pub previous: &'a [f64],
     /// Previous hedge p_m.
@@ -106,6 +105,41 @@ pub struct Problem<'a> {
     /// Factor names, for the diagnostics and errors.
     pub names: &'a [&'a str],
 }
+
+/// How Ω enters the conic program.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum OmegaForm {
+    /// Ω's upper triangle as the quadratic term: N(N + 1)/2 nonzeros.
+    Dense,
+    /// Ω = a·I + c·X'X through T auxiliary variables y = √c·X(w − w*)/σ*
+    /// tied to w by T equality rows: N·T nonzeros, never an N × N block.
+    Factor,
+}
+
+/// The dense form is used below this many factors (per 120 periods, scaled
+/// with T): the crossover measured by `benches/implementation.rs` (DEVELOPERS.md).
+pub const DENSE_FORM_FACTORS_PER_120_PERIODS: usize = 200;
+
+impl OmegaForm {
+    /// The faster form for N factors over T periods.
+    pub fn for_shape(n: usize, t: usize) -> OmegaForm {
+        if n * 120 < DENSE_FORM_FACTORS_PER_120_PERIODS * t.max(1) { OmegaForm::Dense } else { OmegaForm::Factor }
+    }
+
+    /// The name the diagnostics carry.
+    pub fn word(self) -> &'static str {
+        match self {
+            OmegaForm::Dense => "dense",
+            OmegaForm::Factor => "factor",
+        }
+    }
+}
+
+/// Weights and trades smaller than this fraction of the portfolio's gross
+/// exposure are solver residue, not decisions: a trade that small is not
+/// made (the weight stays at the held one) and a weight that small on a
+/// factor not held is zero (SPEC §10).
+pub const DUST_FRACTION: f64 = 1e-9;
 
 /// One constraint that holds with equality at the solution.
 #[derive(Clone, Debug, PartialEq)]
@@ -142,10 +176,15 @@ pub struct Implementation {
     pub model_sharpe: f64,
     /// Constraints that hold with equality, with their multipliers.
     pub binding: Vec<BindingConstraint>,
-    /// Solver status: `solved`, `almost-solved`, or the reason it stopped.
+    /// Solver status: `solved`, `almost-solved`, `held` (no trade was
+    /// possible or needed: the previous weights), or the reason it stopped.
     pub solver_status: &'static str,
     /// Interior-point iterations.
     pub iterations: u32,
+    /// How Ω entered the solver: `dense` or `factor` (empty when no solver ran).
+    pub omega_form: &'static str,
+    /// Weights and trades below [`DUST_FRACTION`] of gross that were cleared.
+    pub dust_cleared: u32,
 }
 
 /// The stage's answer.
@@ -162,6 +201,8 @@ pub struct Implemented {
 /// infeasibility certificates and binding lists.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 enum Row {
+    /// y = √c·X(w − w*)/σ*: an equality of the factor form, no setting.
+    Factor,
     WeightUpper(usize),
     WeightLower(usize),
     MarketUpper,
@@ -173,25 +214,27 @@ enum Row {
 }
 
 impl Row {
-    fn setting(self) -> &'static str {
+    fn setting(self) -> Option<&'static str> {
         match self {
-            Row::WeightUpper(_) | Row::WeightLower(_) => "max_weight",
-            Row::MarketUpper | Row::MarketLower => "max_market_weight",
-            Row::GrossAbs | Row::Gross => "max_gross",
-            Row::TradeAbs | Row::Turnover => "max_turnover",
+            Row::Factor => None,
+            Row::WeightUpper(_) | Row::WeightLower(_) => Some("max_weight"),
+            Row::MarketUpper | Row::MarketLower => Some("max_market_weight"),
+            Row::GrossAbs | Row::Gross => Some("max_gross"),
+            Row::TradeAbs | Row::Turnover => Some("max_turnover"),
         }
     }
 }
 
-/// The conic program: ½x'Px + q'x subject to Ax ≤ b (one nonnegative cone).
+/// The conic program: ½x'Px + q'x subject to A_e x = b_e (the first
+/// `equalities` rows) and A x ≤ b (the rest).
 struct Program {
-    /// Upper triangle of P, column by column: (row, value).
-    p_cols: Vec<Vec<(usize, f64)>>,
+    p: CscMatrix<f64>,
     q: Vec<f64>,
     /// Rows of A as sparse (column, value) lists.
     rows: Vec<Vec<(usize, f64)>>,
     b: Vec<f64>,
     kinds: Vec<Row>,
+    equalities: usize,
 }
 
 impl Program {
@@ -202,7 +245,15 @@ impl Program {
     }
 
     fn a_matrix(&self, vars: usize) -> CscMatrix<f64> {
-        let mut cols: Vec<Vec<(usize, f64)>> = vec![Vec::new(); vars];
+        let mut counts = vec![0usize; vars];
+        for entries in &self.rows {
+            for &(c, v) in entries {
+                if v != 0.0 {
+                    counts[c] += 1;
+                }
+            }
+        }
+        let mut cols: Vec<Vec<(usize, f64)>> = counts.into_iter().map(Vec::with_capacity).collect();
         for (r, entries) in self.rows.iter().enumerate() {
             for &(c, v) in entries {
                 if v != 0.0 {
@@ -215,9 +266,10 @@ impl Program {
 }
 
 fn csc(m: usize, cols: &[Vec<(usize, f64)>]) -> CscMatrix<f64> {
+    let nnz = cols.iter().map(Vec::len).sum();
     let mut colptr = Vec::with_capacity(cols.len() + 1);
-    let mut rowval = Vec::new();
-    let mut nzval = Vec::new();
+    let mut rowval = Vec::with_capacity(nnz);
+    let mut nzval = Vec::with_capacity(nnz);
     colptr.push(0);
     for col in cols {
         for &(r, v) in col {
@@ -229,29 +281,32 @@ fn csc(m: usize, cols: &[Vec<(usize, f64)>]) -> CscMatrix<f64> {
     CscMatrix::new(m, cols.len(), colptr, rowval, nzval)
 }
 
-/// Variable layout: w, then |w − p| bounds s and s_m, then |w| bounds g and g_m.
+/// Variable layout: w, then |w − p| bounds s and s_m, then |w| bounds g and
+/// g_m, then (factor form) the T auxiliary variables y.
 struct Layout {
     n: usize,
     trade: Option<usize>,
     gross: Option<usize>,
+    factor: Option<usize>,
     hedged: bool,
     total: usize,
 }
 
 impl Layout {
-    fn new(n: usize, limits: &Limits, hedged: bool) -> Layout {
+    fn new(n: usize, limits: &Limits, hedged: bool, form: OmegaForm, periods: usize) -> Layout {
         let extra = n + usize::from(hedged);
         let mut next = n;
-        let mut take = |on: bool| {
+        let mut take = |on: bool, size: usize| {
             on.then(|| {
                 let at = next;
-                next += extra;
+                next += size;
                 at
             })
         };
-        let trade = take(limits.trades_matter());
-        let gross = take(limits.max_gross.is_some());
-        Layout { n, trade, gross, hedged, total: next }
+        let trade = take(limits.trades_matter(), extra);
+        let gross = take(limits.max_gross.is_some(), extra);
+        let factor = take(form == OmegaForm::Factor, periods);
+        Layout { n, trade, gross, factor, hedged, total: next }
     }
 }
 
@@ -273,21 +328,10 @@ pub fn gamma_star(problem: &Problem<'_>, sigma_model: f64, warnings: &mut Vec<Wa
     (sr / sigma_model, sr * root_p)
 }
 
-/// a'Ωb.
-pub(crate) fn quad(omega: &Mat<f64>, a: &[f64], b: &[f64]) -> f64 {
-    let n = a.len();
-    let mut total = 0.0;
-    for j in 0..n {
-        let mut col = 0.0;
-        for i in 0..n {
-            col += omega[(i, j)] * a[i];
-        }
-        total += col * b[j];
-    }
-    total
-}
-
-/// Solves the stage.
+/// Solves the stage, in phases with the stop flag checked before each:
+/// the model's risk, the feasibility checks that need no solver (phase 1),
+/// building the conic program, and the interior-point solve (polled at
+/// every iteration).
 ///
 /// # Errors
 /// [`EstimateError::ConstraintsInfeasible`] naming the constraints no
@@ -295,17 +339,33 @@ pub(crate) fn quad(omega: &Mat<f64>, a: &[f64], b: &[f64]) -> f64 {
 /// solver stops without a feasible iterate, and
 /// [`EstimateError::Numerical`] for a model without risk under Ω, and
 /// [`EstimateError::Cancelled`] / [`EstimateError::DeadlineExceeded`] when
-/// `stop` fires (polled at every solver iteration).
+/// `stop` fires.
 pub fn implement(
     problem: &Problem<'_>,
     limits: &Limits,
     stop: &Stop,
     warnings: &mut Vec<Warning>,
 ) -> Result<Implemented, EstimateError> {
+    let form = OmegaForm::for_shape(problem.model.len(), problem.omega.periods());
+    implement_in(problem, limits, form, stop, warnings)
+}
+
+/// [`implement`] with Ω in the given form (both give the same answer; the
+/// tests and the bench compare them).
+///
+/// # Errors
+/// As [`implement`].
+pub fn implement_in(
+    problem: &Problem<'_>,
+    limits: &Limits,
+    form: OmegaForm,
+    stop: &Stop,
+    warnings: &mut Vec<Warning>,
+) -> Result<Implemented, EstimateError> {
+    stop.check()?;
     let n = problem.model.len();
     let hedged = problem.beta.is_some();
-    let beta = problem.beta.unwrap_or(&[]);
-    let sigma2 = quad(problem.omega, problem.model, problem.model);
+    let sigma2 = problem.omega.quad(problem.model, problem.model);
     if !(sigma2 > 0.0 && sigma2.is_finite()) {
         return Err(EstimateError::Numerical {
             stage: "implementation",
@@ -313,22 +373,20 @@ pub fn implement(
         });
     }
     let (gamma, model_sharpe) = gamma_star(problem, sigma2.sqrt(), warnings);
-    // A turnover budget smaller than what must be sold anyway.
-    if let Some(budget) = limits.max_turnover
-        && problem.forced_turnover > budget
-    {
-        return Err(EstimateError::ConstraintsInfeasible {
-            constraints: vec!["max_turnover".into()],
-            detail: format!(
-                "selling the previous positions outside the window alone trades {:.6}, above max_turnover = {budget}",
-                problem.forced_turnover
-            ),
-        });
-    }
-    let layout = Layout::new(n, limits, hedged);
-    let program = build(problem, limits, &layout, gamma, sigma2);
-    let x = run(&program, &layout, problem, stop, warnings)?;
-    let (w, iterations, status, duals) = x;
+    let budget = discretionary_budget(problem, limits, warnings);
+    stop.check()?;
+    let (mut w, iterations, status, duals, form) = match phase_one(problem, limits, budget)? {
+        Start::Held => (problem.previous.to_vec(), 0, "held", None, ""),
+        Start::Solve => {
+            let layout = Layout::new(n, limits, hedged, form, problem.omega.periods());
+            let program = build(problem, limits, budget, &layout, gamma, sigma2);
+            stop.check()?;
+            let (w, iterations, status, z) = run(&program, &layout, problem, stop, warnings)?;
+            (w, iterations, status, Some((program, z)), form.word())
+        }
+    };
+    let dust_cleared = clear_dust(&mut w, problem.previous);
+    let beta = problem.beta.unwrap_or(&[]);
     let market_weight = if hedged { -dot(beta, &w) } else { 0.0 };
     let diff: Vec<f64> = w.iter().zip(problem.model).map(|(a, b)| a - b).collect();
     let traded = trades(problem, &w, market_weight);
@@ -337,10 +395,11 @@ pub fn implement(
     let model_gross = problem.model.iter().map(|v| v.abs()).sum::<f64>() + model_market.abs();
     // The program's objective is scaled by 1/(γ*σ*²): its multipliers back in objective units.
     let scale = gamma * sigma2;
-    let binding = binding(problem, limits, &w, market_weight, gross, traded, &program, &duals, scale);
+    let state = State { w: &w, market_weight, gross, traded };
+    let binding = binding(problem, limits, &state, duals.as_ref().map(|(p, z)| (p, &z[..])), scale);
     Ok(Implemented {
         report: Implementation {
-            tracking_error: (problem.periods_per_year * quad(problem.omega, &diff, &diff)).max(0.0).sqrt(),
+            tracking_error: (problem.periods_per_year * problem.omega.quad(&diff, &diff)).max(0.0).sqrt(),
             turnover: traded,
             cost: limits.cost_bps * 1e-4 * traded,
             gross,
@@ -350,6 +409,8 @@ pub fn implement(
             binding,
             solver_status: status,
             iterations,
+            omega_form: form,
+            dust_cleared,
         },
         weights: w,
         market_weight,
@@ -367,21 +428,192 @@ fn trades(problem: &Problem<'_>, w: &[f64], market_weight: f64) -> f64 {
     factors + hedge + problem.forced_turnover
 }
 
-/// The scaled program: P = Ω/σ*², q = −Ωw*/σ*², costs c/(γ*σ*²).
-fn build(problem: &Problem<'_>, limits: &Limits, layout: &Layout, gamma: f64, sigma2: f64) -> Program {
-    let n = layout.n;
-    let beta = problem.beta.unwrap_or(&[]);
-    let mut p_cols = vec![Vec::new(); layout.total];
-    for (j, col) in p_cols.iter_mut().enumerate().take(n) {
-        for i in 0..=j {
-            col.push((i, problem.omega[(i, j)] / sigma2));
+/// The turnover left for the stage's own trades: `max_turnover` less the
+/// forced sales. Sales no decision can avoid (positions in factors without
+/// returns in the window) always happen; when they alone exceed the budget
+/// it applies to the other trades instead of the total, with the
+/// `forced-sale-over-turnover` warning (SPEC §10).
+fn discretionary_budget(problem: &Problem<'_>, limits: &Limits, warnings: &mut Vec<Warning>) -> Option<f64> {
+    let budget = limits.max_turnover?;
+    if problem.forced_turnover <= budget {
+        return Some(budget - problem.forced_turnover);
+    }
+    warnings.push(Warning {
+        code: "forced-sale-over-turnover",
+        message: format!(
+            "selling positions without returns in the window trades {} alone, above max_turnover = {}: \
+             the sale is made and the limit applies to the other trades",
+            short(problem.forced_turnover),
+            short(budget)
+        ),
+    });
+    Some(budget)
+}
+
+/// A number for a message: shortest round-trip form, at most 12 characters.
+fn short(v: f64) -> String {
+    super::error::display_number(v)
+}
+
+/// What phase 1 found.
+enum Start {
+    /// The only portfolio within the turnover budget is the one held, and it
+    /// satisfies every limit.
+    Held,
+    /// The solver is needed.
+    Solve,
+}
+
+/// Phase 1 (SPEC §10): infeasibility and trivial answers found without the
+/// solver. Without a turnover limit w = 0 satisfies every cap, so only the
+/// turnover budget B can conflict. The factors' trades are at least
+/// L = Σ|pᵢ| − min(Σ min(|pᵢ|, max_weight), max_gross) (each weight must
+/// come under its cap and their sum under the gross cap), and the hedge's at
+/// least |p_m| − max_market_weight; a budget below their sum is infeasible,
+/// and the error names only the limits whose removal lowers the bound.
+fn phase_one(problem: &Problem<'_>, limits: &Limits, budget: Option<f64>) -> Result<Start, EstimateError> {
+    let Some(budget) = budget else { return Ok(Start::Solve) };
+    let p = problem.previous;
+    let held: f64 = p.iter().map(|v| v.abs()).sum();
+    let factor_bound = |cap: Option<f64>, gross: Option<f64>| {
+        let capped: f64 = p.iter().map(|v| cap.map_or(v.abs(), |c| v.abs().min(c))).sum();
+        (held - gross.map_or(capped, |g| capped.min(g))).max(0.0)
+    };
+    let hedged = problem.beta.is_some();
+    let hedge_bound = |cap: Option<f64>| match (hedged, cap) {
+        (true, Some(h)) => (problem.previous_market.abs() - h).max(0.0),
+        _ => 0.0,
+    };
+    let (cap, gross, market) = (limits.max_weight, limits.max_gross, limits.max_market_weight);
+    let bound = factor_bound(cap, gross) + hedge_bound(market);
+    let slack = 1e-9 * (1.0 + budget);
+    if bound > budget + slack {
+        let mut names = vec!["max_turnover".to_owned()];
+        let mut detail = Vec::new();
+        let drops = [
+            ("max_weight", factor_bound(None, gross) + hedge_bound(market)),
+            ("max_gross", factor_bound(cap, None) + hedge_bound(market)),
+            ("max_market_weight", factor_bound(cap, gross)),
+        ];
+        for (name, without) in drops {
+            if without < bound - slack {
+                names.push(name.to_owned());
+                detail.push(name);
+            }
+        }
+        names.sort();
+        return Err(EstimateError::ConstraintsInfeasible {
+            constraints: names,
+            detail: format!(
+                "bringing the previous weights within {} trades at least {}, above the turnover left ({})",
+                detail.join(" and "),
+                short(bound),
+                short(budget)
+            ),
+        });
+    }
+    // A budget too small to trade at all (relative to what is held): the
+    // held portfolio, if its hedge needs no trade and it meets every cap.
+    if budget <= 1e-12 * (1.0 + held) {
+        let hedge_trade = problem.beta.map_or(0.0, |beta| (dot(beta, p) + problem.previous_market).abs());
+        let market = problem.beta.map_or(0.0, |beta| dot(beta, p).abs());
+        let within = limits.max_weight.is_none_or(|c| p.iter().all(|v| v.abs() <= c))
+            && limits.max_gross.is_none_or(|g| held + market <= g)
+            && limits.max_market_weight.is_none_or(|h| !hedged || market <= h);
+        if within && hedge_trade <= budget {
+            return Ok(Start::Held);
+        }
+        return Err(EstimateError::ConstraintsInfeasible {
+            constraints: vec!["max_turnover".into()],
+            detail: format!(
+                "the turnover left ({}) allows no trade, and the held portfolio {}",
+                short(budget),
+                if within { "needs its hedge rebalanced" } else { "breaks a cap" }
+            ),
+        });
+    }
+    Ok(Start::Solve)
+}
+
+/// Sets trades and weights below [`DUST_FRACTION`] of gross to the held
+/// weight or zero, never raising a weight's size: a trade |wᵢ − pᵢ| that
+/// small with |pᵢ| ≤ |wᵢ| is not made, and a weight that small whose zeroing
+/// does not enlarge its trade is zero. Returns how many were cleared.
+fn clear_dust(w: &mut [f64], previous: &[f64]) -> u32 {
+    let gross: f64 = w.iter().map(|v| v.abs()).sum();
+    let eps = DUST_FRACTION * gross;
+    let mut cleared = 0;
+    for (wi, &pi) in w.iter_mut().zip(previous) {
+        if *wi == pi {
+            continue;
+        }
+        if (*wi - pi).abs() <= eps && pi.abs() <= wi.abs() {
+            *wi = pi;
+            cleared += 1;
+        } else if wi.abs() <= eps && pi.abs() <= (*wi - pi).abs() {
+            *wi = 0.0;
+            cleared += 1;
         }
     }
+    cleared
+}
+
+/// The scaled program: ½(w − w*)'Ω(w − w*)/σ*² plus costs c/(γ*σ*²), with
+/// Ω dense or in factor form (see [`OmegaForm`]).
+fn build(
+    problem: &Problem<'_>,
+    limits: &Limits,
+    budget: Option<f64>,
+    layout: &Layout,
+    gamma: f64,
+    sigma2: f64,
+) -> Program {
+    let n = layout.n;
+    let beta = problem.beta.unwrap_or(&[]);
+    let omega = problem.omega;
+    let mut p_cols: Vec<Vec<(usize, f64)>> = vec![Vec::new(); layout.total];
     let mut q = vec![0.0; layout.total];
-    for (i, qi) in q.iter_mut().enumerate().take(n) {
-        *qi = -(0..n).map(|j| problem.omega[(i, j)] * problem.model[j]).sum::<f64>() / sigma2;
+    let mut prog_rows = Vec::new();
+    let mut b = Vec::new();
+    let mut kinds = Vec::new();
+    match layout.factor {
+        None => {
+            let dense = omega.dense();
+            for (j, col) in p_cols.iter_mut().enumerate().take(n) {
+                *col = (0..=j).map(|i| (i, dense[(i, j)] / sigma2)).collect();
+            }
+            let omega_w = omega.times(problem.model);
+            for (qi, v) in q.iter_mut().zip(omega_w) {
+                *qi = -v / sigma2;
+            }
+        }
+        Some(y0) => {
+            // ½(a/σ²)‖w‖² − (a/σ²)w*'w + ½‖y‖², y − (√c/σ)Xw = −(√c/σ)Xw*.
+            let a = omega.ridge / sigma2;
+            for j in 0..n {
+                p_cols[j].push((j, a));
+                q[j] = -a * problem.model[j];
+            }
+            let periods = omega.periods();
+            for k in 0..periods {
+                p_cols[y0 + k].push((y0 + k, 1.0));
+            }
+            let root = (omega.scale / sigma2).sqrt();
+            let x = omega.panel();
+            let xw = omega.project(problem.model);
+            for k in 0..periods {
+                let mut row = Vec::with_capacity(n + 1);
+                row.extend((0..n).map(|j| (j, -root * x[(k, j)])));
+                row.push((y0 + k, 1.0));
+                prog_rows.push(row);
+                b.push(-root * xw[k]);
+                kinds.push(Row::Factor);
+            }
+        }
     }
-    let mut prog = Program { p_cols, q, rows: Vec::new(), b: Vec::new(), kinds: Vec::new() };
+    let equalities = prog_rows.len();
+    let mut prog = Program { p: csc(layout.total, &p_cols), q, rows: prog_rows, b, kinds, equalities };
+    drop(p_cols);
     // β'w as (column, value) entries; the hedge is its negative.
     let beta_w = |sign: f64| -> Vec<(usize, f64)> { (0..n).map(|j| (j, sign * beta[j])).collect() };
     if let Some(c) = limits.max_weight {
@@ -435,9 +667,9 @@ fn build(problem: &Problem<'_>, limits: &Limits, layout: &Layout, gamma: f64, si
             prog.push(Row::TradeAbs, up, pm);
             prog.push(Row::TradeAbs, down, -pm);
         }
-        if let Some(budget) = limits.max_turnover {
+        if let Some(budget) = budget {
             let sum: Vec<(usize, f64)> = (0..extra).map(|k| (s0 + k, 1.0)).collect();
-            prog.push(Row::Turnover, sum, budget - problem.forced_turnover);
+            prog.push(Row::Turnover, sum, budget);
         }
     }
     prog
@@ -467,7 +699,6 @@ fn run(
     stop: &Stop,
     warnings: &mut Vec<Warning>,
 ) -> Result<Solved, EstimateError> {
-    let p = csc(layout.total, &prog.p_cols);
     let a = prog.a_matrix(layout.total);
     let settings = DefaultSettings {
         verbose: false,
@@ -479,15 +710,23 @@ fn run(
         ..DefaultSettings::default()
     };
     let m = prog.b.len();
-    let cones: Vec<SupportedConeT<f64>> = if m > 0 { vec![NonnegativeConeT(m)] } else { Vec::new() };
+    let mut cones: Vec<SupportedConeT<f64>> = Vec::new();
+    if prog.equalities > 0 {
+        cones.push(ZeroConeT(prog.equalities));
+    }
+    if m > prog.equalities {
+        cones.push(NonnegativeConeT(m - prog.equalities));
+    }
     let outcome = catch_unwind(AssertUnwindSafe(|| -> Result<_, String> {
-        let mut solver = DefaultSolver::new(&p, &prog.q, &a, &prog.b, &cones, settings).map_err(|e| e.to_string())?;
+        let mut solver =
+            DefaultSolver::new(&prog.p, &prog.q, &a, &prog.b, &cones, settings).map_err(|e| e.to_string())?;
         let poll = stop.clone();
         solver.set_termination_callback(move |_: &DefaultInfo<f64>| poll.check().is_err());
         solver.solve();
         let s = &solver.solution;
         Ok((s.x.clone(), s.z.clone(), s.status, s.iterations))
     }));
+    drop(a);
     let (x, z, status, iterations) = match outcome {
         Ok(Ok(v)) => v,
         Ok(Err(e)) => return Err(EstimateError::SolverFailed { status: "setup".into(), detail: e }),
@@ -525,14 +764,16 @@ fn run(
     }
 }
 
-/// Largest violation of Ax ≤ b, relative to 1 + |b|.
+/// Largest violation of A_e x = b_e and A x ≤ b, relative to 1 + |b|.
 fn violation(prog: &Program, x: &[f64]) -> f64 {
     prog.rows
         .iter()
         .zip(&prog.b)
-        .map(|(row, &b)| {
+        .enumerate()
+        .map(|(r, (row, &b))| {
             let ax: f64 = row.iter().map(|&(c, v)| v * x[c]).sum();
-            if ax.is_finite() { ((ax - b) / (1.0 + b.abs())).max(0.0) } else { f64::INFINITY }
+            let gap = if r < prog.equalities { (ax - b).abs() } else { ax - b };
+            if ax.is_finite() { (gap / (1.0 + b.abs())).max(0.0) } else { f64::INFINITY }
         })
         .fold(0.0, f64::max)
 }
@@ -540,14 +781,16 @@ fn violation(prog: &Program, x: &[f64]) -> f64 {
 /// The constraints named by the solver's certificate of infeasibility: the
 /// rows whose multipliers carry the certificate.
 fn infeasible(prog: &Program, z: &[f64], problem: &Problem<'_>) -> EstimateError {
-    let top = z.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+    let settings = &z[prog.equalities..];
+    let kinds = &prog.kinds[prog.equalities..];
+    let top = settings.iter().fold(0.0f64, |m, v| m.max(v.abs()));
     let mut names: Vec<String> = Vec::new();
     let mut factors: Vec<String> = Vec::new();
-    for (kind, &zi) in prog.kinds.iter().zip(z) {
+    for (kind, &zi) in kinds.iter().zip(settings) {
         if top > 0.0 && zi.abs() > 1e-6 * top {
-            let name = kind.setting().to_owned();
-            if !names.contains(&name) {
-                names.push(name);
+            let Some(name) = kind.setting() else { continue };
+            if !names.iter().any(|n| n == name) {
+                names.push(name.to_owned());
             }
             if let Row::WeightUpper(i) | Row::WeightLower(i) = kind {
                 let f = problem.names.get(*i).map_or_else(|| format!("#{i}"), |s| (*s).to_owned());
@@ -558,8 +801,7 @@ fn infeasible(prog: &Program, z: &[f64], problem: &Problem<'_>) -> EstimateError
         }
     }
     if names.is_empty() {
-        names = prog.kinds.iter().map(|k| k.setting().to_owned()).collect();
-        names.dedup();
+        names = kinds.iter().filter_map(|k| k.setting()).map(str::to_owned).collect();
     }
     names.sort();
     names.dedup();
@@ -575,21 +817,28 @@ fn infeasible(prog: &Program, z: &[f64], problem: &Problem<'_>) -> EstimateError
     EstimateError::ConstraintsInfeasible { constraints: names, detail }
 }
 
-/// The constraints that hold with equality, with multipliers in objective units.
-#[allow(clippy::too_many_arguments)]
-fn binding(
-    problem: &Problem<'_>,
-    limits: &Limits,
-    w: &[f64],
+/// The implemented portfolio's constrained quantities.
+struct State<'a> {
+    w: &'a [f64],
     market_weight: f64,
     gross: f64,
     traded: f64,
-    prog: &Program,
-    z: &[f64],
+}
+
+/// The constraints that hold with equality, with multipliers in objective
+/// units (0 when no solver ran).
+fn binding(
+    problem: &Problem<'_>,
+    limits: &Limits,
+    state: &State<'_>,
+    duals: Option<(&Program, &[f64])>,
     scale: f64,
 ) -> Vec<BindingConstraint> {
     let tight = |value: f64, limit: f64| limit - value <= BINDING_TOLERANCE * (1.0 + limit);
-    let dual_of = |kind: Row| prog.kinds.iter().position(|k| *k == kind).map_or(0.0, |r| z[r] * scale);
+    let dual_of = |kind: Row| {
+        duals.and_then(|(prog, z)| prog.kinds.iter().position(|k| *k == kind).map(|r| z[r] * scale)).unwrap_or(0.0)
+    };
+    let State { w, market_weight, gross, traded } = *state;
     let mut out = Vec::new();
     if let Some(c) = limits.max_weight {
         for (i, &wi) in w.iter().enumerate() {
@@ -648,7 +897,7 @@ fn binding(
 pub struct DeskWindow {
     window: ReturnWindow,
     mom: Moments,
-    omega: Mat<f64>,
+    omega: LedoitWolf,
     hedged: bool,
 }
 
@@ -682,7 +931,7 @@ impl DeskWindow {
         let window = ReturnWindow::new(panel, settings)?;
         let hedged = settings.demarket && window.market.is_some();
         let mom = Moments::compute(window.returns.as_ref(), if hedged { window.market.as_deref() } else { None });
-        let omega = super::shrinkage::ledoit_wolf(&mom).0;
+        let omega = LedoitWolf::new(&mom);
         Ok(DeskWindow { window, mom, omega, hedged })
     }
 
@@ -698,6 +947,25 @@ impl DeskWindow {
         model: &[f64],
         model_sharpe: f64,
         previous: Holdings<'_>,
+        stop: &Stop,
+        warnings: &mut Vec<Warning>,
+    ) -> Result<DeskAnswer, EstimateError> {
+        let form = OmegaForm::for_shape(self.window.used.len(), self.omega.periods());
+        self.implement_in(settings, model, model_sharpe, previous, form, stop, warnings)
+    }
+
+    /// [`DeskWindow::implement`] with Ω in the given form.
+    ///
+    /// # Errors
+    /// As [`implement`].
+    #[allow(clippy::too_many_arguments)]
+    pub fn implement_in(
+        &self,
+        settings: &ValidSettings,
+        model: &[f64],
+        model_sharpe: f64,
+        previous: Holdings<'_>,
+        form: OmegaForm,
         stop: &Stop,
         warnings: &mut Vec<Warning>,
     ) -> Result<DeskAnswer, EstimateError> {
@@ -720,7 +988,7 @@ impl DeskWindow {
             periods_per_year: p,
             names: &names,
         };
-        let done = implement(&problem, &Limits::of(settings), stop, warnings)?;
+        let done = implement_in(&problem, &Limits::of(settings), form, stop, warnings)?;
         let mut weights = vec![0.0; previous.len()];
         for (j, &c) in used.iter().enumerate() {
             weights[c] = done.weights[j];

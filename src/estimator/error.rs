@@ -56,6 +56,13 @@ pub(crate) fn truncate_for_display(s: &str) -> std::borrow::Cow<'_, str> {
     format!("{}… ({} bytes)", &s[..end], s.len()).into()
 }
 
+/// A number for a message in its shortest round-trip form: plain between
+/// 1e-4 and 1e15, scientific outside (so 1e300 is five characters, not 301).
+pub(crate) fn display_number(v: f64) -> String {
+    let a = v.abs();
+    if a == 0.0 || !a.is_finite() || (1e-4..1e15).contains(&a) { format!("{v}") } else { format!("{v:e}") }
+}
+
 impl fmt::Display for Location {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         write!(f, "field `{}`", self.field)?;

@@ -34,10 +34,10 @@ pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use frequency::FrequencySource;
 pub use moments::Moments;
 pub use settings::{
-    Aggregate, Cap, Choice, CvCriterion, Method, MissingPolicy, Normalization, RiskCalibration, Scaling, SettingInfo,
-    Settings, SettingsPatch, ValidSettings, closest_name,
+    Aggregate, Cap, Choice, CvCriterion, MIN_LIMIT, Method, MissingPolicy, Normalization, RiskCalibration, Scaling,
+    SettingInfo, Settings, SettingsPatch, ValidSettings, closest_name,
 };
-pub use shrinkage::{PlugIn, ShrinkagePath, kns_gamma, ledoit_wolf, plug_in, plug_in_ledoit_wolf};
+pub use shrinkage::{LedoitWolf, PlugIn, ShrinkagePath, kns_gamma, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
 pub use weights::{
     ComponentReport, Diagnostics, ExcludedReport, FactorReport, ScalingScore, WARNING_CODES, Warning, WeightSet,

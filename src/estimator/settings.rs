@@ -228,9 +228,9 @@ impl Cap {
         }
     }
 
-    /// Off, or a finite bound in (0, `hi`].
+    /// Off, or a finite bound in [[`MIN_LIMIT`], `hi`].
     fn within(self, hi: f64) -> bool {
-        self.limit().is_none_or(|v| within(v, 0.0, hi))
+        self.limit().is_none_or(|v| v.is_finite() && (MIN_LIMIT..=hi).contains(&v))
     }
 }
 
@@ -267,6 +267,12 @@ impl<'de> Deserialize<'de> for Cap {
         }
     }
 }
+
+/// The smallest limit of the implementation stage, in multiples of NAV
+/// (one millionth: $1 on $1m). Smaller caps are refused: the interior-point
+/// solver's tolerance is absolute, so a limit of 1e-9 could not be held to
+/// a relative accuracy a desk can rely on (SPEC §10).
+pub const MIN_LIMIT: f64 = 1e-6;
 
 /// One row of the settings table: what the README and `GetServiceInfo` show.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -474,22 +480,22 @@ settings_table! {
 
     /// Largest absolute weight on any one factor (SPEC §10).
     max_weight: Cap = Cap::Off;
-    range "`off` or (0, 100]" if |v| v.within(100.0);
+    range "`off` or [1e-6, 100]" if |v| v.within(100.0);
     meaning "implementation: |wᵢ| ≤ this for every factor";
 
     /// Largest gross exposure Σ|wᵢ| + |w_m| (SPEC §10).
     max_gross: Cap = Cap::Off;
-    range "`off` or (0, 1000]" if |v| v.within(1000.0);
+    range "`off` or [1e-6, 1000]" if |v| v.within(1000.0);
     meaning "implementation: gross exposure Σ|wᵢ| + |w_m| ≤ this (NAV = 1)";
 
     /// Largest absolute market hedge |w_m| (SPEC §10).
     max_market_weight: Cap = Cap::Off;
-    range "`off` or (0, 100]" if |v| v.within(100.0);
+    range "`off` or [1e-6, 100]" if |v| v.within(100.0);
     meaning "implementation: |w_m| ≤ this";
 
     /// Largest turnover against the previous weights (SPEC §10).
     max_turnover: Cap = Cap::Off;
-    range "`off` or (0, 1000]" if |v| v.within(1000.0);
+    range "`off` or [1e-6, 1000]" if |v| v.within(1000.0);
     meaning "implementation: Σ|wᵢ − pᵢ| + |w_m − p_m| ≤ this, p the previous weights (0 where none are given)";
 
     /// Proportional trading cost, in basis points of the weight traded (SPEC §10).

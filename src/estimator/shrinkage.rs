@@ -1,10 +1,12 @@
 //! Shrunk mean–variance coefficients on the components (SPEC §5): the KNS
 //! ridge, the naive elastic net, and the unshrunk plug-in baseline.
 
+use faer::Mat;
+
 use super::basis::ComponentBasis;
 use super::dense;
 use super::error::EstimateError;
-use super::moments::Moments;
+use super::moments::{Moments, column, dot};
 
 /// KNS penalty γ = tr(Σ_F)/(κ² T) with κ per period (Kozak, Nagel & Santosh 2020).
 pub fn kns_gamma(trace_f: f64, kappa_per_period: f64, periods: usize) -> f64 {
@@ -170,38 +172,141 @@ pub fn plug_in(mom: &Moments) -> Result<PlugIn, EstimateError> {
 /// Ledoit & Wolf (2004) shrinkage of the sample covariance towards a scaled
 /// identity, Σ_LW = (1 − δ)S + δ·(tr S/N)·I with S = X_c'X_c/T (divisor T),
 /// the estimator and shrinkage intensity of scikit-learn `LedoitWolf`.
-/// Returns Σ_LW and δ.
-pub fn ledoit_wolf(mom: &Moments) -> (faer::Mat<f64>, f64) {
-    let (t, n) = mom.centered.shape();
-    let tf = t as f64;
-    let x = &mom.centered;
-    let mut s = dense::gram_tn(x.as_ref());
-    let x2 = faer::Mat::from_fn(t, n, |i, j| x[(i, j)] * x[(i, j)]);
-    let x2tx2 = dense::gram_tn(x2.as_ref());
-    let mut trace_s = 0.0;
-    for j in 0..n {
-        trace_s += s[(j, j)] / tf;
-    }
-    let mu = trace_s / n as f64;
-    let mut beta_sum = 0.0;
-    let mut delta_sum = 0.0;
-    for a in 0..n {
-        for b in 0..n {
-            beta_sum += x2tx2[(a, b)];
-            delta_sum += s[(a, b)] * s[(a, b)];
+///
+/// Held in factor form, Σ_LW = a·I + c·X_c'X_c with a = δ·tr S/N and
+/// c = (1 − δ)/T: the N × N matrix is formed only on request ([`dense`]),
+/// so a window of 10,000 factors costs its T × N panel and one T × T Gram
+/// matrix, not 800 MB.
+///
+/// [`dense`]: LedoitWolf::dense
+#[derive(Clone, Debug)]
+pub struct LedoitWolf {
+    /// δ, the shrinkage intensity in [0, 1].
+    pub shrinkage: f64,
+    /// a = δ·tr S/N, the identity part.
+    pub ridge: f64,
+    /// c = (1 − δ)/T, the weight of X_c'X_c.
+    pub scale: f64,
+    /// X_c, T × N.
+    x: Mat<f64>,
+}
+
+impl LedoitWolf {
+    /// The estimator of one block of periods, in O(N·T·min(N, T)) time and
+    /// O(N·T + min(N, T)²) memory: ‖X_c'X_c‖²_F through the smaller Gram
+    /// matrix, and Σ_ab (X²'X²)_ab = Σ_t (Σ_a x_ta²)².
+    pub fn new(mom: &Moments) -> LedoitWolf {
+        let (t, n) = mom.centered.shape();
+        let (tf, nf) = (t as f64, n as f64);
+        let x = &mom.centered;
+        let gram = if n <= t { dense::gram_tn(x.as_ref()) } else { dense::gram_nt(x.as_ref()) };
+        let m = gram.nrows();
+        let mut delta_sum = 0.0;
+        for b in 0..m {
+            for a in 0..m {
+                delta_sum += gram[(a, b)] * gram[(a, b)];
+            }
         }
-    }
-    let delta_raw = delta_sum / (tf * tf);
-    let beta = (beta_sum / tf - delta_raw) / (n as f64 * tf);
-    let delta = (delta_raw - 2.0 * mu * trace_s + n as f64 * mu * mu) / n as f64;
-    let beta = beta.min(delta);
-    let shrinkage = if beta == 0.0 { 0.0 } else { beta / delta };
-    for a in 0..n {
-        for b in 0..n {
-            s[(a, b)] = (1.0 - shrinkage) * s[(a, b)] / tf + if a == b { shrinkage * mu } else { 0.0 };
+        let mut trace_sum = 0.0;
+        let mut row_sq = vec![0.0; t];
+        for j in 0..n {
+            for (r, v) in row_sq.iter_mut().zip(column(x, j)) {
+                *r += v * v;
+            }
         }
+        let mut beta_sum = 0.0;
+        for r in &row_sq {
+            trace_sum += r;
+            beta_sum += r * r;
+        }
+        let trace_s = trace_sum / tf;
+        let mu = trace_s / nf;
+        let delta_raw = delta_sum / (tf * tf);
+        let beta = (beta_sum / tf - delta_raw) / (nf * tf);
+        let delta = (delta_raw - 2.0 * mu * trace_s + nf * mu * mu) / nf;
+        let beta = beta.min(delta);
+        let shrinkage = if beta == 0.0 { 0.0 } else { beta / delta };
+        LedoitWolf { shrinkage, ridge: shrinkage * mu, scale: (1.0 - shrinkage) / tf, x: x.clone() }
     }
-    (s, shrinkage)
+
+    /// Number of factors N.
+    pub fn dim(&self) -> usize {
+        self.x.ncols()
+    }
+
+    /// Number of periods T.
+    pub fn periods(&self) -> usize {
+        self.x.nrows()
+    }
+
+    /// X_c, T × N: Σ_LW = a·I + c·X_c'X_c.
+    pub fn panel(&self) -> &Mat<f64> {
+        &self.x
+    }
+
+    /// X_c v, T values.
+    pub fn project(&self, v: &[f64]) -> Vec<f64> {
+        let mut out = vec![0.0; self.periods()];
+        for (j, &vj) in v.iter().enumerate() {
+            if vj != 0.0 {
+                for (o, x) in out.iter_mut().zip(column(&self.x, j)) {
+                    *o += x * vj;
+                }
+            }
+        }
+        out
+    }
+
+    /// u'Σ_LW v = a·u'v + c·(X_c u)'(X_c v).
+    pub fn quad(&self, u: &[f64], v: &[f64]) -> f64 {
+        let xu = self.project(u);
+        let xv = if std::ptr::eq(u, v) { xu.clone() } else { self.project(v) };
+        self.ridge * dot(u, v) + self.scale * dot(&xu, &xv)
+    }
+
+    /// Σ_LW v.
+    pub fn times(&self, v: &[f64]) -> Vec<f64> {
+        let xv = self.project(v);
+        (0..self.dim()).map(|j| self.ridge * v[j] + self.scale * dot(column(&self.x, j), &xv)).collect()
+    }
+
+    /// Σ_LW as an N × N matrix.
+    pub fn dense(&self) -> Mat<f64> {
+        let mut s = dense::gram_tn(self.x.as_ref());
+        let n = s.nrows();
+        for b in 0..n {
+            for a in 0..n {
+                s[(a, b)] = self.scale * s[(a, b)] + if a == b { self.ridge } else { 0.0 };
+            }
+        }
+        s
+    }
+
+    /// Σ_LW⁻¹v: by Cholesky of the N × N matrix when N ≤ T, else by the
+    /// Woodbury identity, Σ_LW⁻¹ = (I − c·X_c'(a·I + c·X_cX_c')⁻¹X_c)/a, with
+    /// one T × T Cholesky. `None` when Σ_LW is not numerically positive
+    /// definite.
+    pub fn solve(&self, v: &[f64]) -> Option<Vec<f64>> {
+        let (t, n) = self.x.shape();
+        if n <= t {
+            let sigma = self.dense();
+            let mut a: Vec<f64> = (0..n * n).map(|i| sigma[(i / n, i % n)]).collect();
+            let mut w = v.to_vec();
+            return dense::spd_solve_in_place(&mut a, n, &mut w).then_some(w);
+        }
+        if !(self.ridge > 0.0) {
+            return None;
+        }
+        let g = dense::gram_nt(self.x.as_ref());
+        let mut m: Vec<f64> = (0..t * t)
+            .map(|i| self.scale * g[(i / t, i % t)] + if i / t == i % t { self.ridge } else { 0.0 })
+            .collect();
+        let mut z = self.project(v);
+        if !dense::spd_solve_in_place(&mut m, t, &mut z) {
+            return None;
+        }
+        Some((0..n).map(|j| (v[j] - self.scale * dot(column(&self.x, j), &z)) / self.ridge).collect())
+    }
 }
 
 /// The plug-in portfolio Σ_LW⁻¹μ with the Ledoit–Wolf covariance.
@@ -209,22 +314,43 @@ pub fn ledoit_wolf(mom: &Moments) -> (faer::Mat<f64>, f64) {
 /// # Errors
 /// [`EstimateError::Numerical`] if Σ_LW is not positive definite (all returns constant).
 pub fn plug_in_ledoit_wolf(mom: &Moments) -> Result<PlugIn, EstimateError> {
-    let (sigma, _) = ledoit_wolf(mom);
-    let n = sigma.nrows();
-    let mut a: Vec<f64> = (0..n * n).map(|i| sigma[(i / n, i % n)]).collect();
-    let mut w = mom.mean.clone();
-    if !dense::spd_solve_in_place(&mut a, n, &mut w) {
-        return Err(EstimateError::Numerical {
-            stage: "Ledoit-Wolf plug-in",
-            detail: "the shrunk covariance is not positive definite".into(),
-        });
-    }
+    let n = mom.mean.len();
+    let w = LedoitWolf::new(mom).solve(&mom.mean).ok_or_else(|| EstimateError::Numerical {
+        stage: "Ledoit-Wolf plug-in",
+        detail: "the shrunk covariance is not positive definite".into(),
+    })?;
     Ok(PlugIn { weights: w, singular: false, rank: n })
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The factor form against the N × N matrix it stands for, on a wide
+    /// window (N > T, the Woodbury path) and a narrow one.
+    #[test]
+    fn factor_form_products_and_solve_match_the_dense_matrix() {
+        for (t, n) in [(12usize, 30usize), (40, 9)] {
+            let r = Mat::from_fn(t, n, |i, j| ((i * 7 + j * 13) as f64 * 0.37).sin() + 0.1 * (j as f64 * 0.5).cos());
+            let mom = Moments::compute(r.as_ref(), None);
+            let lw = LedoitWolf::new(&mom);
+            assert!(lw.shrinkage > 0.0 && lw.shrinkage <= 1.0);
+            let d = lw.dense();
+            let v: Vec<f64> = (0..n).map(|j| (j as f64 * 0.9).cos()).collect();
+            let dv: Vec<f64> = (0..n).map(|i| (0..n).map(|j| d[(i, j)] * v[j]).sum()).collect();
+            let scale = dv.iter().fold(0.0f64, |m, x| m.max(x.abs()));
+            for (a, b) in lw.times(&v).iter().zip(&dv) {
+                assert!((a - b).abs() <= 1e-13 * scale, "{t}x{n}: Σv {a} vs {b}");
+            }
+            let q: f64 = v.iter().zip(&dv).map(|(a, b)| a * b).sum();
+            assert!((lw.quad(&v, &v) - q).abs() <= 1e-13 * q.abs());
+            let x = lw.solve(&v).expect("positive definite");
+            let back: Vec<f64> = (0..n).map(|i| (0..n).map(|j| d[(i, j)] * x[j]).sum()).collect();
+            for (a, b) in back.iter().zip(&v) {
+                assert!((a - b).abs() <= 1e-9, "{t}x{n}: Σ(Σ⁻¹v) {a} vs {b}");
+            }
+        }
+    }
 
     #[test]
     fn soft_threshold_cases() {

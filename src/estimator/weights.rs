@@ -61,7 +61,7 @@ pub struct ComponentReport {
 }
 
 /// Every warning code a fit can raise, in the README's order.
-pub const WARNING_CODES: [&str; 16] = [
+pub const WARNING_CODES: [&str; 17] = [
     "factors-excluded",
     "short-window",
     "return-scale",
@@ -71,6 +71,7 @@ pub const WARNING_CODES: [&str; 16] = [
     "singular-covariance",
     "solver-not-converged",
     "previous-weights-unknown-factor",
+    "forced-sale-over-turnover",
     "model-no-edge",
     "solver-reduced-accuracy",
     "ill-conditioned-covariance",
@@ -91,6 +92,9 @@ pub fn warning_meaning(code: &str) -> &'static str {
         "components-capped-by-rank" => "the window's rank allowed fewer components than asked",
         "singular-covariance" => "the covariance is singular: the plug-in used the minimum-norm solution",
         "solver-not-converged" => "a solver stopped at its iteration limit; its answer meets the limits",
+        "forced-sale-over-turnover" => {
+            "held positions without returns in the window were sold above max_turnover; the limit applied to the other trades"
+        }
         "previous-weights-unknown-factor" => "a previous weight names a factor not in the window: it is sold",
         "model-no-edge" => "the model's own Sharpe ratio was not positive: trades are priced at a floor",
         "solver-reduced-accuracy" => "the implementation solver reached only reduced accuracy",
@@ -379,7 +383,7 @@ fn implement_stage(
 ) -> Result<desk::Implemented, EstimateError> {
     let p = f64::from(settings.periods_per_year());
     let hedged = settings.demarket && window.market.is_some();
-    let omega = super::shrinkage::ledoit_wolf(mom).0;
+    let omega = super::shrinkage::LedoitWolf::new(mom);
     let names: Vec<&str> = window.used.iter().map(|&c| window.names[c].as_str()).collect();
     let problem = desk::Problem {
         model,
@@ -574,7 +578,7 @@ fn factor_reports(
         f.sharpe_annualized = sharpe_ann[j];
         f.market_beta = mom.beta[j];
         f.scale = model.map_or(0.0, |m| m.basis.scale[j]);
-        f.risk_contribution = w[j] * sigma_w[j] / var_w;
+        f.risk_contribution = if w[j] == 0.0 { 0.0 } else { w[j] * sigma_w[j] / var_w };
     }
     let excluded: Vec<ExcludedReport> = window
         .excluded

@@ -95,7 +95,9 @@ impl Default for ServerSection {
             drain_timeout_ms: 25_000,
             reflection: true,
             max_connection_age_ms: 300_000,
-            max_connection_age_grace_ms: 30_000,
+            // Covers the backtest time limit: a RunBacktest stream on an aged
+            // connection finishes instead of ending UNAVAILABLE (which clients retry).
+            max_connection_age_grace_ms: 630_000,
             health_address: String::new(),
         }
     }
@@ -363,6 +365,16 @@ impl ServerConfig {
         positive("server.max_in_flight", s.max_in_flight as u64)?;
         positive("server.request_timeout_ms", s.request_timeout_ms)?;
         positive("server.backtest_timeout_ms", s.backtest_timeout_ms)?;
+        if s.max_connection_age_ms > 0 && s.max_connection_age_grace_ms < s.backtest_timeout_ms {
+            return Err(ConfigError::Invalid {
+                key: "server.max_connection_age_grace_ms",
+                reason: format!(
+                    "{} ms is below server.backtest_timeout_ms = {} ms: a backtest on a connection reaching \
+                     server.max_connection_age_ms would be cut off as UNAVAILABLE and retried from the start",
+                    s.max_connection_age_grace_ms, s.backtest_timeout_ms
+                ),
+            });
+        }
         if s.max_message_bytes > u32::MAX as usize {
             return Err(ConfigError::Invalid { key: "server.max_message_bytes", reason: "must be below 4 GiB".into() });
         }

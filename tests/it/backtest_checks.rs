@@ -131,7 +131,8 @@ fn inference_matches_statsmodels_linearmodels_scipy_and_formulas() {
     // scikit-learn LedoitWolf on the industries.
     let r = Mat::from_fn(p.rows, inds.len(), |i, j| ind_series[j][i]);
     let mom = Moments::compute(r.as_ref(), None);
-    let (cov, shrink) = estimator::ledoit_wolf(&mom);
+    let lw = estimator::LedoitWolf::new(&mom);
+    let (cov, shrink) = (lw.dense(), lw.shrinkage);
     close("Ledoit-Wolf shrinkage", shrink, num(&e["lw_shrinkage"]), 1e-9);
     let want = e["lw_cov"].as_array().unwrap();
     for a in 0..inds.len() {

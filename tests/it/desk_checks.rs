@@ -328,3 +328,104 @@ fn the_solver_stops_when_asked() {
     let ok = desk.implement(&s, &w, 1.0, held, &keelson::estimator::Stop::never(), &mut Vec::new()).unwrap();
     assert!(ok.weights.iter().all(|x| x.abs() <= 0.1 + 1e-9));
 }
+
+/// Every limit on, from held weights, for the form and phase-1 checks.
+fn every_limit(s: &mut Settings) {
+    s.max_weight = Cap::At(0.12);
+    s.max_gross = Cap::At(1.5);
+    s.max_market_weight = Cap::At(0.2);
+    s.max_turnover = Cap::At(1.2);
+    s.cost_bps = 20.0;
+}
+
+/// Ω dense and Ω in factor form (a·I + c·X'X through T auxiliary variables)
+/// are two writings of one strictly convex problem: the same weights to
+/// 1e-8, on a narrow and on a wide window (Keelson against itself; each form
+/// alone is checked against cvxpy above).
+#[test]
+fn dense_and_factor_forms_give_the_same_weights() {
+    use keelson::estimator::desk::{DeskWindow, Holdings, OmegaForm};
+    for (seed, periods, factors) in [(5u64, 120usize, 30usize), (6, 60, 90)] {
+        let mut p = keelson::demo::synthetic_panel(seed, periods, factors);
+        let prev: Vec<f64> = (0..factors).map(|j| if j % 4 == 0 { 0.6 / factors as f64 * 4.0 } else { 0.0 }).collect();
+        p.previous_weights = p.factor_names.iter().cloned().zip(prev.iter().copied()).collect();
+        let s = demo_settings(every_limit).check().unwrap();
+        let model = estimator::fit(&p, &demo_settings(|_| {}).check().unwrap()).unwrap();
+        let w: Vec<f64> = model.factors.iter().map(|f| f.weight).collect();
+        let desk = DeskWindow::new(&p, &s).unwrap();
+        let held = Holdings { weights: &prev, market: 0.0 };
+        let stop = keelson::estimator::Stop::never();
+        let solve = |form| desk.implement_in(&s, &w, 1.0, held, form, &stop, &mut Vec::new()).unwrap();
+        let (dense, factor) = (solve(OmegaForm::Dense), solve(OmegaForm::Factor));
+        assert_eq!((dense.report.omega_form, factor.report.omega_form), ("dense", "factor"));
+        assert!(!dense.report.binding.is_empty(), "{factors}: some limit binds");
+        for (j, (a, b)) in dense.weights.iter().zip(&factor.weights).enumerate() {
+            assert!((a - b).abs() <= 1e-8, "{factors} factors, #{j}: dense {a} vs factor {b}");
+        }
+        assert!((dense.market_weight - factor.market_weight).abs() <= 1e-8);
+    }
+}
+
+/// Phase 1 (SPEC §10): held weights of gross 2.4 under max_gross = 1 need at
+/// least 1.4 of trades; with max_turnover = 0.5 no portfolio exists, found
+/// before the solver and named by the two limits that conflict, not by
+/// max_weight, which the held weights already meet.
+#[test]
+fn infeasibility_from_held_weights_names_only_the_conflicting_limits() {
+    let held = [
+        ("f01", 0.3),
+        ("f02", -0.3),
+        ("f03", 0.3),
+        ("f04", -0.3),
+        ("f05", 0.3),
+        ("f06", -0.3),
+        ("f07", 0.3),
+        ("f08", -0.3),
+    ];
+    let p = a_main(&held);
+    let s = demo_settings(|s| {
+        s.max_weight = Cap::At(0.4);
+        s.max_gross = Cap::At(1.0);
+        s.max_turnover = Cap::At(0.5);
+    });
+    match estimator::fit(&p, &s.check().unwrap()) {
+        Err(EstimateError::ConstraintsInfeasible { constraints, detail }) => {
+            assert_eq!(constraints, ["max_gross", "max_turnover"], "{detail}");
+            assert!(detail.contains("1.4"), "{detail}");
+        }
+        other => panic!("expected infeasible, got {:?}", other.map(|w| w.diagnostics.implementation)),
+    }
+}
+
+/// A sale the desk cannot avoid (a held factor absent from the window) is
+/// made even when it alone exceeds max_turnover: the budget applies to the
+/// other trades, with a warning, instead of failing.
+#[test]
+fn a_forced_sale_over_the_turnover_budget_is_made_with_a_warning() {
+    let p = a_main(&[("gone_factor", 0.8), ("f01", 0.1)]);
+    let s = demo_settings(|s| {
+        s.max_weight = Cap::At(0.3);
+        s.max_turnover = Cap::At(0.5);
+    });
+    let ws = estimator::fit(&p, &s.check().unwrap()).unwrap();
+    let codes: Vec<&str> = ws.diagnostics.warnings.iter().map(|w| w.code).collect();
+    assert!(codes.contains(&"forced-sale-over-turnover"), "{codes:?}");
+    let imp = ws.diagnostics.implementation.unwrap();
+    assert!(imp.turnover > 0.8 && imp.turnover <= 0.8 + 0.5 + 1e-9, "{}", imp.turnover);
+}
+
+/// Caps below one millionth of NAV are refused when the settings are checked
+/// (the solver's tolerance is absolute), naming the setting.
+#[test]
+fn limits_below_the_floor_are_refused_by_name() {
+    for (name, edit) in [
+        ("max_weight", (|s: &mut Settings| s.max_weight = Cap::At(1e-9)) as fn(&mut Settings)),
+        ("max_gross", |s| s.max_gross = Cap::At(2e-9)),
+        ("max_market_weight", |s| s.max_market_weight = Cap::At(1e-9)),
+        ("max_turnover", |s| s.max_turnover = Cap::At(5e-7)),
+    ] {
+        let err = demo_settings(edit).check().unwrap_err().to_string();
+        assert!(err.contains(name), "{name}: {err}");
+    }
+    assert!(demo_settings(|s| s.max_weight = Cap::At(keelson::estimator::MIN_LIMIT)).check().is_ok());
+}
