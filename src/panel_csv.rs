@@ -8,6 +8,8 @@ use std::path::Path;
 
 use thiserror::Error;
 
+use crate::estimator::error::truncate_for_display;
+use crate::estimator::window::MAX_PREVIOUS_WEIGHT;
 use crate::estimator::{Location, ReturnPanel, window::parse_period};
 
 /// A problem in a CSV file, at a line and column.
@@ -73,13 +75,19 @@ fn records(text: &str, file: &str) -> Result<Vec<(usize, Vec<String>)>, CsvError
         csv::ReaderBuilder::new().has_headers(false).flexible(true).trim(csv::Trim::All).from_reader(text.as_bytes());
     // Lines from byte offsets: the reader counts neither the blank lines it
     // skips nor them in a record's start, so step over them here.
+    // Records come in order, so newlines are counted once from the last
+    // record's offset (linear in the file, not quadratic).
     let bytes = text.as_bytes();
-    let line_at = |p: Option<&csv::Position>| {
+    let mut counted = (0usize, 1usize);
+    let mut line_at = |p: Option<&csv::Position>| {
         let mut byte = p.map_or(0, |p| p.byte() as usize).min(bytes.len());
         while byte < bytes.len() && matches!(bytes[byte], b'\n' | b'\r') {
             byte += 1;
         }
-        1 + bytes[..byte].iter().filter(|&&b| b == b'\n').count()
+        let (from, line) = if byte >= counted.0 { counted } else { (0, 1) };
+        let now = line + bytes[from..byte].iter().filter(|&&b| b == b'\n').count();
+        counted = (byte, now);
+        now
     };
     let mut out = Vec::new();
     for record in reader.records() {
@@ -308,6 +316,7 @@ pub fn parse_weights(text: &str, file: &str) -> Result<Vec<(String, f64)>, CsvEr
         return Err(err(file, hline, 1, None, "expected the header factor,weight"));
     }
     let mut out: Vec<(String, f64)> = Vec::new();
+    let mut first_line: std::collections::HashMap<String, usize> = std::collections::HashMap::new();
     for (lno, rec) in rows {
         if rec.len() != 2 {
             return Err(err(
@@ -318,14 +327,38 @@ pub fn parse_weights(text: &str, file: &str) -> Result<Vec<(String, f64)>, CsvEr
                 format!("row has {} fields, expected 2", rec.len()),
             ));
         }
-        if out.iter().any(|(n, _)| *n == rec[0]) {
-            return Err(err(file, lno, 1, Some("factor"), format!("factor \"{}\" appears twice", rec[0])));
+        let shown = |v: &str| truncate_for_display(v).into_owned();
+        if let Some(first) = first_line.insert(rec[0].clone(), lno) {
+            return Err(err(
+                file,
+                lno,
+                1,
+                Some("factor"),
+                format!("factor \"{}\" appears twice (first on line {first})", shown(&rec[0])),
+            ));
         }
-        let w = match parse_cell(&rec[1]) {
+        let cell = rec[1].as_str();
+        let w = match parse_cell(cell) {
             Ok(v) if !v.is_nan() => v,
+            Ok(_) if cell.eq_ignore_ascii_case("nan") => {
+                return Err(err(file, lno, 2, Some("weight"), "weight is NaN; a previous weight must be a number"));
+            }
             Ok(_) => return Err(err(file, lno, 2, Some("weight"), "weight is missing")),
-            Err(m) => return Err(err(file, lno, 2, Some("weight"), format!("value \"{}\" {m}", rec[1]))),
+            Err(m) => return Err(err(file, lno, 2, Some("weight"), format!("value \"{}\" {m}", shown(cell)))),
         };
+        if w.abs() > MAX_PREVIOUS_WEIGHT {
+            return Err(err(
+                file,
+                lno,
+                2,
+                Some("weight"),
+                format!(
+                    "weight {} is outside ±{} (multiples of NAV)",
+                    crate::estimator::error::display_number(w),
+                    MAX_PREVIOUS_WEIGHT
+                ),
+            ));
+        }
         out.push((rec[0].clone(), w));
     }
     Ok(out)
@@ -337,7 +370,33 @@ pub fn parse_weights(text: &str, file: &str) -> Result<Vec<(String, f64)>, CsvEr
 /// The I/O error, with the path.
 pub fn read_text(path: &Path) -> anyhow::Result<String> {
     use anyhow::Context as _;
-    std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display()))
+    let bytes = std::fs::read(path).with_context(|| format!("cannot read {}", path.display()))?;
+    decode_text(bytes, &path.display().to_string()).map_err(anyhow::Error::from)
+}
+
+/// The text of a file that must be UTF-8: a UTF-16 file (by its byte-order
+/// mark) or an invalid byte is an error naming the line and column.
+///
+/// # Errors
+/// A [`CsvError`] at the first byte that is not UTF-8.
+pub fn decode_text(bytes: Vec<u8>, file: &str) -> Result<String, CsvError> {
+    if bytes.starts_with(&[0xFF, 0xFE]) || bytes.starts_with(&[0xFE, 0xFF]) {
+        return Err(err(
+            file,
+            1,
+            1,
+            None,
+            "the file is UTF-16 (it starts with a UTF-16 byte-order mark); save it as UTF-8",
+        ));
+    }
+    String::from_utf8(bytes).map_err(|e| {
+        let at = e.utf8_error().valid_up_to();
+        let before = &e.as_bytes()[..at];
+        let line = 1 + before.iter().filter(|&&b| b == b'\n').count();
+        let start = before.iter().rposition(|&b| b == b'\n').map_or(0, |p| p + 1);
+        let column = 1 + before[start..].iter().filter(|&&b| b == b',').count();
+        err(file, line, column, None, format!("byte {at} is not UTF-8; save the file as UTF-8"))
+    })
 }
 
 #[cfg(test)]
@@ -353,6 +412,39 @@ mod tests {
         assert_eq!(p.panel.market, Some(vec![0.01, 0.0]));
         assert!(p.panel.returns[1].is_nan());
         assert_eq!(p.factor_columns, vec![3, 4]);
+    }
+
+    #[test]
+    fn weights_file_errors_name_line_and_column_and_stay_short() {
+        let e = parse_weights("factor,weight\na,0.1\nb,1e300\n", "w.csv").unwrap_err();
+        assert_eq!((e.line, e.column), (3, 2));
+        assert!(e.to_string().contains("1e300") && e.to_string().len() < 200, "{e}");
+        let e = parse_weights("factor,weight\na,NaN\n", "w.csv").unwrap_err();
+        assert!(e.to_string().contains("NaN") && !e.to_string().contains("missing"), "{e}");
+        let e = parse_weights("factor,weight\na,\n", "w.csv").unwrap_err();
+        assert!(e.to_string().contains("missing"), "{e}");
+        let huge = "9".repeat(100_000);
+        let e = parse_weights(&format!("factor,weight\na,{huge}x\n"), "w.csv").unwrap_err();
+        assert!(e.to_string().len() < 300, "the bad cell is truncated: {} bytes", e.to_string().len());
+        let e = parse_weights("factor,weight\na,0.1\nb,0.2\na,0.3\n", "w.csv").unwrap_err();
+        assert_eq!(e.line, 4);
+        assert!(e.to_string().contains("first on line 2"), "{e}");
+        // 20,000 rows parse (linear line counting and a hash set of names).
+        let mut big = String::from("factor,weight\n");
+        for i in 0..20_000 {
+            big.push_str(&format!("f{i},0.0001\n"));
+        }
+        assert_eq!(parse_weights(&big, "w.csv").unwrap().len(), 20_000);
+    }
+
+    #[test]
+    fn a_utf16_or_invalid_file_is_named_by_line() {
+        let utf16: Vec<u8> =
+            [0xFF, 0xFE].into_iter().chain("factor,weight".encode_utf16().flat_map(u16::to_le_bytes)).collect();
+        let e = decode_text(utf16, "w.csv").unwrap_err();
+        assert!(e.to_string().contains("UTF-16") && e.line == 1, "{e}");
+        let e = decode_text(b"factor,weight\na,0.\xff1\n".to_vec(), "w.csv").unwrap_err();
+        assert_eq!((e.line, e.column), (2, 2));
     }
 
     #[test]

@@ -190,7 +190,10 @@ fn fit_full(
         return (r, phases);
     }
     let mut mark = Instant::now();
-    let r = r.and_then(|point| with_bootstrap(panel, settings, point, options));
+    let r = r.and_then(|point| with_bootstrap(panel, settings, point, options)).map(|mut ws| {
+        weights::merge_repeated_warnings(&mut ws.diagnostics.warnings);
+        ws
+    });
     lap(&mut mark, &mut phases.solve);
     (r, phases)
 }

@@ -81,6 +81,24 @@ pub const WARNING_CODES: [&str; 17] = [
     "frequency-assumed",
 ];
 
+/// Each code once, at its first place: a repeated code (bagging refits the
+/// stage once per draw) keeps its first message and says how many more.
+pub(crate) fn merge_repeated_warnings(warnings: &mut Vec<Warning>) {
+    let mut merged: Vec<(Warning, usize)> = Vec::with_capacity(warnings.len());
+    for w in warnings.drain(..) {
+        match merged.iter_mut().find(|(m, _)| m.code == w.code) {
+            Some((_, more)) => *more += 1,
+            None => merged.push((w, 0)),
+        }
+    }
+    warnings.extend(merged.into_iter().map(|(mut w, more)| {
+        if more > 0 {
+            w.message.push_str(&format!(" (and {more} more like it)"));
+        }
+        w
+    }));
+}
+
 /// What a warning code means, in one line (the report's warning table).
 pub fn warning_meaning(code: &str) -> &'static str {
     match code {
@@ -888,6 +906,17 @@ pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
 #[cfg(test)]
 mod tests {
     use crate::estimator::{Choice, Normalization, Settings, fit};
+
+    #[test]
+    fn repeated_warning_codes_are_listed_once() {
+        let w = |code, message: &str| super::Warning { code, message: message.to_owned() };
+        let mut ws =
+            vec![w("model-no-edge", "a"), w("short-window", "b"), w("model-no-edge", "c"), w("model-no-edge", "d")];
+        super::merge_repeated_warnings(&mut ws);
+        assert_eq!(ws.iter().map(|w| w.code).collect::<Vec<_>>(), ["model-no-edge", "short-window"]);
+        assert_eq!(ws[0].message, "a (and 2 more like it)");
+        assert_eq!(ws[1].message, "b");
+    }
 
     /// `WARNING_CODES` (what `--fail-on` accepts) is every code the estimator raises.
     #[test]

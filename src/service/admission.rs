@@ -55,6 +55,21 @@ impl WeightsApi {
         Ok(())
     }
 
+    /// Refuses a request whose settings run the implementation stage over
+    /// more factors than `server.max_stage_factors`.
+    pub(super) fn check_stage_size(&self, settings: &ValidSettings, factors: usize) -> Result<(), ServiceError> {
+        let limit = self.shared.config.raw.server.max_stage_factors;
+        if settings.implementation_active() && factors > limit {
+            return Err(ServiceError::TooLarge {
+                field: "returns.cols",
+                value: factors as u64,
+                limit: limit as u64,
+                what: "factors with limits or costs set (server.max_stage_factors)",
+            });
+        }
+        Ok(())
+    }
+
     /// Refuses a backtest whose estimated fits or memory exceed the server's
     /// budget (`server.max_backtest_fits`, `server.max_request_bytes_estimate`).
     pub(super) fn check_budget(&self, budget: BacktestBudget) -> Result<(), ServiceError> {

@@ -82,6 +82,7 @@ impl WeightsApi {
         // Every request within the size limits is recorded, refused ones included.
         self.shared.metrics.problem_size(panel.rows, panel.cols);
         let settings = self.settings(&proto_settings)?;
+        self.check_stage_size(&settings, panel.cols)?;
         let spec = spec.check(&panel, &settings)?;
         let budget = spec.budget();
         self.check_budget(budget)?;

@@ -66,6 +66,7 @@ impl WeightsApi {
         // Every request within the size limits is recorded, refused ones included.
         sh.metrics.problem_size(panel.rows, panel.cols);
         let settings = self.settings(&proto_settings)?;
+        self.check_stage_size(&settings, panel.cols)?;
         let deadline = Deadline::new(client_timeout, sh.config.raw.server.request_timeout_ms);
         let (stop, _cancel) = deadline.stop();
         let shared = sh.clone();

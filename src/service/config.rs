@@ -49,6 +49,9 @@ pub struct ServerSection {
     /// Largest estimated peak memory of one request, bytes; more →
     /// RESOURCE_EXHAUSTED before any work.
     pub max_request_bytes_estimate: u64,
+    /// Most factors of a request whose settings run the implementation
+    /// stage (some limit or a cost); refused before any work above it.
+    pub max_stage_factors: usize,
     /// Requests admitted at once (computing or queued); more are shed with RESOURCE_EXHAUSTED.
     pub max_in_flight: usize,
     /// Requests computed in parallel on the blocking pool; 0 = number of CPUs.
@@ -88,6 +91,9 @@ impl Default for ServerSection {
             // The shipped pod has 1 GiB and 2 workers: two requests at their
             // limit, plus 64 MiB messages in and out, stay inside it.
             max_request_bytes_estimate: 256 * 1024 * 1024,
+            // The stage at N = 2,000 × T = 120 takes about 1.5 s on one core,
+            // at 5,000 about 15 s and 230 MiB (README, Performance).
+            max_stage_factors: 2_000,
             max_in_flight: 64,
             workers: 0,
             request_timeout_ms: 30_000,
@@ -362,6 +368,7 @@ impl ServerConfig {
         positive("server.max_factors", s.max_factors as u64)?;
         positive("server.max_backtest_fits", s.max_backtest_fits)?;
         positive("server.max_request_bytes_estimate", s.max_request_bytes_estimate)?;
+        positive("server.max_stage_factors", s.max_stage_factors as u64)?;
         positive("server.max_in_flight", s.max_in_flight as u64)?;
         positive("server.request_timeout_ms", s.request_timeout_ms)?;
         positive("server.backtest_timeout_ms", s.backtest_timeout_ms)?;
@@ -498,6 +505,31 @@ mod tests {
 
     fn env(pairs: &[(&str, &str)]) -> Vec<(String, String)> {
         pairs.iter().map(|(k, v)| ((*k).to_owned(), (*v).to_owned())).collect()
+    }
+
+    /// A connection grace shorter than the backtest limit would cut a
+    /// RunBacktest stream off as UNAVAILABLE on an aged connection: refused
+    /// at start, naming the key; the defaults cover it.
+    #[test]
+    fn connection_grace_must_cover_the_backtest_limit() {
+        let ok = ServerConfig::load(None, Vec::new()).unwrap();
+        assert!(ok.server.max_connection_age_grace_ms >= ok.server.backtest_timeout_ms);
+        assert!(ok.check().is_ok());
+        let short =
+            ServerConfig::load(None, env(&[("KEELSON__SERVER__MAX_CONNECTION_AGE_GRACE_MS", "30000")])).unwrap();
+        match short.check() {
+            Err(ConfigError::Invalid { key, .. }) => assert_eq!(key, "server.max_connection_age_grace_ms"),
+            other => panic!("expected the grace refused, got {:?}", other.err()),
+        }
+        let never_aged = ServerConfig::load(
+            None,
+            env(&[
+                ("KEELSON__SERVER__MAX_CONNECTION_AGE_GRACE_MS", "30000"),
+                ("KEELSON__SERVER__MAX_CONNECTION_AGE_MS", "0"),
+            ]),
+        )
+        .unwrap();
+        assert!(never_aged.check().is_ok(), "no connection age, no grace needed");
     }
 
     #[test]

@@ -29,6 +29,7 @@ impl WeightsApi {
                 backtest_timeout_ms: s.backtest_timeout_ms,
                 max_backtest_fits: s.max_backtest_fits,
                 max_request_bytes_estimate: s.max_request_bytes_estimate,
+                max_stage_factors: s.max_stage_factors as u32,
             }),
             settings: estimator::Settings::TABLE
                 .iter()

@@ -402,3 +402,26 @@ mod random_backtests {
         assert!(ran >= 5, "only {ran} of 64 random requests ran: the generator is too hostile to test the runs");
     }
 }
+
+/// The implementation stage's size limit: a request over
+/// `server.max_stage_factors` with a limit set is refused before any work,
+/// the same request without limits or costs is not, and `GetServiceInfo`
+/// reports the limit.
+#[test]
+fn the_stage_size_limit_refuses_before_any_work() {
+    run(async {
+        let server = Server::start(|c| c.server.max_stage_factors = 40).await;
+        let mut c = server.client().await;
+        let panel = synthetic_panel(22, 60, 41);
+        let limited = settings_to_proto(&Settings { max_weight: Cap::At(0.1), ..Settings::default() });
+        let s = c.compute_weights(request_from_panel(&panel, limited, "stage-size")).await.unwrap_err();
+        assert_eq!(s.code(), Code::InvalidArgument, "a size limit, as max_factors: {}", s.message());
+        assert!(s.message().contains("server.max_stage_factors") && s.message().contains("41"), "{}", s.message());
+        assert_eq!(server.api.computing(), 0, "nothing ran");
+        let plain = request_from_panel(&panel, proto::Settings::default(), "no-stage");
+        assert!(c.compute_weights(plain).await.is_ok(), "without limits the stage does not run");
+        let info = c.get_service_info(proto::GetServiceInfoRequest {}).await.unwrap().into_inner();
+        assert_eq!(info.limits.unwrap().max_stage_factors, 40);
+        server.shutdown().await;
+    });
+}

@@ -435,7 +435,7 @@ class BindingConstraint(_message.Message):
     def __init__(self, constraint: _Optional[str] = ..., factor: _Optional[str] = ..., value: _Optional[float] = ..., limit: _Optional[float] = ..., dual: _Optional[float] = ...) -> None: ...
 
 class Implementation(_message.Message):
-    __slots__ = ("tracking_error", "turnover", "cost", "gross", "model_gross", "gamma", "model_sharpe", "binding", "solver_status", "iterations")
+    __slots__ = ("tracking_error", "turnover", "cost", "gross", "model_gross", "gamma", "model_sharpe", "binding", "solver_status", "iterations", "omega_form", "dust_cleared")
     TRACKING_ERROR_FIELD_NUMBER: _ClassVar[int]
     TURNOVER_FIELD_NUMBER: _ClassVar[int]
     COST_FIELD_NUMBER: _ClassVar[int]
@@ -446,6 +446,8 @@ class Implementation(_message.Message):
     BINDING_FIELD_NUMBER: _ClassVar[int]
     SOLVER_STATUS_FIELD_NUMBER: _ClassVar[int]
     ITERATIONS_FIELD_NUMBER: _ClassVar[int]
+    OMEGA_FORM_FIELD_NUMBER: _ClassVar[int]
+    DUST_CLEARED_FIELD_NUMBER: _ClassVar[int]
     tracking_error: float
     turnover: float
     cost: float
@@ -456,7 +458,9 @@ class Implementation(_message.Message):
     binding: _containers.RepeatedCompositeFieldContainer[BindingConstraint]
     solver_status: str
     iterations: int
-    def __init__(self, tracking_error: _Optional[float] = ..., turnover: _Optional[float] = ..., cost: _Optional[float] = ..., gross: _Optional[float] = ..., model_gross: _Optional[float] = ..., gamma: _Optional[float] = ..., model_sharpe: _Optional[float] = ..., binding: _Optional[_Iterable[_Union[BindingConstraint, _Mapping]]] = ..., solver_status: _Optional[str] = ..., iterations: _Optional[int] = ...) -> None: ...
+    omega_form: str
+    dust_cleared: int
+    def __init__(self, tracking_error: _Optional[float] = ..., turnover: _Optional[float] = ..., cost: _Optional[float] = ..., gross: _Optional[float] = ..., model_gross: _Optional[float] = ..., gamma: _Optional[float] = ..., model_sharpe: _Optional[float] = ..., binding: _Optional[_Iterable[_Union[BindingConstraint, _Mapping]]] = ..., solver_status: _Optional[str] = ..., iterations: _Optional[int] = ..., omega_form: _Optional[str] = ..., dust_cleared: _Optional[int] = ...) -> None: ...
 
 class ComputeWeightsResponse(_message.Message):
     __slots__ = ("weights", "market_weight", "model_market_weight", "components", "diagnostics", "fingerprint", "estimator_version", "request_id")
@@ -483,7 +487,7 @@ class GetServiceInfoRequest(_message.Message):
     def __init__(self) -> None: ...
 
 class ServiceLimits(_message.Message):
-    __slots__ = ("max_message_bytes", "max_cells", "max_factors", "max_in_flight", "workers", "request_timeout_ms", "backtest_timeout_ms", "max_backtest_fits", "max_request_bytes_estimate")
+    __slots__ = ("max_message_bytes", "max_cells", "max_factors", "max_in_flight", "workers", "request_timeout_ms", "backtest_timeout_ms", "max_backtest_fits", "max_request_bytes_estimate", "max_stage_factors")
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
     MAX_CELLS_FIELD_NUMBER: _ClassVar[int]
     MAX_FACTORS_FIELD_NUMBER: _ClassVar[int]
@@ -493,6 +497,7 @@ class ServiceLimits(_message.Message):
     BACKTEST_TIMEOUT_MS_FIELD_NUMBER: _ClassVar[int]
     MAX_BACKTEST_FITS_FIELD_NUMBER: _ClassVar[int]
     MAX_REQUEST_BYTES_ESTIMATE_FIELD_NUMBER: _ClassVar[int]
+    MAX_STAGE_FACTORS_FIELD_NUMBER: _ClassVar[int]
     max_message_bytes: int
     max_cells: int
     max_factors: int
@@ -502,7 +507,8 @@ class ServiceLimits(_message.Message):
     backtest_timeout_ms: int
     max_backtest_fits: int
     max_request_bytes_estimate: int
-    def __init__(self, max_message_bytes: _Optional[int] = ..., max_cells: _Optional[int] = ..., max_factors: _Optional[int] = ..., max_in_flight: _Optional[int] = ..., workers: _Optional[int] = ..., request_timeout_ms: _Optional[int] = ..., backtest_timeout_ms: _Optional[int] = ..., max_backtest_fits: _Optional[int] = ..., max_request_bytes_estimate: _Optional[int] = ...) -> None: ...
+    max_stage_factors: int
+    def __init__(self, max_message_bytes: _Optional[int] = ..., max_cells: _Optional[int] = ..., max_factors: _Optional[int] = ..., max_in_flight: _Optional[int] = ..., workers: _Optional[int] = ..., request_timeout_ms: _Optional[int] = ..., backtest_timeout_ms: _Optional[int] = ..., max_backtest_fits: _Optional[int] = ..., max_request_bytes_estimate: _Optional[int] = ..., max_stage_factors: _Optional[int] = ...) -> None: ...
 
 class GetServiceInfoResponse(_message.Message):
     __slots__ = ("estimator_version", "server_version", "default_settings", "limits", "settings")
