@@ -147,6 +147,16 @@ fn implementation(c: &mut Criterion) {
             )
         })
     });
+    let factor_form = keelson::estimator::desk::OmegaForm::Factor;
+    group.bench_function("stage alone, factor form", |b| {
+        b.iter(|| {
+            let mut warnings = Vec::new();
+            let held = keelson::estimator::desk::Holdings { weights: &prev, market: 0.0 };
+            let sharpe = model.diagnostics.in_sample_sharpe;
+            let stop = estimator::Stop::never();
+            black_box(desk.implement_in(&limited, &w, sharpe, held, factor_form, &stop, &mut warnings).expect("solves"))
+        })
+    });
     group.finish();
 }
 

@@ -38,6 +38,9 @@ pub const MODEL_SHARPE_FLOOR: f64 = 0.1;
 /// Interior-point tolerance on the duality gap and feasibility (SPEC §10: ≤ 1e-9).
 pub const SOLVER_TOLERANCE: f64 = 1e-12;
 
+/// Tolerances (and whether to equilibrate) of the retries after a numerical breakdown.
+const RETRY_TOLERANCES: [(f64, bool); 3] = [(1e-9, true), (1e-9, false), (1e-7, false)];
+
 /// Iterations the solver may take.
 pub const SOLVER_MAX_ITERATIONS: u32 = 200;
 
@@ -396,6 +399,9 @@ pub fn implement_in(
             (w, iterations, status, Some((program, z)), form.word())
         }
     };
+    if duals.is_some() {
+        hold_limits_exactly(&mut w, problem, limits, budget);
+    }
     let dust_cleared = clear_dust(&mut w, problem.previous);
     let beta = problem.beta.unwrap_or(&[]);
     let market_weight = if hedged { -dot(beta, &w) } else { 0.0 };
@@ -544,6 +550,62 @@ fn phase_one(problem: &Problem<'_>, limits: &Limits, budget: Option<f64>) -> Res
         });
     }
     Ok(Start::Solve)
+}
+
+/// Makes the solver's answer meet every limit exactly, not only to its
+/// absolute tolerance (which is large against a cap near [`MIN_LIMIT`]):
+/// weights over `max_weight` are clipped, then w is scaled down until the
+/// hedge and the gross exposure are within their caps (scaling keeps the
+/// clipped weights within theirs), then, when the held portfolio meets the
+/// caps, w moves toward it until the trades fit the turnover left (the caps
+/// are convex, so the move keeps them). Each correction is of the order of
+/// the solver's tolerance.
+///
+/// [`MIN_LIMIT`]: super::settings::MIN_LIMIT
+fn hold_limits_exactly(w: &mut [f64], problem: &Problem<'_>, limits: &Limits, budget: Option<f64>) {
+    let hedge = |w: &[f64]| problem.beta.map_or(0.0, |beta| dot(beta, w).abs());
+    if let Some(c) = limits.max_weight {
+        for wi in w.iter_mut() {
+            *wi = wi.clamp(-c, c);
+        }
+    }
+    if let (Some(h), true) = (limits.max_market_weight, problem.beta.is_some()) {
+        let m = hedge(w);
+        if m > h {
+            let f = h / m;
+            w.iter_mut().for_each(|wi| *wi *= f);
+        }
+    }
+    if let Some(g) = limits.max_gross {
+        let gross = w.iter().map(|v| v.abs()).sum::<f64>() + hedge(w);
+        if gross > g {
+            let f = g / gross;
+            w.iter_mut().for_each(|wi| *wi *= f);
+        }
+    }
+    let Some(budget) = budget else { return };
+    let p = problem.previous;
+    let trade = |w: &[f64]| {
+        let m = problem.beta.map_or(0.0, |beta| (-dot(beta, w) - problem.previous_market).abs());
+        w.iter().zip(p).map(|(a, b)| (a - b).abs()).sum::<f64>() + m
+    };
+    if trade(w) <= budget || trade(p) > budget {
+        return;
+    }
+    let held_within = limits.max_weight.is_none_or(|c| p.iter().all(|v| v.abs() <= c))
+        && limits.max_market_weight.is_none_or(|h| hedge(p) <= h)
+        && limits.max_gross.is_none_or(|g| p.iter().map(|v| v.abs()).sum::<f64>() + hedge(p) <= g);
+    if !held_within {
+        return;
+    }
+    let toward = |theta: f64| -> Vec<f64> { w.iter().zip(p).map(|(a, b)| b + theta * (a - b)).collect() };
+    let (mut lo, mut hi) = (0.0f64, 1.0f64);
+    for _ in 0..60 {
+        let mid = 0.5 * (lo + hi);
+        if trade(&toward(mid)) <= budget { lo = mid } else { hi = mid }
+    }
+    let moved = toward(lo);
+    w.copy_from_slice(&moved);
 }
 
 /// Sets trades and weights below [`DUST_FRACTION`] of gross to the held
@@ -729,15 +791,6 @@ fn run(
     warnings: &mut Vec<Warning>,
 ) -> Result<Solved, EstimateError> {
     let a = prog.a_matrix(layout.total);
-    let settings = DefaultSettings {
-        verbose: false,
-        max_iter: SOLVER_MAX_ITERATIONS,
-        tol_gap_abs: SOLVER_TOLERANCE,
-        tol_gap_rel: SOLVER_TOLERANCE,
-        tol_feas: SOLVER_TOLERANCE,
-        tol_ktratio: 1e-10,
-        ..DefaultSettings::default()
-    };
     let m = prog.b.len();
     let mut cones: Vec<SupportedConeT<f64>> = Vec::new();
     if prog.equalities > 0 {
@@ -746,15 +799,50 @@ fn run(
     if m > prog.equalities {
         cones.push(NonnegativeConeT(m - prog.equalities));
     }
-    let outcome = catch_unwind(AssertUnwindSafe(|| -> Result<_, String> {
-        let mut solver =
-            DefaultSolver::new(&prog.p, &prog.q, &a, &prog.b, &cones, settings).map_err(|e| e.to_string())?;
-        let poll = stop.clone();
-        solver.set_termination_callback(move |_: &DefaultInfo<f64>| poll.check().is_err());
-        solver.solve();
-        let s = &solver.solution;
-        Ok((s.x.clone(), s.z.clone(), s.status, s.iterations))
-    }));
+    let attempt = |(tolerance, equilibrate): (f64, bool)| {
+        let settings = DefaultSettings {
+            verbose: false,
+            max_iter: SOLVER_MAX_ITERATIONS,
+            tol_gap_abs: tolerance,
+            tol_gap_rel: tolerance,
+            tol_feas: tolerance,
+            tol_ktratio: 1e-10_f64.max(tolerance),
+            equilibrate_enable: equilibrate,
+            ..DefaultSettings::default()
+        };
+        catch_unwind(AssertUnwindSafe(|| -> Result<_, String> {
+            let mut solver =
+                DefaultSolver::new(&prog.p, &prog.q, &a, &prog.b, &cones, settings).map_err(|e| e.to_string())?;
+            let poll = stop.clone();
+            solver.set_termination_callback(move |_: &DefaultInfo<f64>| poll.check().is_err());
+            solver.solve();
+            let s = &solver.solution;
+            Ok((s.x.clone(), s.z.clone(), s.status, s.iterations))
+        }))
+    };
+    // A numerical breakdown at the tightest tolerance (a tiny feasible set
+    // far from the model) is retried at looser ones, each still within
+    // SPEC §10's 1e-9 or reported as reduced accuracy.
+    let mut outcome = attempt((SOLVER_TOLERANCE, true));
+    let mut used = SOLVER_TOLERANCE;
+    for looser in RETRY_TOLERANCES {
+        let retry = matches!(&outcome, Ok(Ok((_, _, st, _))) if matches!(st,
+            SolverStatus::NumericalError | SolverStatus::InsufficientProgress | SolverStatus::MaxIterations));
+        if !retry {
+            break;
+        }
+        stop.check()?;
+        outcome = attempt(looser);
+        used = looser.0;
+    }
+    if used > 1e-9 && matches!(&outcome, Ok(Ok((_, _, SolverStatus::Solved, _)))) {
+        warnings.push(Warning {
+            code: "solver-reduced-accuracy",
+            message: format!(
+                "the implementation solver broke down at tolerance {SOLVER_TOLERANCE:e} and 1e-9 and solved at {used:e}; the limits hold exactly, the objective to that tolerance"
+            ),
+        });
+    }
     drop(a);
     let (x, z, status, iterations) = match outcome {
         Ok(Ok(v)) => v,

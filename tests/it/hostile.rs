@@ -425,3 +425,82 @@ fn the_stage_size_limit_refuses_before_any_work() {
         server.shutdown().await;
     });
 }
+
+/// 1,500 random limit combinations (log-uniform caps from the floor 1e-6 to
+/// 10, turnover budgets, costs, held weights and hedges) on a small window:
+/// every one is solved or refused as infeasible, never a solver failure
+/// (`INTERNAL`), and every solved portfolio meets its limits to 1e-7 of each
+/// limit (relative, so tiny caps hold too).
+#[test]
+fn random_limit_combinations_never_fail_the_solver() {
+    use keelson::estimator::{EstimateError, fit};
+    let mut rng = 0x9E37_79B9_7F4A_7C15u64;
+    let mut next = move || {
+        rng ^= rng << 13;
+        rng ^= rng >> 7;
+        rng ^= rng << 17;
+        (rng >> 11) as f64 / (1u64 << 53) as f64
+    };
+    let base = synthetic_panel(31, 60, 10);
+    let (mut solved, mut infeasible) = (0, 0);
+    for case in 0..1_500 {
+        let mut log_cap = |on: f64| (next() < on).then(|| 10f64.powf(-6.0 + 7.0 * next()));
+        let (wc, gc, mc, tc) = (log_cap(0.6), log_cap(0.5), log_cap(0.4), log_cap(0.5));
+        let cost = if next() < 0.5 { 0.0 } else { 50.0 * next() };
+        let held_scale = if next() < 0.3 { 0.0 } else { 10f64.powf(-3.0 + 3.0 * next()) };
+        let mut panel = base.clone();
+        let mut held: Vec<(String, f64)> = Vec::new();
+        for n in &panel.factor_names {
+            held.push((n.clone(), held_scale * (2.0 * next() - 1.0)));
+        }
+        held.push(("MKT".to_owned(), held_scale * (2.0 * next() - 1.0)));
+        panel.previous_weights = held;
+        let cap = |c: Option<f64>| c.map_or(Cap::Off, Cap::At);
+        let settings = Settings {
+            method: Method::Components,
+            components: Choice::Fixed(3),
+            kappa: Choice::Fixed(0.5),
+            held_out_check: false,
+            risk_calibration: RiskCalibration::Off,
+            max_weight: cap(wc),
+            max_gross: cap(gc),
+            max_market_weight: cap(mc),
+            max_turnover: cap(tc),
+            cost_bps: cost,
+            ..Settings::default()
+        };
+        let Ok(valid) = settings.check() else { panic!("case {case}: limits at or above the floor are valid") };
+        match fit(&panel, &valid) {
+            Ok(ws) => {
+                solved += 1;
+                let imp = ws.diagnostics.implementation.as_ref();
+                let within = |value: f64, limit: Option<f64>, what: &str| {
+                    if let Some(l) = limit {
+                        assert!(value <= l * (1.0 + 1e-7) + 1e-15, "case {case}: {what} {value:e} over {l:e}");
+                    }
+                };
+                for f in &ws.factors {
+                    within(f.weight.abs(), wc, "weight");
+                }
+                within(ws.market_weight.abs(), mc, "hedge");
+                if let Some(imp) = imp {
+                    within(imp.gross, gc, "gross");
+                    if !ws.diagnostics.warnings.iter().any(|w| w.code == "forced-sale-over-turnover") {
+                        within(imp.turnover, tc, "turnover");
+                    }
+                }
+            }
+            Err(EstimateError::ConstraintsInfeasible { constraints, .. }) => {
+                infeasible += 1;
+                assert!(
+                    constraints.iter().any(|c| c == "max_turnover"),
+                    "case {case}: only a turnover budget can conflict: {constraints:?}"
+                );
+            }
+            Err(e) => panic!(
+                "case {case}: {e} (weight {wc:?}, gross {gc:?}, market {mc:?}, turnover {tc:?}, cost {cost}, held ×{held_scale})"
+            ),
+        }
+    }
+    assert!(solved > 500 && infeasible > 20, "both outcomes are exercised: {solved} solved, {infeasible} infeasible");
+}
