@@ -20,7 +20,7 @@
 
 use std::panic::{AssertUnwindSafe, catch_unwind};
 
-use super::error::EstimateError;
+use super::error::{EstimateError, display_number};
 use super::moments::Moments;
 use super::settings::ValidSettings;
 use super::shrinkage::LedoitWolf;
@@ -136,17 +136,6 @@ impl OmegaForm {
             OmegaForm::Factor => "factor",
         }
     }
-}
-
-/// Factors per block of the factor form's equality rows. Blocks of 128
-/// (each row short, partial sums tied by T more rows) were measured 7×
-/// slower at N = 3,000 than one block: the sparse ordering handles T wide
-/// rows better than many narrow ones (DEVELOPERS.md).
-const FACTOR_BLOCK: usize = usize::MAX;
-
-/// Blocks of at most [`FACTOR_BLOCK`] factors.
-fn factor_blocks(n: usize) -> usize {
-    n.div_ceil(FACTOR_BLOCK).max(1)
 }
 
 /// Weights and trades smaller than this fraction of the portfolio's gross
@@ -319,7 +308,7 @@ impl Layout {
         };
         let trade = take(limits.trades_matter(), extra);
         let gross = take(limits.max_gross.is_some(), extra);
-        let factor = take(form == OmegaForm::Factor, periods * (1 + factor_blocks(n)));
+        let factor = take(form == OmegaForm::Factor, periods);
         Layout { n, trade, gross, factor, hedged, total: next }
     }
 }
@@ -460,16 +449,11 @@ fn discretionary_budget(problem: &Problem<'_>, limits: &Limits, warnings: &mut V
         message: format!(
             "selling positions without returns in the window trades {} alone, above max_turnover = {}: \
              the sale is made and the limit applies to the other trades",
-            short(problem.forced_turnover),
-            short(budget)
+            display_number(problem.forced_turnover),
+            display_number(budget)
         ),
     });
     Some(budget)
-}
-
-/// A number for a message: shortest round-trip form, at most 12 characters.
-fn short(v: f64) -> String {
-    super::error::display_number(v)
 }
 
 /// What phase 1 found.
@@ -524,8 +508,8 @@ fn phase_one(problem: &Problem<'_>, limits: &Limits, budget: Option<f64>) -> Res
             detail: format!(
                 "bringing the previous weights within {} trades at least {}, above the turnover left ({})",
                 detail.join(" and "),
-                short(bound),
-                short(budget)
+                display_number(bound),
+                display_number(budget)
             ),
         });
     }
@@ -544,7 +528,7 @@ fn phase_one(problem: &Problem<'_>, limits: &Limits, budget: Option<f64>) -> Res
             constraints: vec!["max_turnover".into()],
             detail: format!(
                 "the turnover left ({}) allows no trade, and the held portfolio {}",
-                short(budget),
+                display_number(budget),
                 if within { "needs its hedge rebalanced" } else { "breaks a cap" }
             ),
         });
@@ -631,6 +615,49 @@ fn clear_dust(w: &mut [f64], previous: &[f64]) -> u32 {
     cleared
 }
 
+/// The tracking term ½(w − w*)'Ω(w − w*)/σ*² (up to a constant): Ω's
+/// upper triangle as P (dense form), or (factor form) ½(a/σ*²)‖w‖² −
+/// (a/σ*²)w*'w + ½‖y‖² with the T equality rows y − (√c/σ*)Xw = −(√c/σ*)Xw*.
+fn tracking_term(problem: &Problem<'_>, layout: &Layout, sigma2: f64) -> Program {
+    let n = layout.n;
+    let omega = problem.omega;
+    let mut p_cols: Vec<Vec<(usize, f64)>> = vec![Vec::new(); layout.total];
+    let mut q = vec![0.0; layout.total];
+    let (mut rows, mut b, mut kinds) = (Vec::new(), Vec::new(), Vec::new());
+    match layout.factor {
+        None => {
+            let dense = omega.dense();
+            for (j, col) in p_cols.iter_mut().enumerate().take(n) {
+                *col = (0..=j).map(|i| (i, dense[(i, j)] / sigma2)).collect();
+            }
+            for (qi, v) in q.iter_mut().zip(omega.times(problem.model)) {
+                *qi = -v / sigma2;
+            }
+        }
+        Some(y0) => {
+            let a = omega.ridge / sigma2;
+            for j in 0..n {
+                p_cols[j].push((j, a));
+                q[j] = -a * problem.model[j];
+            }
+            let root = (omega.scale / sigma2).sqrt();
+            let x = omega.panel();
+            let xw = omega.project(problem.model);
+            for k in 0..omega.periods() {
+                p_cols[y0 + k].push((y0 + k, 1.0));
+                let mut row = Vec::with_capacity(n + 1);
+                row.extend((0..n).map(|j| (j, -root * x[(k, j)])));
+                row.push((y0 + k, 1.0));
+                rows.push(row);
+                b.push(-root * xw[k]);
+                kinds.push(Row::Factor);
+            }
+        }
+    }
+    let equalities = rows.len();
+    Program { p: csc(layout.total, &p_cols), q, rows, b, kinds, equalities }
+}
+
 /// The scaled program: ½(w − w*)'Ω(w − w*)/σ*² plus costs c/(γ*σ*²), with
 /// Ω dense or in factor form (see [`OmegaForm`]).
 fn build(
@@ -643,68 +670,7 @@ fn build(
 ) -> Program {
     let n = layout.n;
     let beta = problem.beta.unwrap_or(&[]);
-    let omega = problem.omega;
-    let mut p_cols: Vec<Vec<(usize, f64)>> = vec![Vec::new(); layout.total];
-    let mut q = vec![0.0; layout.total];
-    let mut prog_rows = Vec::new();
-    let mut b = Vec::new();
-    let mut kinds = Vec::new();
-    match layout.factor {
-        None => {
-            let dense = omega.dense();
-            for (j, col) in p_cols.iter_mut().enumerate().take(n) {
-                *col = (0..=j).map(|i| (i, dense[(i, j)] / sigma2)).collect();
-            }
-            let omega_w = omega.times(problem.model);
-            for (qi, v) in q.iter_mut().zip(omega_w) {
-                *qi = -v / sigma2;
-            }
-        }
-        Some(y0) => {
-            // ½(a/σ²)‖w‖² − (a/σ²)w*'w + ½‖y‖² with y = Σ_b y_b and, per block
-            // b of at most FACTOR_BLOCK factors, y_b − (√c/σ)X_b w_b = −(√c/σ)X_b w*_b.
-            let a = omega.ridge / sigma2;
-            for j in 0..n {
-                p_cols[j].push((j, a));
-                q[j] = -a * problem.model[j];
-            }
-            let periods = omega.periods();
-            for k in 0..periods {
-                p_cols[y0 + k].push((y0 + k, 1.0));
-            }
-            let root = (omega.scale / sigma2).sqrt();
-            let x = omega.panel();
-            let blocks = factor_blocks(n);
-            for blk in 0..blocks {
-                let (from, to) = (blk * n / blocks, (blk + 1) * n / blocks);
-                let yb = if blocks == 1 { y0 } else { y0 + periods * (1 + blk) };
-                for k in 0..periods {
-                    let mut row = Vec::with_capacity(to - from + 1);
-                    let mut rhs = 0.0;
-                    for j in from..to {
-                        row.push((j, -root * x[(k, j)]));
-                        rhs -= root * x[(k, j)] * problem.model[j];
-                    }
-                    row.push((yb + k, 1.0));
-                    prog_rows.push(row);
-                    b.push(rhs);
-                    kinds.push(Row::Factor);
-                }
-            }
-            if blocks > 1 {
-                for k in 0..periods {
-                    let mut row = vec![(y0 + k, 1.0)];
-                    row.extend((0..blocks).map(|blk| (y0 + periods * (1 + blk) + k, -1.0)));
-                    prog_rows.push(row);
-                    b.push(0.0);
-                    kinds.push(Row::Factor);
-                }
-            }
-        }
-    }
-    let equalities = prog_rows.len();
-    let mut prog = Program { p: csc(layout.total, &p_cols), q, rows: prog_rows, b, kinds, equalities };
-    drop(p_cols);
+    let mut prog = tracking_term(problem, layout, sigma2);
     // β'w as (column, value) entries; the hedge is its negative.
     let beta_w = |sign: f64| -> Vec<(usize, f64)> { (0..n).map(|j| (j, sign * beta[j])).collect() };
     if let Some(c) = limits.max_weight {

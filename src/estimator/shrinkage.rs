@@ -189,6 +189,8 @@ pub struct LedoitWolf {
     pub scale: f64,
     /// X_c, T × N.
     x: Mat<f64>,
+    /// X_cX_c', T × T, when N > T (computed for δ, reused by the Woodbury solve).
+    periods_gram: Option<Mat<f64>>,
 }
 
 impl LedoitWolf {
@@ -226,7 +228,8 @@ impl LedoitWolf {
         let delta = (delta_raw - 2.0 * mu * trace_s + nf * mu * mu) / nf;
         let beta = beta.min(delta);
         let shrinkage = if beta == 0.0 { 0.0 } else { beta / delta };
-        LedoitWolf { shrinkage, ridge: shrinkage * mu, scale: (1.0 - shrinkage) / tf, x: x.clone() }
+        let periods_gram = (n > t).then_some(gram);
+        LedoitWolf { shrinkage, ridge: shrinkage * mu, scale: (1.0 - shrinkage) / tf, x: x.clone(), periods_gram }
     }
 
     /// Number of factors N.
@@ -294,10 +297,7 @@ impl LedoitWolf {
             let mut w = v.to_vec();
             return dense::spd_solve_in_place(&mut a, n, &mut w).then_some(w);
         }
-        if !(self.ridge > 0.0) {
-            return None;
-        }
-        let g = dense::gram_nt(self.x.as_ref());
+        let g = self.periods_gram.as_ref().filter(|_| self.ridge > 0.0)?;
         let mut m: Vec<f64> = (0..t * t)
             .map(|i| self.scale * g[(i / t, i % t)] + if i / t == i % t { self.ridge } else { 0.0 })
             .collect();
