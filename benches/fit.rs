@@ -181,5 +181,32 @@ fn choosing(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest, implementation, choosing);
+/// `--previous-weights` files of 10,000 and 100,000 rows, with a duplicate
+/// name on the last line (the error path reads every row too), beside a bare
+/// line count of the same text as the floor: time per row stays flat when the
+/// reader is linear (it was quadratic: 72 s at 100,000 rows).
+fn weights_file(c: &mut Criterion) {
+    let mut group = c.benchmark_group("weights file");
+    group.sample_size(10).measurement_time(Duration::from_secs(3));
+    for rows in [10_000usize, 100_000] {
+        let mut text = String::from("factor,weight\n");
+        for i in 0..rows {
+            text.push_str(&format!("factor_{i:06},{}\n", 1e-4 * (i % 17) as f64));
+        }
+        let duplicated = format!("{text}factor_000000,0.5\n");
+        group.throughput(criterion::Throughput::Elements(rows as u64));
+        group.bench_with_input(BenchmarkId::new("parse", rows), &text, |b, t| {
+            b.iter(|| black_box(keelson::panel_csv::parse_weights(t, "w.csv").expect("parses")))
+        });
+        group.bench_with_input(BenchmarkId::new("duplicate on the last line", rows), &duplicated, |b, t| {
+            b.iter(|| black_box(keelson::panel_csv::parse_weights(t, "w.csv").expect_err("a duplicate")))
+        });
+        group.bench_with_input(BenchmarkId::new("line count (floor)", rows), &text, |b, t| {
+            b.iter(|| black_box(t.lines().count()))
+        });
+    }
+    group.finish();
+}
+
+criterion_group!(benches, eigensolve, fits, gram_versus_factors, backtest, implementation, choosing, weights_file);
 criterion_main!(benches);

@@ -23,19 +23,10 @@ use std::time::{Duration, Instant};
 
 use keelson::demo::synthetic_panel;
 use keelson::estimator::desk::{DeskWindow, Holdings, OmegaForm};
-use keelson::estimator::{self, Cap, FitOptions, Settings, Stop, ValidSettings};
+use keelson::estimator::{self, FitOptions, Settings, Stop, ValidSettings};
 
 fn limited() -> ValidSettings {
-    Settings {
-        max_weight: Cap::At(0.1),
-        max_gross: Cap::At(2.0),
-        max_market_weight: Cap::At(0.2),
-        max_turnover: Cap::At(1.5),
-        cost_bps: 20.0,
-        ..Settings::default()
-    }
-    .check()
-    .expect("valid limits")
+    keelson::demo::every_limit().check().expect("valid limits")
 }
 
 fn peak_rss_mib() -> f64 {
@@ -64,6 +55,23 @@ fn cancel_after<R: Send>(after: Duration, f: impl FnOnce(Stop) -> R + Send) -> f
     })
 }
 
+/// The model fit alone (default settings, one thread, as `ComputeWeights`
+/// runs it): peak RSS above the process with its window loaded, beside the
+/// admission estimate.
+fn model(n: usize, t: usize) -> anyhow::Result<()> {
+    let settings = Settings::default().check()?;
+    let panel = synthetic_panel(n as u64 * 7919 + t as u64, t, n);
+    let before = peak_rss_mib();
+    let options = FitOptions { threads: 1, ..FitOptions::default() };
+    estimator::fit_with(&panel, &settings, &options)?;
+    println!(
+        "{{\"n\":{n},\"t\":{t},\"fit_rss_mib\":{:.1},\"estimate_mib\":{:.1}}}",
+        peak_rss_mib() - before,
+        estimator::budget::model_bytes(t, n, &settings) as f64 / f64::from(1u32 << 20)
+    );
+    Ok(())
+}
+
 fn one(n: usize, t: usize) -> anyhow::Result<()> {
     let settings = limited();
     let mut panel = synthetic_panel(n as u64 * 7919 + t as u64, t, n);
@@ -89,8 +97,9 @@ fn one(n: usize, t: usize) -> anyhow::Result<()> {
         estimator::fit_with(&panel, &settings, &FitOptions { stop, ..options.clone() }).is_err()
     });
     println!(
-        "{{\"n\":{n},\"t\":{t},\"fit_s\":{fit_s:.6},\"stage_s\":{stage_s:.6},\"peak_rss_mib\":{:.1},\"cancel_stage_s\":{cancel_stage:.6},\"cancel_fit_s\":{cancel_fit:.6},\"form\":\"{}\",\"iterations\":{},\"status\":\"{}\"}}",
+        "{{\"n\":{n},\"t\":{t},\"fit_s\":{fit_s:.6},\"stage_s\":{stage_s:.6},\"peak_rss_mib\":{:.1},\"estimate_mib\":{:.1},\"cancel_stage_s\":{cancel_stage:.6},\"cancel_fit_s\":{cancel_fit:.6},\"form\":\"{}\",\"iterations\":{},\"status\":\"{}\"}}",
         peak_rss_mib(),
+        keelson::estimator::budget::fit_bytes(t, n, &settings) as f64 / f64::from(1u32 << 20),
         done.report.omega_form,
         done.report.iterations,
         done.report.solver_status
@@ -168,38 +177,55 @@ fn repeat(n: usize, t: usize, reps: usize) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// What a server with the default configuration does with this size and
+/// every limit set: serves it, or names the limit that refuses it before any work.
+fn default_server(n: usize, t: usize) -> String {
+    let s = keelson::service::config::ServerConfig::default().server;
+    let bytes = estimator::budget::fit_bytes(t, n, &limited());
+    if n * t > s.max_cells {
+        format!("refused: `max_cells` {}", s.max_cells)
+    } else if n > s.max_stage_factors {
+        format!("refused: `max_stage_factors` {}", s.max_stage_factors)
+    } else if (n * t) as u64 > s.max_stage_cells {
+        format!("refused: `max_stage_cells` {}", s.max_stage_cells)
+    } else if bytes > s.max_request_bytes_estimate {
+        "refused: `max_request_bytes_estimate`".to_owned()
+    } else {
+        "served".to_owned()
+    }
+}
+
 fn table() -> anyhow::Result<()> {
     let exe = std::env::current_exe()?;
     println!(
-        "| N | T | fit + stage (s) | stage alone (s) | peak RSS (MiB) | cancel in stage (ms) | cancel in fit (ms) | Ω form |"
+        "| N | T | fit + stage (s) | stage alone (s) | peak RSS (MiB) | estimate (MiB) | cancel in stage (ms) | cancel in fit (ms) | Ω form | default server |"
     );
-    println!("|---|---|---|---|---|---|---|---|");
-    for t in [120usize, 600] {
-        for n in [50usize, 200, 500, 1_000, 2_000, 5_000, 10_000] {
-            if n * t > 4_000_000 {
-                println!(
-                    "| {n} | {t} | refused before any work: {} cells above `server.max_cells` = 4,000,000 | | | | | |",
-                    n * t
-                );
-                continue;
-            }
-            let out = Command::new(&exe).args(["one", &n.to_string(), &t.to_string()]).output()?;
-            let text = String::from_utf8_lossy(&out.stdout);
-            let Ok(v) = serde_json::from_str::<serde_json::Value>(text.trim()) else {
-                println!("| {n} | {t} | failed: {} | | | | | |", String::from_utf8_lossy(&out.stderr).trim());
-                continue;
-            };
-            let f = |k: &str| v[k].as_f64().unwrap_or(f64::NAN);
-            println!(
-                "| {n} | {t} | {:.3} | {:.4} | {:.0} | {:.1} | {:.1} | {} |",
-                f("fit_s"),
-                f("stage_s"),
-                f("peak_rss_mib"),
-                1e3 * f("cancel_stage_s"),
-                1e3 * f("cancel_fit_s"),
-                v["form"].as_str().unwrap_or("")
-            );
+    println!("|---|---|---|---|---|---|---|---|---|---|");
+    let sizes = [120usize, 600].iter().flat_map(|&t| [50usize, 200, 500, 1_000, 2_000, 5_000, 10_000].map(|n| (n, t)));
+    // The largest windows a default server serves with the stage, at two shapes.
+    for (n, t) in sizes.chain([(700, 350), (1_000, 250)]) {
+        let server = default_server(n, t);
+        if n * t > 4_000_000 {
+            println!("| {n} | {t} | not run: {} cells | | | | | | | {server} |", n * t);
+            continue;
         }
+        let out = Command::new(&exe).args(["one", &n.to_string(), &t.to_string()]).output()?;
+        let text = String::from_utf8_lossy(&out.stdout);
+        let Ok(v) = serde_json::from_str::<serde_json::Value>(text.trim()) else {
+            println!("| {n} | {t} | failed: {} | | | | | | | |", String::from_utf8_lossy(&out.stderr).trim());
+            continue;
+        };
+        let f = |k: &str| v[k].as_f64().unwrap_or(f64::NAN);
+        println!(
+            "| {n} | {t} | {:.3} | {:.4} | {:.0} | {:.0} | {:.1} | {:.1} | {} | {server} |",
+            f("fit_s"),
+            f("stage_s"),
+            f("peak_rss_mib"),
+            f("estimate_mib"),
+            1e3 * f("cancel_stage_s"),
+            1e3 * f("cancel_fit_s"),
+            v["form"].as_str().unwrap_or("")
+        );
     }
     Ok(())
 }
@@ -209,6 +235,12 @@ fn main() -> anyhow::Result<()> {
     let num = |i: usize| args.get(i).and_then(|v| v.parse::<usize>().ok()).ok_or_else(|| anyhow::anyhow!("a number"));
     match args.first().map(String::as_str) {
         Some("one") => one(num(1)?, num(2)?),
+        Some("model") => model(num(1)?, num(2)?),
+        Some("estimate") => {
+            let mib = estimator::budget::fit_bytes(num(2)?, num(1)?, &limited()) as f64 / f64::from(1u32 << 20);
+            println!("{{\"n\":{},\"t\":{},\"estimate_mib\":{mib:.1}}}", num(1)?, num(2)?);
+            Ok(())
+        }
         Some("forms") => forms(num(1)?),
         Some("repeat") => repeat(num(1)?, num(2)?, num(3)?),
         _ => table(),

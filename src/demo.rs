@@ -5,7 +5,7 @@
 //! roughly 0.3 to 0.8 a year, zero for the others). Every number is
 //! generated from a fixed seed: this is not market data.
 
-use crate::estimator::ReturnPanel;
+use crate::estimator::{Cap, ReturnPanel, Settings};
 
 /// Months in the demo's estimation window.
 pub const DEMO_PERIODS: usize = 120;
@@ -172,4 +172,18 @@ pub fn to_csv(panel: &ReturnPanel) -> String {
         out.push('\n');
     }
     out
+}
+
+/// The default settings with every limit of the implementation stage on and
+/// a cost (max_weight 0.1, max_gross 2, max_market_weight 0.2, max_turnover
+/// 1.5, 20 bp): what the size table and the stress tests of the stage run.
+pub fn every_limit() -> Settings {
+    Settings {
+        max_weight: Cap::At(0.1),
+        max_gross: Cap::At(2.0),
+        max_market_weight: Cap::At(0.2),
+        max_turnover: Cap::At(1.5),
+        cost_bps: 20.0,
+        ..Settings::default()
+    }
 }

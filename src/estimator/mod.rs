@@ -12,6 +12,7 @@
 
 pub mod basis;
 pub mod bootstrap;
+pub mod budget;
 pub mod calibration;
 pub mod cv;
 mod dense;

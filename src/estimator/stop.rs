@@ -8,11 +8,25 @@ use std::time::Instant;
 
 use super::error::EstimateError;
 
+/// A hook [`Stop::check`] calls before it reads the flag and the clock.
+pub type Probe = Arc<dyn Fn() + Send + Sync>;
+
 /// When to stop early. The default never stops.
-#[derive(Clone, Debug, Default)]
+#[derive(Clone, Default)]
 pub struct Stop {
     deadline: Option<Instant>,
     cancelled: Option<Arc<AtomicBool>>,
+    probe: Option<Probe>,
+}
+
+impl std::fmt::Debug for Stop {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Stop")
+            .field("deadline", &self.deadline)
+            .field("cancelled", &self.cancelled)
+            .field("probe", &self.probe.is_some())
+            .finish()
+    }
 }
 
 impl Stop {
@@ -33,9 +47,20 @@ impl Stop {
         self
     }
 
+    /// Calls `probe` at every check, before the flag and the deadline are
+    /// read: instrumentation, and fault injection in tests (a probe that
+    /// sleeps is a slow solver; one that sets the flag cancels at that point).
+    pub fn with_probe(mut self, probe: Probe) -> Self {
+        self.probe = Some(probe);
+        self
+    }
+
     /// # Errors
     /// [`EstimateError::Cancelled`] or [`EstimateError::DeadlineExceeded`].
     pub fn check(&self) -> Result<(), EstimateError> {
+        if let Some(probe) = &self.probe {
+            probe();
+        }
         if self.cancelled.as_ref().is_some_and(|f| f.load(Ordering::Relaxed)) {
             return Err(EstimateError::Cancelled);
         }

@@ -525,20 +525,63 @@ impl Schedule {
         let strategies = strategies(configured, panel.market.is_some(), spec.baselines);
         // Bounded by check(): at most the window's rank and settings.max_components.
         let sweep_ks: Vec<usize> = (1..=spec.sweep_max_k()).collect();
-        // The ridge on every component always uses the covariance basis: its
-        // sweep is that basis alone (every other scaling would repeat it).
-        let sweep_scalings = match configured.method {
-            _ if spec.sweep_max_k() == 0 || !has_sweep(configured) => Vec::new(),
-            Method::KnsRidge | Method::Blend => vec![Scaling::Covariance],
-            _ => Scaling::ALL.to_vec(),
-        };
+        let sweep_scalings = sweep_scalings(configured, spec.sweep_max_k());
         let dates = (spec.window..panel.rows).step_by(spec.step).collect();
         Schedule { dates, strategies, sweep_ks, sweep_scalings }
     }
 
-    /// Progress steps in all: one per strategy and sweep scaling per date.
-    fn steps(&self) -> usize {
-        self.dates.len() * (self.strategies.len() + self.sweep_scalings.len())
+    /// Progress steps in all, counted as [`BacktestBudget::fits`] counts
+    /// fits: per date, every strategy once and once per bootstrap draw, every
+    /// K of the sweep, and one per run of the implementation stage; then the
+    /// latest window's fit (with its draws and its stage).
+    fn steps(&self, configured: &ValidSettings) -> usize {
+        let per_date = self.strategies.iter().map(|s| fit_steps(s.settings.as_ref())).sum::<usize>()
+            + self.sweep_scalings.len() * self.sweep_ks.len()
+            + self.staged(configured);
+        let latest = fit_steps(Some(configured)) + usize::from(configured.implementation_active());
+        self.dates.len() * per_date + latest
+    }
+
+    /// Strategies the implementation stage runs on at every date.
+    fn staged(&self, configured: &ValidSettings) -> usize {
+        if !configured.implementation_active() {
+            return 0;
+        }
+        self.strategies.iter().filter(|s| s.settings.is_some() && s.name != MODEL).count()
+    }
+}
+
+/// The scalings the component sweep fits at every date. The ridge on every
+/// component always uses the covariance basis: its sweep is that basis alone
+/// (every other scaling would repeat it).
+pub(crate) fn sweep_scalings(configured: &ValidSettings, sweep_max_k: usize) -> Vec<Scaling> {
+    match configured.method {
+        _ if sweep_max_k == 0 || !has_sweep(configured) => Vec::new(),
+        Method::KnsRidge | Method::Blend => vec![Scaling::Covariance],
+        _ => Scaling::ALL.to_vec(),
+    }
+}
+
+/// Progress steps of one fit: one, and one per bootstrap draw when bagged.
+pub(crate) fn fit_steps(settings: Option<&ValidSettings>) -> usize {
+    match settings {
+        Some(s) if s.aggregate == estimator::Aggregate::Bagged => 1 + s.bootstrap_draws as usize,
+        _ => 1,
+    }
+}
+
+/// Counts progress steps across workers and reports each to the caller.
+struct Ticker<'a> {
+    done: AtomicUsize,
+    total: usize,
+    report: &'a (dyn Fn(Progress) + Sync),
+}
+
+impl Ticker<'_> {
+    /// `steps` more done.
+    fn tick(&self, steps: usize) {
+        let done = self.done.fetch_add(steps, Ordering::Relaxed) + steps;
+        (self.report)(Progress { done: done.min(self.total), total: self.total });
     }
 }
 
@@ -573,7 +616,7 @@ fn fit_date(
     spec: &ValidBacktestSpec,
     plan: &Schedule,
     d: usize,
-    tick: &dyn Fn(),
+    ticker: &Ticker<'_>,
     stop: &Stop,
 ) -> Result<DateFits, BacktestError> {
     let t = plan.dates[d];
@@ -597,7 +640,7 @@ fn fit_date(
                 if i == 0 { held_from(&ws) } else { held_weights(&ws) }
             }
         });
-        tick();
+        ticker.tick(fit_steps(s.settings.as_ref()));
     }
     let mut sweep = Vec::with_capacity(plan.sweep_scalings.len());
     let mut basis = None;
@@ -614,7 +657,7 @@ fn fit_date(
             basis = fits.iter().rev().find_map(|r| r.as_ref().ok()).map(held_from);
         }
         sweep.push(fits.iter().map(|r| r.as_ref().ok().map(held_weights)).collect());
-        tick();
+        ticker.tick(plan.sweep_ks.len());
     }
     Ok(DateFits { held, sweep, basis })
 }
@@ -625,13 +668,10 @@ fn fit_all_dates(
     configured: &ValidSettings,
     spec: &ValidBacktestSpec,
     plan: &Schedule,
-    progress: &(dyn Fn(Progress) + Sync),
+    ticker: &Ticker<'_>,
     stop: &Stop,
 ) -> Result<Vec<DateFits>, BacktestError> {
-    let total = plan.steps();
-    let done = AtomicUsize::new(0);
-    let tick = || progress(Progress { done: done.fetch_add(1, Ordering::Relaxed) + 1, total });
-    let one = |d: usize| fit_date(panel, configured, spec, plan, d, &tick, stop);
+    let one = |d: usize| fit_date(panel, configured, spec, plan, d, ticker, stop);
     let n_dates = plan.dates.len();
     if spec.threads <= 1 {
         return (0..n_dates).map(one).collect();
@@ -680,6 +720,7 @@ fn implement_all(
     spec: &ValidBacktestSpec,
     plan: &Schedule,
     fits: &mut [DateFits],
+    ticker: &Ticker<'_>,
     stop: &Stop,
 ) -> Result<(), BacktestError> {
     let todo: Vec<usize> = plan
@@ -694,7 +735,8 @@ fn implement_all(
         .iter()
         .map(|&si| fits.iter_mut().map(|f| std::mem::replace(&mut f.held[si], market_held(0))).collect())
         .collect();
-    let one = |si: usize, held: &mut [Held]| implement_strategy(panel, configured, spec, plan, si, held, stop);
+    let run = StageRun { panel, configured, spec, plan, ticker, stop };
+    let one = |si: usize, held: &mut [Held]| implement_strategy(&run, si, held);
     let workers = spec.threads.clamp(1, todo.len().max(1));
     let results: Vec<Result<(), BacktestError>> = if workers <= 1 {
         todo.iter().zip(columns.iter_mut()).map(|(&si, col)| one(si, col)).collect()
@@ -721,16 +763,19 @@ fn implement_all(
     results.into_iter().collect()
 }
 
+/// What every strategy's run of the implementation stage shares.
+struct StageRun<'a> {
+    panel: &'a ReturnPanel,
+    configured: &'a ValidSettings,
+    spec: &'a ValidBacktestSpec,
+    plan: &'a Schedule,
+    ticker: &'a Ticker<'a>,
+    stop: &'a Stop,
+}
+
 /// One strategy's implemented weights at every date, in date order.
-fn implement_strategy(
-    panel: &ReturnPanel,
-    configured: &ValidSettings,
-    spec: &ValidBacktestSpec,
-    plan: &Schedule,
-    si: usize,
-    held: &mut [Held],
-    stop: &Stop,
-) -> Result<(), BacktestError> {
+fn implement_strategy(run: &StageRun<'_>, si: usize, held: &mut [Held]) -> Result<(), BacktestError> {
+    let StageRun { panel, configured, spec, plan, ticker, stop } = *run;
     let strategy = &plan.strategies[si];
     let Some(settings) = &strategy.settings else { return Ok(()) };
     let mut prev = (vec![0.0; panel.cols], 0.0);
@@ -763,6 +808,7 @@ fn implement_strategy(
         h.binding.sort_unstable();
         h.binding.dedup();
         prev = (h.weights.clone(), h.market);
+        ticker.tick(1);
     }
     Ok(())
 }
@@ -1081,12 +1127,14 @@ pub fn run(
     let (configured, _) = configured.for_panel(panel).map_err(BacktestError::History)?;
     let configured = &configured;
     let plan = Schedule::new(panel, configured, spec);
-    let mut fits = fit_all_dates(panel, configured, spec, &plan, progress, stop)?;
+    let ticker = Ticker { done: AtomicUsize::new(0), total: plan.steps(configured), report: progress };
+    let mut fits = fit_all_dates(panel, configured, spec, &plan, &ticker, stop)?;
     let constraints = ConstraintSet::of(configured);
     if configured.implementation_active() {
-        implement_all(panel, configured, spec, &plan, &mut fits, stop)?;
+        implement_all(panel, configured, spec, &plan, &mut fits, &ticker, stop)?;
     }
     let last_fit = portfolio_to_hold(panel, configured, spec, &fits, stop)?;
+    ticker.tick(fit_steps(Some(configured)) + usize::from(configured.implementation_active()));
     let p = f64::from(configured.periods_per_year());
     let oos = OutOfSample { panel, periods: (spec.window..panel.rows).collect(), window: spec.window, step: spec.step };
     let lag = spec.nw_lag.unwrap_or_else(|| stats::default_nw_lag(oos.periods.len()));

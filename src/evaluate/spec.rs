@@ -8,7 +8,7 @@
 use serde::Serialize;
 
 use super::{BacktestError, MARKET, strategies};
-use crate::estimator::{InputError, ReturnPanel, Scaling, ValidSettings, window};
+use crate::estimator::{InputError, ReturnPanel, ValidSettings, window};
 
 /// Largest K of the sweep when the caller does not set one.
 pub const DEFAULT_SWEEP_MAX_K: usize = 10;
@@ -71,8 +71,16 @@ impl Default for BacktestSpec {
 pub struct BacktestBudget {
     /// Refit dates.
     pub refits: u64,
-    /// Estimator fits in all (strategies and every K of the sweep, at every date).
+    /// Estimator fits in all: every strategy at every date (once per
+    /// bootstrap draw as well when bagged), every K of the sweep, and one per
+    /// run of the implementation stage (a stage costs about one fit: see
+    /// DEVELOPERS.md, "Benchmarks").
     pub fits: u64,
+    /// Runs of the implementation stage (strategies with a limit or a cost,
+    /// at every date); counted in `fits` too.
+    pub stages: u64,
+    /// Bootstrap draws per bagged fit (0: not bagged).
+    pub draws: u64,
     /// Return cells read by all fits together (a measure of the work).
     pub cells: u64,
     /// Peak memory of the run, bytes (an upper estimate: retained results
@@ -266,16 +274,23 @@ fn estimate(
     let window = s.window as u64;
     let out_of_sample = periods - window;
     let refits = out_of_sample.div_ceil(s.step as u64);
-    let strategies = strategies(settings, panel.market.is_some(), s.baselines).len() as u64;
-    let sweep_scalings = if sweep_max_k > 0 && super::has_sweep(settings) { Scaling::ALL.len() as u64 } else { 0 };
+    let catalogue = strategies(settings, panel.market.is_some(), s.baselines);
+    let strategies = catalogue.len() as u64;
+    let sweep_scalings = super::sweep_scalings(settings, sweep_max_k).len() as u64;
     let k_sweep = sweep_max_k as u64;
     // Bagging refits every strategy once per bootstrap draw as well.
-    let per_strategy = if settings.aggregate == crate::estimator::Aggregate::Bagged {
-        1 + u64::from(settings.bootstrap_draws)
+    let draws =
+        if settings.aggregate == crate::estimator::Aggregate::Bagged { u64::from(settings.bootstrap_draws) } else { 0 };
+    let per_date: u64 = catalogue.iter().map(|st| super::fit_steps(st.settings.as_ref()) as u64).sum();
+    // The implementation stage runs per date on every fitted strategy but
+    // the model-portfolio row, when the configured settings set a limit or a cost.
+    let staged = if settings.implementation_active() {
+        catalogue.iter().filter(|st| st.name != super::MODEL && st.settings.is_some()).count() as u64
     } else {
-        1
+        0
     };
-    let fits = refits.saturating_mul(strategies.saturating_mul(per_strategy) + sweep_scalings * k_sweep);
+    let stages = refits.saturating_mul(staged);
+    let fits = refits.saturating_mul(per_date + sweep_scalings * k_sweep).saturating_add(stages);
     // Expanding windows grow from L to the whole history: count the mean length.
     let mean_window = if s.expanding { (window + periods - 1) / 2 } else { window };
     let cells = fits.saturating_mul(mean_window.saturating_mul(n));
@@ -291,19 +306,14 @@ fn estimate(
     // Out-of-sample series (gross and net, per strategy) and alpha regressions.
     let series = out_of_sample.saturating_mul(2 * strategies + sweep_scalings * k_sweep + n + 2);
     let alphas = out_of_sample.saturating_mul(benchmark_sets as u64 * (n.min(64) + 2));
-    // One window's working set per thread: its copy, the demarketed and
-    // scaled returns, and the smaller of the N×N and T×T cross products, for
-    // the full window and each fold.
-    let mut largest = if s.expanding { periods } else { window };
-    largest = largest.max(1);
-    let working = 6 * largest * n + 4 * largest.min(n).pow(2) * u64::from(settings.folds + 1);
-    let threads = s.threads as u64;
-    let words = retained
-        .saturating_add(series)
-        .saturating_add(alphas)
-        .saturating_add(working.saturating_mul(threads))
-        .saturating_add(periods * n);
-    BacktestBudget { refits, fits, cells, bytes: words.saturating_mul(F64) }
+    // One window's working set per thread, the largest window's: the model
+    // fits run first, then the stage (SPEC §10), so the larger of the two.
+    let largest = if s.expanding { panel.rows } else { s.window };
+    let model = crate::estimator::budget::model_bytes(largest, panel.cols, settings);
+    let stage = if staged > 0 { crate::estimator::budget::stage_bytes(largest, panel.cols) } else { 0 };
+    let working = model.max(stage).saturating_mul(s.threads as u64);
+    let words = retained.saturating_add(series).saturating_add(alphas).saturating_add(periods * n);
+    BacktestBudget { refits, fits, stages, draws, cells, bytes: words.saturating_mul(F64).saturating_add(working) }
 }
 
 #[cfg(test)]
@@ -378,8 +388,9 @@ mod tests {
         let big = BacktestSpec::default().check(&panel(600, 40), &s).unwrap().budget();
         assert_eq!(small.refits, 10);
         // 13 strategies with a market (the configured blend, 6 scalings, plug-in, Ledoit-Wolf,
-        // 2 KNS ridges, equal weight, market) and at most 6 scalings × 8 sweep points.
-        assert_eq!(small.fits, 10 * (13 + 6 * 8));
+        // 2 KNS ridges, equal weight, market) and the blend's sweep: the covariance basis × 8 K.
+        assert_eq!(small.fits, 10 * (13 + 8));
+        assert_eq!((small.stages, small.draws), (0, 0), "no limit, cost or bagging");
         assert_eq!(big.refits, 480);
         assert!(big.fits > small.fits && big.cells > small.cells && big.bytes > small.bytes);
         assert!(big.bytes < 256 << 20, "a 40-factor, 600-month research backtest is well within 256 MiB");

@@ -55,19 +55,68 @@ impl WeightsApi {
         Ok(())
     }
 
-    /// Refuses a request whose settings run the implementation stage over
-    /// more factors than `server.max_stage_factors`.
-    pub(super) fn check_stage_size(&self, settings: &ValidSettings, factors: usize) -> Result<(), ServiceError> {
-        let limit = self.shared.config.raw.server.max_stage_factors;
-        if settings.implementation_active() && factors > limit {
+    /// Refuses a request whose settings run the implementation stage on a
+    /// window over `server.max_stage_factors` factors or
+    /// `server.max_stage_cells` periods × factors (the stage's time grows
+    /// as N·T² in the factor form of Ω and N³ in the dense one).
+    pub(super) fn check_stage_size(
+        &self,
+        settings: &ValidSettings,
+        periods: usize,
+        factors: usize,
+    ) -> Result<(), ServiceError> {
+        if !settings.implementation_active() {
+            return Ok(());
+        }
+        let limits = &self.shared.config.raw.server;
+        if factors > limits.max_stage_factors {
             return Err(ServiceError::TooLarge {
                 field: "returns.cols",
                 value: factors as u64,
-                limit: limit as u64,
+                limit: limits.max_stage_factors as u64,
                 what: "factors with limits or costs set (server.max_stage_factors)",
             });
         }
+        let cells = (periods as u64).saturating_mul(factors as u64);
+        if cells > limits.max_stage_cells {
+            return Err(ServiceError::TooLarge {
+                field: "returns",
+                value: cells,
+                limit: limits.max_stage_cells,
+                what: "periods × factors of the implementation stage's window with limits or costs set \
+                       (server.max_stage_cells)",
+            });
+        }
         Ok(())
+    }
+
+    /// Refuses one fit whose estimated working memory, the implementation
+    /// stage's included, exceeds `server.max_request_bytes_estimate`.
+    pub(super) fn check_fit_bytes(
+        &self,
+        settings: &ValidSettings,
+        periods: usize,
+        factors: usize,
+    ) -> Result<(), ServiceError> {
+        let limit = self.shared.config.raw.server.max_request_bytes_estimate;
+        let bytes = crate::estimator::budget::fit_bytes(periods, factors, settings);
+        if bytes <= limit {
+            return Ok(());
+        }
+        self.shared.metrics.shed(ShedReason::OverBudget);
+        let mut hint = String::from("send fewer factors or a shorter window");
+        if settings.implementation_active() {
+            hint.push_str(" (the implementation stage, run because a limit or a cost is set, holds most of it)");
+        }
+        Err(ServiceError::OverBudget {
+            job: "request",
+            what: "bytes",
+            value: bytes,
+            limit,
+            key: "server.max_request_bytes_estimate",
+            refits: 0,
+            hint,
+        })
     }
 
     /// Refuses a backtest whose estimated fits or memory exceed the server's
@@ -85,8 +134,49 @@ impl WeightsApi {
             None => Ok(()),
             Some((what, value, limit, key)) => {
                 self.shared.metrics.shed(ShedReason::OverBudget);
-                Err(ServiceError::OverBudget { what, value, limit, key, refits: budget.refits })
+                Err(ServiceError::OverBudget {
+                    job: "backtest",
+                    what,
+                    value,
+                    limit,
+                    key,
+                    refits: budget.refits,
+                    hint: budget_hint(what, budget),
+                })
             }
         }
+    }
+}
+
+/// What a caller can change to bring a backtest within budget, naming the
+/// request's fields and what the estimate counted.
+fn budget_hint(what: &str, b: BacktestBudget) -> String {
+    let mut parts = vec![format!("{} refit dates", b.refits)];
+    if b.draws > 0 {
+        parts.push(format!("every fit bagged over {} bootstrap draws", b.draws));
+    }
+    if b.stages > 0 {
+        parts.push(format!("{} runs of the implementation stage (limits or costs set)", b.stages));
+    }
+    let mut levers = if what == "fits" {
+        vec!["a longer `step`", "a shorter history", "`skip_baselines`", "a smaller `sweep_max_k`"]
+    } else {
+        vec!["fewer factors", "a shorter `window` (rolling, not `expanding`)", "a smaller `sweep_max_k`"]
+    };
+    if b.draws > 0 {
+        levers.push("fewer `bootstrap_draws`");
+    }
+    if b.stages > 0 {
+        levers.push("fewer limits and costs");
+    }
+    format!("the estimate counts {}; use {}", parts.join(", "), or_list(&levers))
+}
+
+/// "a, b or c".
+fn or_list(items: &[&str]) -> String {
+    match items {
+        [] => String::new(),
+        [one] => (*one).to_owned(),
+        [init @ .., last] => format!("{} or {last}", init.join(", ")),
     }
 }

@@ -82,8 +82,10 @@ impl WeightsApi {
         // Every request within the size limits is recorded, refused ones included.
         self.shared.metrics.problem_size(panel.rows, panel.cols);
         let settings = self.settings(&proto_settings)?;
-        self.check_stage_size(&settings, panel.cols)?;
         let spec = spec.check(&panel, &settings)?;
+        // The stage's largest window: the whole history when expanding.
+        let largest = if spec.expanding { panel.rows } else { spec.window };
+        self.check_stage_size(&settings, largest, panel.cols)?;
         let budget = spec.budget();
         self.check_budget(budget)?;
         let deadline = Deadline::new(client_timeout, self.shared.config.raw.server.backtest_timeout_ms);

@@ -66,7 +66,8 @@ impl WeightsApi {
         // Every request within the size limits is recorded, refused ones included.
         sh.metrics.problem_size(panel.rows, panel.cols);
         let settings = self.settings(&proto_settings)?;
-        self.check_stage_size(&settings, panel.cols)?;
+        self.check_stage_size(&settings, panel.rows, panel.cols)?;
+        self.check_fit_bytes(&settings, panel.rows, panel.cols)?;
         let deadline = Deadline::new(client_timeout, sh.config.raw.server.request_timeout_ms);
         let (stop, _cancel) = deadline.stop();
         let shared = sh.clone();

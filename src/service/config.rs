@@ -43,15 +43,22 @@ pub struct ServerSection {
     /// Largest number of factors per request.
     pub max_factors: usize,
     /// Most estimator fits one `RunBacktest` may need (refit dates × the
-    /// strategies and sweep points per date); more → RESOURCE_EXHAUSTED
-    /// before any work.
+    /// strategies, their bootstrap draws, the sweep points and the runs of
+    /// the implementation stage per date); more → RESOURCE_EXHAUSTED before
+    /// any work.
     pub max_backtest_fits: u64,
-    /// Largest estimated peak memory of one request, bytes; more →
+    /// Largest estimated peak memory of one request (a fit with its
+    /// implementation stage, or a whole backtest), bytes; more →
     /// RESOURCE_EXHAUSTED before any work.
     pub max_request_bytes_estimate: u64,
     /// Most factors of a request whose settings run the implementation
     /// stage (some limit or a cost); refused before any work above it.
     pub max_stage_factors: usize,
+    /// Most periods × factors of the window the implementation stage runs
+    /// on (the whole history for an expanding backtest); refused before any
+    /// work above it. The default keeps one stage near 2 s and its
+    /// cancellation under 100 ms on one core (README, Performance).
+    pub max_stage_cells: u64,
     /// Requests admitted at once (computing or queued); more are shed with RESOURCE_EXHAUSTED.
     pub max_in_flight: usize,
     /// Requests computed in parallel on the blocking pool; 0 = number of CPUs.
@@ -90,10 +97,11 @@ impl Default for ServerSection {
             max_backtest_fits: 250_000,
             // The shipped pod has 1 GiB and 2 workers: two requests at their
             // limit, plus 64 MiB messages in and out, stay inside it.
-            max_request_bytes_estimate: 256 * 1024 * 1024,
+            max_request_bytes_estimate: 320 * 1024 * 1024,
             // The stage at N = 2,000 × T = 120 takes about 1.5 s on one core,
             // at 5,000 about 15 s and 230 MiB (README, Performance).
             max_stage_factors: 2_000,
+            max_stage_cells: 250_000,
             max_in_flight: 64,
             workers: 0,
             request_timeout_ms: 30_000,
@@ -369,6 +377,7 @@ impl ServerConfig {
         positive("server.max_backtest_fits", s.max_backtest_fits)?;
         positive("server.max_request_bytes_estimate", s.max_request_bytes_estimate)?;
         positive("server.max_stage_factors", s.max_stage_factors as u64)?;
+        positive("server.max_stage_cells", s.max_stage_cells)?;
         positive("server.max_in_flight", s.max_in_flight as u64)?;
         positive("server.request_timeout_ms", s.request_timeout_ms)?;
         positive("server.backtest_timeout_ms", s.backtest_timeout_ms)?;

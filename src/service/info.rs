@@ -30,6 +30,7 @@ impl WeightsApi {
                 max_backtest_fits: s.max_backtest_fits,
                 max_request_bytes_estimate: s.max_request_bytes_estimate,
                 max_stage_factors: s.max_stage_factors as u32,
+                max_stage_cells: s.max_stage_cells,
             }),
             settings: estimator::Settings::TABLE
                 .iter()

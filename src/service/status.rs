@@ -35,12 +35,11 @@ pub enum ServiceError {
         /// What is measured.
         what: &'static str,
     },
-    /// A backtest's estimated work or memory is above the server's budget.
-    #[error(
-        "the backtest needs an estimated {value} {what} ({refits} refit dates), above the server limit of {limit} \
-         ({key}); use a longer step, a shorter history, fewer baselines or a smaller sweep"
-    )]
+    /// A request's estimated work or memory is above the server's budget.
+    #[error("the {job} needs an estimated {value} {what}, above the server limit of {limit} ({key}); {hint}")]
     OverBudget {
+        /// `backtest` or `request`.
+        job: &'static str,
         /// What is over: `fits` or `bytes`.
         what: &'static str,
         /// The estimate.
@@ -49,8 +48,10 @@ pub enum ServiceError {
         limit: u64,
         /// The configuration key of the limit.
         key: &'static str,
-        /// Refit dates of the request.
+        /// Refit dates of a backtest (0 for one fit).
         refits: u64,
+        /// What the caller can change, naming the request's fields.
+        hint: String,
     },
     /// More requests are in flight than the server admits.
     #[error("the server is at its limit of {limit} requests in flight; retry with backoff")]
@@ -289,7 +290,7 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
             d.set_error_info("REQUEST_TOO_LARGE", ERROR_DOMAIN, HashMap::from([("field".into(), (*field).into())]));
             d
         }),
-        ServiceError::OverBudget { what, value, limit, key, refits } => Status::with_error_details(
+        ServiceError::OverBudget { what, value, limit, key, refits, .. } => Status::with_error_details(
             Code::ResourceExhausted,
             err.to_string(),
             ErrorDetails::with_error_info(

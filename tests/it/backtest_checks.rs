@@ -233,3 +233,42 @@ fn multiple_testing_matches_statsmodels_and_numpy() {
         assert!((g - w).abs() <= 1.0 / draws as f64 + 1e-12, "Romano–Wolf p {i}: {g} vs numpy {w}");
     }
 }
+
+/// Progress counts what the budget counts: every strategy's fit and its
+/// bootstrap draws, every sweep point and every run of the implementation
+/// stage, so it reaches its total only when the work is done (the stage runs
+/// after every model fit; before this, progress sat at 100% through it).
+#[test]
+fn progress_counts_the_stage_and_the_draws_and_ends_at_its_total() {
+    use keelson::estimator::{Aggregate, Cap};
+    use std::sync::Mutex;
+    let panel = synthetic_panel(41, 84, 8);
+    let s = Settings {
+        max_weight: Cap::At(0.3),
+        max_turnover: Cap::At(1.0),
+        aggregate: Aggregate::Bagged,
+        bootstrap_draws: 3,
+        ..Settings::default()
+    }
+    .check()
+    .unwrap();
+    let spec = BacktestSpec { window: 60, step: 6, sweep_max_k: Some(2), threads: 1, ..BacktestSpec::default() };
+    let spec = spec.check(&panel, &s).unwrap();
+    let budget = spec.budget();
+    assert_eq!(budget.refits, 4);
+    assert_eq!(budget.draws, 3);
+    assert!(budget.stages > 0 && budget.stages.is_multiple_of(budget.refits), "{budget:?}");
+    let seen = Mutex::new(Vec::new());
+    let record = |p: evaluate::Progress| seen.lock().unwrap().push(p);
+    evaluate::run(&panel, &s, &spec, &record, &Stop::never()).unwrap();
+    let seen = seen.into_inner().unwrap();
+    let total = seen[0].total;
+    // The budget's fits, then the latest window's fit (1 + 3 draws) and its stage.
+    assert_eq!(total as u64, budget.fits + 4 + 1, "{budget:?}");
+    assert!(seen.windows(2).all(|w| w[0].done < w[1].done && w[1].total == total), "one worker: strictly increasing");
+    assert_eq!(seen.last().unwrap().done, total, "ends at its total");
+    assert_eq!(seen.iter().filter(|p| p.done == total).count(), 1, "at 100% only once, at the end");
+    // The stage's steps come after every model fit: the last `stages + 5` reports.
+    let before_stage = seen[seen.len() - budget.stages as usize - 2].done;
+    assert_eq!(total - before_stage, budget.stages as usize + 5, "stage runs and the latest fit are counted");
+}

@@ -487,7 +487,7 @@ class GetServiceInfoRequest(_message.Message):
     def __init__(self) -> None: ...
 
 class ServiceLimits(_message.Message):
-    __slots__ = ("max_message_bytes", "max_cells", "max_factors", "max_in_flight", "workers", "request_timeout_ms", "backtest_timeout_ms", "max_backtest_fits", "max_request_bytes_estimate", "max_stage_factors")
+    __slots__ = ("max_message_bytes", "max_cells", "max_factors", "max_in_flight", "workers", "request_timeout_ms", "backtest_timeout_ms", "max_backtest_fits", "max_request_bytes_estimate", "max_stage_factors", "max_stage_cells")
     MAX_MESSAGE_BYTES_FIELD_NUMBER: _ClassVar[int]
     MAX_CELLS_FIELD_NUMBER: _ClassVar[int]
     MAX_FACTORS_FIELD_NUMBER: _ClassVar[int]
@@ -498,6 +498,7 @@ class ServiceLimits(_message.Message):
     MAX_BACKTEST_FITS_FIELD_NUMBER: _ClassVar[int]
     MAX_REQUEST_BYTES_ESTIMATE_FIELD_NUMBER: _ClassVar[int]
     MAX_STAGE_FACTORS_FIELD_NUMBER: _ClassVar[int]
+    MAX_STAGE_CELLS_FIELD_NUMBER: _ClassVar[int]
     max_message_bytes: int
     max_cells: int
     max_factors: int
@@ -508,7 +509,8 @@ class ServiceLimits(_message.Message):
     max_backtest_fits: int
     max_request_bytes_estimate: int
     max_stage_factors: int
-    def __init__(self, max_message_bytes: _Optional[int] = ..., max_cells: _Optional[int] = ..., max_factors: _Optional[int] = ..., max_in_flight: _Optional[int] = ..., workers: _Optional[int] = ..., request_timeout_ms: _Optional[int] = ..., backtest_timeout_ms: _Optional[int] = ..., max_backtest_fits: _Optional[int] = ..., max_request_bytes_estimate: _Optional[int] = ..., max_stage_factors: _Optional[int] = ...) -> None: ...
+    max_stage_cells: int
+    def __init__(self, max_message_bytes: _Optional[int] = ..., max_cells: _Optional[int] = ..., max_factors: _Optional[int] = ..., max_in_flight: _Optional[int] = ..., workers: _Optional[int] = ..., request_timeout_ms: _Optional[int] = ..., backtest_timeout_ms: _Optional[int] = ..., max_backtest_fits: _Optional[int] = ..., max_request_bytes_estimate: _Optional[int] = ..., max_stage_factors: _Optional[int] = ..., max_stage_cells: _Optional[int] = ...) -> None: ...
 
 class GetServiceInfoResponse(_message.Message):
     __slots__ = ("estimator_version", "server_version", "default_settings", "limits", "settings")
