@@ -4,7 +4,9 @@
     python clients/python/generate_stubs.py          # writes keelson_client/_proto/
     python clients/python/generate_stubs.py --check  # fails if the committed stubs differ
 
-Uses grpcio-tools (pinned in tests/python/requirements.txt). The generated
+Uses grpcio-tools 1.62.3 (clients/python/stub-tools.txt, in a virtual
+environment of its own: it needs protobuf 4), whose gencode loads on every
+protobuf and grpcio the package supports. The generated
 service module imports its messages with an absolute `keelson.v1` import;
 it is rewritten to a relative one so that the stubs live inside the package.
 """

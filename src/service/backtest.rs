@@ -7,7 +7,7 @@ use std::time::Duration;
 use tonic::{Request, Response, Status};
 
 use super::WeightsApi;
-use super::runner::{CallLog, CancelOnDrop, Deadline, grpc_timeout};
+use super::runner::{CallLog, CancelOnDrop, Deadline, grpc_timeout, user_agent};
 use super::status::{ServiceError, to_status};
 use super::telemetry::CallSpan;
 use crate::convert::{backtest_request_into_parts, backtest_result_to_proto};
@@ -46,8 +46,9 @@ impl WeightsApi {
     ) -> Result<Response<BacktestStream>, Status> {
         let span = self.call_span("RunBacktest", request.metadata());
         let timeout = grpc_timeout(request.metadata());
+        let agent = user_agent(request.metadata());
         let req = request.into_inner();
-        let log = CallLog::new("RunBacktest", &req.request_id, req.returns.as_ref());
+        let log = CallLog::new("RunBacktest", &req.request_id, req.returns.as_ref(), agent);
         let cols = req.returns.as_ref().map(|m| m.cols as usize);
         span.record(|| {
             [

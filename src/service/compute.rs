@@ -5,7 +5,7 @@ use std::time::SystemTime;
 use tonic::{Request, Response, Status};
 
 use super::WeightsApi;
-use super::runner::{CallLog, Deadline, grpc_timeout};
+use super::runner::{CallLog, Deadline, grpc_timeout, user_agent};
 use super::status::{ServiceError, to_status};
 use super::telemetry::CallSpan;
 use crate::convert::{request_into_parts, weight_set_to_proto};
@@ -19,8 +19,9 @@ impl WeightsApi {
     ) -> Result<Response<proto::ComputeWeightsResponse>, Status> {
         let span = self.call_span("ComputeWeights", request.metadata());
         let timeout = grpc_timeout(request.metadata());
+        let agent = user_agent(request.metadata());
         let req = request.into_inner();
-        let log = CallLog::new("ComputeWeights", &req.request_id, req.returns.as_ref());
+        let log = CallLog::new("ComputeWeights", &req.request_id, req.returns.as_ref(), agent);
         let cols = req.returns.as_ref().map(|m| m.cols as usize);
         span.record(|| {
             [

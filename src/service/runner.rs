@@ -147,6 +147,12 @@ impl WeightsApi {
 }
 
 /// One request's log line, for every outcome.
+/// The caller's `user-agent` header, at most 200 characters, or empty.
+pub(super) fn user_agent(metadata: &tonic::metadata::MetadataMap) -> String {
+    let agent = metadata.get("user-agent").and_then(|v| v.to_str().ok()).unwrap_or("");
+    agent.chars().take(200).collect()
+}
+
 #[derive(Clone, Debug)]
 pub(super) struct CallLog {
     pub(super) method: &'static str,
@@ -154,13 +160,20 @@ pub(super) struct CallLog {
     pub(super) periods: u32,
     pub(super) factors: u32,
     pub(super) started: Instant,
+    /// The caller's `user-agent` (gRPC libraries put theirs after the application's).
+    pub(super) user_agent: String,
 }
 
 impl CallLog {
     /// A call of `method` carrying `returns`.
-    pub(super) fn new(method: &'static str, request_id: &str, returns: Option<&crate::proto::Matrix>) -> CallLog {
+    pub(super) fn new(
+        method: &'static str,
+        request_id: &str,
+        returns: Option<&crate::proto::Matrix>,
+        user_agent: String,
+    ) -> CallLog {
         let (periods, factors) = returns.map_or((0, 0), |m| (m.rows, m.cols));
-        CallLog { method, request_id: request_id.to_owned(), periods, factors, started: Instant::now() }
+        CallLog { method, request_id: request_id.to_owned(), periods, factors, started: Instant::now(), user_agent }
     }
 
     /// Logs a served call with what it chose.
@@ -169,6 +182,7 @@ impl CallLog {
             target: "keelson::request",
             method = self.method,
             request_id = %self.request_id,
+            user_agent = %self.user_agent,
             periods = self.periods,
             factors = self.factors,
             outcome,
@@ -184,6 +198,7 @@ impl CallLog {
             target: "keelson::request",
             method = self.method,
             request_id = %self.request_id,
+            user_agent = %self.user_agent,
             periods = self.periods,
             factors = self.factors,
             code = ?code,

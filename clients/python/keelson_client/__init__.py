@@ -6,20 +6,47 @@
         result = keelson.compute_weights(returns, market="MKT", settings={"max_weight": 0.2})
     result.weights  # a Series by factor
 
-See the package README for the whole API.
+``keelson_client.aio.Client`` is the same client for asyncio. See the package README for
+the whole API.
 """
 
-from .client import RETRYABLE, BacktestResult, Client, WeightsResult
-from .errors import KeelsonError
+from ._common import RETRYABLE, USER_AGENT, BacktestResult, KeelsonWarning, WeightsResult
+from ._version import __version__
+from .client import Client
+from .errors import (
+    Cancelled,
+    ClientClosed,
+    DeadlineExceeded,
+    Infeasible,
+    InvalidInput,
+    KeelsonError,
+    Overloaded,
+    ServerError,
+    Unauthenticated,
+    Unavailable,
+    Violation,
+)
 from .settings import SETTING_NAMES, settings_message
 
 __all__ = [
     "Client",
     "KeelsonError",
+    "InvalidInput",
+    "Infeasible",
+    "Overloaded",
+    "Unavailable",
+    "DeadlineExceeded",
+    "Cancelled",
+    "ClientClosed",
+    "Unauthenticated",
+    "ServerError",
+    "Violation",
+    "KeelsonWarning",
     "WeightsResult",
     "BacktestResult",
     "RETRYABLE",
+    "USER_AGENT",
     "SETTING_NAMES",
     "settings_message",
+    "__version__",
 ]
-__version__ = "0.1.0"

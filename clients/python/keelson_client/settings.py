@@ -9,7 +9,7 @@ from typing import Mapping, Optional
 import grpc
 
 from ._proto import weights_pb2 as pb
-from .errors import KeelsonError
+from .errors import CLIENT_DOMAIN, KeelsonError
 
 # Enum settings: the proto enum's value prefix.
 _ENUMS = {
@@ -39,8 +39,8 @@ SETTING_NAMES = tuple(sorted(set(_ENUMS) | set(_AUTO) | set(_CAPS) | set(_PLAIN)
 
 
 def _refuse(key: str, message: str) -> KeelsonError:
-    return KeelsonError(grpc.StatusCode.INVALID_ARGUMENT, message, reason="INVALID_SETTING",
-                        metadata={"field": f"settings.{key}"})
+    return KeelsonError.of(grpc.StatusCode.INVALID_ARGUMENT, message, reason="INVALID_SETTING",
+                           domain=CLIENT_DOMAIN, metadata={"field": f"settings.{key}"})
 
 
 def settings_message(settings: Optional[Mapping[str, object]]) -> pb.Settings:
@@ -53,6 +53,7 @@ def settings_message(settings: Optional[Mapping[str, object]]) -> pb.Settings:
         if key in _ENUMS:
             name = _ENUMS[key] + str(value).strip().upper().replace("-", "_")
             enum = msg.DESCRIPTOR.fields_by_name[key].enum_type
+            assert enum is not None, key
             if name not in enum.values_by_name or name.endswith("_UNSPECIFIED"):
                 allowed = sorted(v.name[len(_ENUMS[key]):].lower().replace("_", "-")
                                  for v in enum.values if not v.name.endswith("_UNSPECIFIED"))
@@ -84,11 +85,11 @@ def settings_message(settings: Optional[Mapping[str, object]]) -> pb.Settings:
     return msg
 
 
-def _number(key: str, value, integer: bool = False):
+def _number(key: str, value: object, integer: bool = False) -> float:
     if isinstance(value, bool):
         raise _refuse(key, f"setting {key}: expected a number, got {value!r}")
     try:
-        x = float(value)
+        x = float(value)  # type: ignore[arg-type]
     except (TypeError, ValueError):
         raise _refuse(key, f"setting {key}: expected a number, got {value!r}") from None
     if not math.isfinite(x):

@@ -9,12 +9,8 @@ on the same CSV file: the library's own answer, outside this package.
 import concurrent.futures
 import json
 import math
-import os
-import signal
-import socket
 import subprocess
 import tempfile
-import time
 
 import grpc
 import numpy as np
@@ -23,61 +19,7 @@ import pytest
 
 from keelson_client import Client, KeelsonError
 
-ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
-KEELSON = os.environ.get("KEELSON_BIN", os.path.join(ROOT, "target", "debug", "keelson"))
-DATA = os.path.join(ROOT, "tests", "reference", "data", "a_main.csv")
-
-
-def free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-class Server:
-    """`keelson serve` on a free loopback port, stopped with SIGTERM."""
-
-    def __init__(self, **env):
-        self.port = free_port()
-        full = dict(os.environ, KEELSON__LOG__LEVEL="warn", KEELSON__METRICS__ADDRESS="127.0.0.1:0",
-                    **{k: str(v) for k, v in env.items()})
-        self.process = subprocess.Popen([KEELSON, "serve", "--addr", f"127.0.0.1:{self.port}"], env=full)
-        self.address = f"127.0.0.1:{self.port}"
-
-    def wait_until_up(self, **client_kwargs):
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                with Client(self.address, timeout=2, retries=0, **client_kwargs) as c:
-                    c.service_info()
-                return
-            except KeelsonError as e:
-                if e.code == grpc.StatusCode.UNAUTHENTICATED:
-                    return
-                if time.monotonic() > deadline or self.process.poll() is not None:
-                    raise
-                time.sleep(0.1)
-
-    def stop(self):
-        self.process.send_signal(signal.SIGTERM)
-        try:
-            return self.process.wait(timeout=30)
-        except subprocess.TimeoutExpired:
-            self.process.kill()
-            return None
-
-
-@pytest.fixture(scope="module")
-def server():
-    s = Server()
-    s.wait_until_up()
-    yield s
-    assert s.stop() == 0, "the server exits 0 on SIGTERM"
-
-
-@pytest.fixture(scope="module")
-def window():
-    return pd.read_csv(DATA, index_col=0)
+from conftest import DATA, KEELSON, Server
 
 
 def keelson_fit(*args):
@@ -260,8 +202,10 @@ def test_nan_returns_pass_as_missing_values(server, window):
 
 
 def test_the_frequency_is_read_from_the_index_and_a_contradiction_refused(server, window):
-    # SPEC §13: business days (pandas bdate_range) → 252 a year; quarters → 4; a stated
-    # monthly frequency that daily labels contradict → FREQUENCY_MISMATCH naming both.
+    # SPEC §13: business days (pandas bdate_range) → 252 a year; quarters → 4, each sent
+    # from the index's frequency and checked by the server against the labels (so not
+    # "inferred"); without a frequency on the index the server reads it from the labels; a
+    # stated monthly frequency that daily labels contradict → FREQUENCY_MISMATCH naming both.
     factors = window.drop(columns=["MKT"])
     daily = factors.set_axis(pd.bdate_range("2015-01-02", periods=len(factors)))
     quarterly = factors.set_axis(pd.period_range("1990Q1", periods=len(factors), freq="Q"))
@@ -271,8 +215,10 @@ def test_the_frequency_is_read_from_the_index_and_a_contradiction_refused(server
         with pytest.raises(KeelsonError) as err:
             keelson.compute_weights(daily, settings={"periods_per_year": 12})
         unchecked = keelson.compute_weights(daily, settings={"periods_per_year": 12, "frequency_check": False})
-    assert (d["periodsPerYear"], d["periodsPerYearInferred"]) == (252, True)
-    assert (q["periodsPerYear"], q["periodsPerYearInferred"]) == (4, True)
+        labels_only = keelson.compute_weights(daily.set_axis(daily.index.strftime("%Y-%m-%d"))).diagnostics
+    assert (d["periodsPerYear"], d["periodsPerYearInferred"]) == (252, False)
+    assert (q["periodsPerYear"], q["periodsPerYearInferred"]) == (4, False)
+    assert (labels_only["periodsPerYear"], labels_only["periodsPerYearInferred"]) == (252, True)
     e = err.value
     assert e.code == grpc.StatusCode.INVALID_ARGUMENT and e.reason == "FREQUENCY_MISMATCH"
     assert e.field == "settings.periods_per_year" and e.metadata.get("inferred") == "252"

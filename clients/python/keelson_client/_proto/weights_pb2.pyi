@@ -2,8 +2,7 @@ from google.protobuf.internal import containers as _containers
 from google.protobuf.internal import enum_type_wrapper as _enum_type_wrapper
 from google.protobuf import descriptor as _descriptor
 from google.protobuf import message as _message
-from collections.abc import Iterable as _Iterable, Mapping as _Mapping
-from typing import ClassVar as _ClassVar, Optional as _Optional, Union as _Union
+from typing import ClassVar as _ClassVar, Iterable as _Iterable, Mapping as _Mapping, Optional as _Optional, Union as _Union
 
 DESCRIPTOR: _descriptor.FileDescriptor
 
@@ -192,7 +191,7 @@ class Settings(_message.Message):
     aggregate: Aggregate
     risk_calibration: RiskCalibration
     frequency_check: bool
-    def __init__(self, scaling: _Optional[_Union[Scaling, str]] = ..., components: _Optional[int] = ..., components_auto: _Optional[bool] = ..., max_components: _Optional[int] = ..., kappa: _Optional[float] = ..., kappa_auto: _Optional[bool] = ..., kappa_grid_min: _Optional[float] = ..., kappa_grid_max: _Optional[float] = ..., kappa_grid_points: _Optional[int] = ..., l1_penalty: _Optional[float] = ..., folds: _Optional[int] = ..., cv_criterion: _Optional[_Union[CvCriterion, str]] = ..., normalization: _Optional[_Union[Normalization, str]] = ..., target_volatility: _Optional[float] = ..., risk_aversion: _Optional[float] = ..., periods_per_year: _Optional[int] = ..., periods_per_year_auto: _Optional[bool] = ..., demarket: _Optional[bool] = ..., missing_policy: _Optional[_Union[MissingPolicy, str]] = ..., rp_gamma: _Optional[float] = ..., min_periods: _Optional[int] = ..., method: _Optional[_Union[Method, str]] = ..., held_out_check: _Optional[bool] = ..., max_weight: _Optional[float] = ..., max_weight_off: _Optional[bool] = ..., max_gross: _Optional[float] = ..., max_gross_off: _Optional[bool] = ..., max_market_weight: _Optional[float] = ..., max_market_weight_off: _Optional[bool] = ..., max_turnover: _Optional[float] = ..., max_turnover_off: _Optional[bool] = ..., cost_bps: _Optional[float] = ..., holding_periods: _Optional[float] = ..., holding_periods_auto: _Optional[bool] = ..., volatility_halflife: _Optional[float] = ..., bootstrap_draws: _Optional[int] = ..., bootstrap_block: _Optional[float] = ..., bootstrap_cv: _Optional[bool] = ..., seed: _Optional[int] = ..., aggregate: _Optional[_Union[Aggregate, str]] = ..., risk_calibration: _Optional[_Union[RiskCalibration, str]] = ..., frequency_check: _Optional[bool] = ...) -> None: ...
+    def __init__(self, scaling: _Optional[_Union[Scaling, str]] = ..., components: _Optional[int] = ..., components_auto: bool = ..., max_components: _Optional[int] = ..., kappa: _Optional[float] = ..., kappa_auto: bool = ..., kappa_grid_min: _Optional[float] = ..., kappa_grid_max: _Optional[float] = ..., kappa_grid_points: _Optional[int] = ..., l1_penalty: _Optional[float] = ..., folds: _Optional[int] = ..., cv_criterion: _Optional[_Union[CvCriterion, str]] = ..., normalization: _Optional[_Union[Normalization, str]] = ..., target_volatility: _Optional[float] = ..., risk_aversion: _Optional[float] = ..., periods_per_year: _Optional[int] = ..., periods_per_year_auto: bool = ..., demarket: bool = ..., missing_policy: _Optional[_Union[MissingPolicy, str]] = ..., rp_gamma: _Optional[float] = ..., min_periods: _Optional[int] = ..., method: _Optional[_Union[Method, str]] = ..., held_out_check: bool = ..., max_weight: _Optional[float] = ..., max_weight_off: bool = ..., max_gross: _Optional[float] = ..., max_gross_off: bool = ..., max_market_weight: _Optional[float] = ..., max_market_weight_off: bool = ..., max_turnover: _Optional[float] = ..., max_turnover_off: bool = ..., cost_bps: _Optional[float] = ..., holding_periods: _Optional[float] = ..., holding_periods_auto: bool = ..., volatility_halflife: _Optional[float] = ..., bootstrap_draws: _Optional[int] = ..., bootstrap_block: _Optional[float] = ..., bootstrap_cv: bool = ..., seed: _Optional[int] = ..., aggregate: _Optional[_Union[Aggregate, str]] = ..., risk_calibration: _Optional[_Union[RiskCalibration, str]] = ..., frequency_check: bool = ...) -> None: ...
 
 class FactorWeight(_message.Message):
     __slots__ = ("factor", "weight", "mean_annualized", "volatility_annualized", "sharpe_annualized", "market_beta", "scale", "risk_contribution", "excluded", "exclusion_reason", "model_weight")
@@ -218,7 +217,7 @@ class FactorWeight(_message.Message):
     excluded: bool
     exclusion_reason: str
     model_weight: float
-    def __init__(self, factor: _Optional[str] = ..., weight: _Optional[float] = ..., mean_annualized: _Optional[float] = ..., volatility_annualized: _Optional[float] = ..., sharpe_annualized: _Optional[float] = ..., market_beta: _Optional[float] = ..., scale: _Optional[float] = ..., risk_contribution: _Optional[float] = ..., excluded: _Optional[bool] = ..., exclusion_reason: _Optional[str] = ..., model_weight: _Optional[float] = ...) -> None: ...
+    def __init__(self, factor: _Optional[str] = ..., weight: _Optional[float] = ..., mean_annualized: _Optional[float] = ..., volatility_annualized: _Optional[float] = ..., sharpe_annualized: _Optional[float] = ..., market_beta: _Optional[float] = ..., scale: _Optional[float] = ..., risk_contribution: _Optional[float] = ..., excluded: bool = ..., exclusion_reason: _Optional[str] = ..., model_weight: _Optional[float] = ...) -> None: ...
 
 class ComputeWeightsRequest(_message.Message):
     __slots__ = ("factor_names", "period_labels", "returns", "market_returns", "previous_weights", "settings", "request_id", "market_name")
@@ -344,7 +343,7 @@ class Diagnostics(_message.Message):
     risk_calibration: RiskCalibrationReport
     periods_per_year: int
     periods_per_year_inferred: bool
-    def __init__(self, num_components: _Optional[int] = ..., kappa: _Optional[float] = ..., gamma: _Optional[float] = ..., components_cross_validated: _Optional[bool] = ..., kappa_cross_validated: _Optional[bool] = ..., cv_surface: _Optional[_Union[CvSurface, _Mapping]] = ..., cv_best_score: _Optional[float] = ..., cv_sharpe: _Optional[float] = ..., in_sample_sharpe: _Optional[float] = ..., ex_ante_volatility: _Optional[float] = ..., effective_factors: _Optional[float] = ..., top_sharpe_gross_share: _Optional[float] = ..., turnover: _Optional[float] = ..., covariance_condition_number: _Optional[float] = ..., excluded: _Optional[_Iterable[_Union[ExcludedFactor, _Mapping]]] = ..., warnings: _Optional[_Iterable[_Union[Warning, _Mapping]]] = ..., periods: _Optional[int] = ..., factors_used: _Optional[int] = ..., effective_settings: _Optional[_Union[Settings, _Mapping]] = ..., implementation: _Optional[_Union[Implementation, _Mapping]] = ..., chosen_scaling: _Optional[_Union[Scaling, str]] = ..., scaling_scores: _Optional[_Iterable[_Union[ScalingScore, _Mapping]]] = ..., bootstrap: _Optional[_Union[Bootstrap, _Mapping]] = ..., risk_calibration: _Optional[_Union[RiskCalibrationReport, _Mapping]] = ..., periods_per_year: _Optional[int] = ..., periods_per_year_inferred: _Optional[bool] = ...) -> None: ...
+    def __init__(self, num_components: _Optional[int] = ..., kappa: _Optional[float] = ..., gamma: _Optional[float] = ..., components_cross_validated: bool = ..., kappa_cross_validated: bool = ..., cv_surface: _Optional[_Union[CvSurface, _Mapping]] = ..., cv_best_score: _Optional[float] = ..., cv_sharpe: _Optional[float] = ..., in_sample_sharpe: _Optional[float] = ..., ex_ante_volatility: _Optional[float] = ..., effective_factors: _Optional[float] = ..., top_sharpe_gross_share: _Optional[float] = ..., turnover: _Optional[float] = ..., covariance_condition_number: _Optional[float] = ..., excluded: _Optional[_Iterable[_Union[ExcludedFactor, _Mapping]]] = ..., warnings: _Optional[_Iterable[_Union[Warning, _Mapping]]] = ..., periods: _Optional[int] = ..., factors_used: _Optional[int] = ..., effective_settings: _Optional[_Union[Settings, _Mapping]] = ..., implementation: _Optional[_Union[Implementation, _Mapping]] = ..., chosen_scaling: _Optional[_Union[Scaling, str]] = ..., scaling_scores: _Optional[_Iterable[_Union[ScalingScore, _Mapping]]] = ..., bootstrap: _Optional[_Union[Bootstrap, _Mapping]] = ..., risk_calibration: _Optional[_Union[RiskCalibrationReport, _Mapping]] = ..., periods_per_year: _Optional[int] = ..., periods_per_year_inferred: bool = ...) -> None: ...
 
 class RiskCalibrationReport(_message.Message):
     __slots__ = ("rule", "factor", "measured_ratio", "standard_error", "held_out_periods", "in_window_volatility", "calibrated_volatility", "limited")
@@ -364,7 +363,7 @@ class RiskCalibrationReport(_message.Message):
     in_window_volatility: float
     calibrated_volatility: float
     limited: bool
-    def __init__(self, rule: _Optional[_Union[RiskCalibration, str]] = ..., factor: _Optional[float] = ..., measured_ratio: _Optional[float] = ..., standard_error: _Optional[float] = ..., held_out_periods: _Optional[int] = ..., in_window_volatility: _Optional[float] = ..., calibrated_volatility: _Optional[float] = ..., limited: _Optional[bool] = ...) -> None: ...
+    def __init__(self, rule: _Optional[_Union[RiskCalibration, str]] = ..., factor: _Optional[float] = ..., measured_ratio: _Optional[float] = ..., standard_error: _Optional[float] = ..., held_out_periods: _Optional[int] = ..., in_window_volatility: _Optional[float] = ..., calibrated_volatility: _Optional[float] = ..., limited: bool = ...) -> None: ...
 
 class FactorInterval(_message.Message):
     __slots__ = ("factor", "q05", "q50", "q95", "sign_agreement")
@@ -406,7 +405,7 @@ class Bootstrap(_message.Message):
     bagged: bool
     factors: _containers.RepeatedCompositeFieldContainer[FactorInterval]
     components: _containers.RepeatedCompositeFieldContainer[ComponentCount]
-    def __init__(self, draws: _Optional[int] = ..., failed: _Optional[int] = ..., mean_block: _Optional[float] = ..., seed: _Optional[int] = ..., cross_validated: _Optional[bool] = ..., bagged: _Optional[bool] = ..., factors: _Optional[_Iterable[_Union[FactorInterval, _Mapping]]] = ..., components: _Optional[_Iterable[_Union[ComponentCount, _Mapping]]] = ...) -> None: ...
+    def __init__(self, draws: _Optional[int] = ..., failed: _Optional[int] = ..., mean_block: _Optional[float] = ..., seed: _Optional[int] = ..., cross_validated: bool = ..., bagged: bool = ..., factors: _Optional[_Iterable[_Union[FactorInterval, _Mapping]]] = ..., components: _Optional[_Iterable[_Union[ComponentCount, _Mapping]]] = ...) -> None: ...
 
 class ScalingScore(_message.Message):
     __slots__ = ("scaling", "best_score", "components", "kappa")
@@ -574,7 +573,7 @@ class RunBacktestRequest(_message.Message):
     benchmark_sets: _containers.RepeatedCompositeFieldContainer[BenchmarkSet]
     skip_baselines: bool
     request_id: str
-    def __init__(self, factor_names: _Optional[_Iterable[str]] = ..., period_labels: _Optional[_Iterable[str]] = ..., returns: _Optional[_Union[Matrix, _Mapping]] = ..., market_returns: _Optional[_Iterable[float]] = ..., settings: _Optional[_Union[Settings, _Mapping]] = ..., window: _Optional[int] = ..., expanding: _Optional[bool] = ..., step: _Optional[int] = ..., cost_bps: _Optional[float] = ..., cer_risk_aversion: _Optional[float] = ..., sweep_max_k: _Optional[int] = ..., benchmark_sets: _Optional[_Iterable[_Union[BenchmarkSet, _Mapping]]] = ..., skip_baselines: _Optional[bool] = ..., request_id: _Optional[str] = ...) -> None: ...
+    def __init__(self, factor_names: _Optional[_Iterable[str]] = ..., period_labels: _Optional[_Iterable[str]] = ..., returns: _Optional[_Union[Matrix, _Mapping]] = ..., market_returns: _Optional[_Iterable[float]] = ..., settings: _Optional[_Union[Settings, _Mapping]] = ..., window: _Optional[int] = ..., expanding: bool = ..., step: _Optional[int] = ..., cost_bps: _Optional[float] = ..., cer_risk_aversion: _Optional[float] = ..., sweep_max_k: _Optional[int] = ..., benchmark_sets: _Optional[_Iterable[_Union[BenchmarkSet, _Mapping]]] = ..., skip_baselines: bool = ..., request_id: _Optional[str] = ...) -> None: ...
 
 class BacktestProgress(_message.Message):
     __slots__ = ("fits_done", "fits_total")
@@ -680,7 +679,7 @@ class BacktestOptions(_message.Message):
     benchmark_sets: _containers.RepeatedCompositeFieldContainer[BenchmarkSet]
     baselines: bool
     periods_per_year: int
-    def __init__(self, window: _Optional[int] = ..., expanding: _Optional[bool] = ..., step: _Optional[int] = ..., cost_bps: _Optional[float] = ..., cer_risk_aversion: _Optional[float] = ..., sweep_max_k: _Optional[int] = ..., benchmark_sets: _Optional[_Iterable[_Union[BenchmarkSet, _Mapping]]] = ..., baselines: _Optional[bool] = ..., periods_per_year: _Optional[int] = ...) -> None: ...
+    def __init__(self, window: _Optional[int] = ..., expanding: bool = ..., step: _Optional[int] = ..., cost_bps: _Optional[float] = ..., cer_risk_aversion: _Optional[float] = ..., sweep_max_k: _Optional[int] = ..., benchmark_sets: _Optional[_Iterable[_Union[BenchmarkSet, _Mapping]]] = ..., baselines: bool = ..., periods_per_year: _Optional[int] = ...) -> None: ...
 
 class Provenance(_message.Message):
     __slots__ = ("keelson_version", "estimator_version", "run_time", "invocation", "input", "input_sha256", "first_period", "last_period", "periods", "factors", "market", "configured")
