@@ -1,7 +1,13 @@
 //! One careless or hostile caller costs that caller an error and nothing
 //! else: backtest options out of range and over-budget backtests are refused
-//! before any work, a panic stays inside its request, and every setting a
-//! request leaves unset takes the server's configured default.
+//! before any work (the hint naming what to change), one fit over its memory
+//! estimate or the implementation stage's size limits likewise, a panic
+//! stays inside its request, and every setting a request leaves unset takes
+//! the server's configured default. The implementation stage holds up: random
+//! limit combinations never fail the solver, a cancel at any of its polls
+//! stops it there (a fault-injected slow solver included), a backtest stream
+//! outlives the connection age, and a missing return in a held factor is sold
+//! over the turnover budget instead of failing the backtest.
 
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
@@ -693,4 +699,26 @@ fn a_backtest_longer_than_the_connection_age_completes() {
         );
         server.shutdown().await;
     });
+}
+
+/// One missing return must not abort a backtest: the factor drops out of
+/// the windows that contain it, its held position is sold at the next refit
+/// even though that sale alone exceeds `max_turnover`, and the strategy
+/// counts the `forced-sale-over-turnover` warning instead of failing.
+#[test]
+fn a_missing_return_in_a_held_factor_is_sold_over_the_turnover_budget() {
+    use keelson::evaluate::{self, BacktestSpec};
+    let mut panel = keelson::demo::synthetic_panel(21, 150, 8);
+    for col in 0..panel.cols {
+        panel.returns[100 * panel.cols + col] = if col < 4 { f64::NAN } else { panel.returns[100 * panel.cols + col] };
+    }
+    let s = Settings { max_weight: Cap::At(0.5), max_turnover: Cap::At(0.02), ..Settings::default() }.check().unwrap();
+    let spec = BacktestSpec { window: 60, step: 3, sweep_max_k: Some(0), baselines: false, ..BacktestSpec::default() }
+        .check(&panel, &s)
+        .unwrap();
+    let r = evaluate::run(&panel, &s, &spec, &|_| {}, &keelson::estimator::Stop::never())
+        .expect("the backtest finishes despite the forced sales");
+    let configured = &r.strategies[0];
+    let forced = configured.warnings.iter().find(|w| w.code == "forced-sale-over-turnover");
+    assert!(forced.is_some_and(|w| w.refits >= 1), "{:?}", configured.warnings);
 }
