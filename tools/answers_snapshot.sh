@@ -36,7 +36,7 @@ p = sys.argv[1]
 s = json.load(open(p))
 def scrub(v):
     if isinstance(v, dict):
-        return {k: scrub(x) for k, x in v.items() if k not in ("runAt", "startedAt", "finishedAt", "version", "keelsonVersion", "elapsedSeconds", "invocation")}
+        return {k: scrub(x) for k, x in v.items() if k not in ("runTime", "runAt", "startedAt", "finishedAt", "version", "keelsonVersion", "elapsedSeconds", "invocation")}
     if isinstance(v, list):
         return [scrub(x) for x in v]
     return v

@@ -16,5 +16,5 @@ pub(crate) fn run(a: FitArgs) -> anyhow::Result<ExitCode> {
     let options = FitOptions { threads: usize::from(a.threads), ..FitOptions::default() };
     let ws = estimator::fit_with(&csv.panel, &settings, &options).map_err(|e| located(e, &csv))?;
     render(&weight_set_to_proto(&ws, ""), a.format, &csv.file, &csv.panel.period_labels)?;
-    Ok(strict_exit(&fail_on, ws.diagnostics.warnings.iter().map(|w| w.code)))
+    Ok(strict_exit(&fail_on, ws.diagnostics.warnings.iter().map(|w| w.code.word())))
 }

@@ -109,7 +109,7 @@ pub(crate) fn read_history(path: &std::path::Path, market: Option<&str>) -> anyh
 /// The warning codes `--fail-on` names: every code for `any`.
 pub(crate) fn fail_on_codes(strict: &StrictArgs) -> anyhow::Result<Vec<&'static str>> {
     let Some(list) = &strict.fail_on else { return Ok(Vec::new()) };
-    let known = keelson::estimator::WARNING_CODES;
+    let known: Vec<&'static str> = keelson::estimator::warning_words().collect();
     let mut out = Vec::new();
     for code in list.split(',').map(str::trim).filter(|c| !c.is_empty()) {
         if code == "any" {

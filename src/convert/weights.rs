@@ -1,7 +1,7 @@
 //! `ComputeWeightsRequest` ⇄ the window, and a [`WeightSet`] → `ComputeWeightsResponse`.
 
 use super::settings::{criterion_to_proto, scaling_to_proto, settings_to_proto};
-use crate::estimator::bootstrap::{BootstrapReport, FactorInterval};
+use crate::estimator::output::{BootstrapReport, FactorInterval};
 use crate::estimator::{
     BindingConstraint, ComponentReport, CvSurface, Diagnostics, ExcludedReport, FactorReport, Implementation,
     ReturnPanel, ScalingScore, Settings, Warning, WeightSet,
@@ -119,7 +119,7 @@ fn diagnostics_to_proto(d: &Diagnostics, settings: &Settings, names: &[String]) 
             .collect(),
         warnings: warnings
             .iter()
-            .map(|Warning { code, message }| proto::Warning { code: (*code).to_owned(), message: message.clone() })
+            .map(|Warning { code, message }| proto::Warning { code: code.word().to_owned(), message: message.clone() })
             .collect(),
         periods: *periods as u32,
         factors_used: *factors_used as u32,

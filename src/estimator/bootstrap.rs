@@ -10,9 +10,11 @@
 //! whatever the thread count.
 
 use super::error::EstimateError;
+pub use super::moments::quantile;
+use super::options::FitOptions;
+use super::output::{BootstrapReport, FactorInterval, WeightSet};
 use super::settings::{Aggregate, Cap, Choice, Method, RiskCalibration, Scaling, Settings, ValidSettings};
 use super::window::ReturnPanel;
-use super::{FitOptions, WeightSet};
 
 /// SplitMix64 (Steele, Lea & Flood 2014): small, fast, and fully reproducible.
 #[derive(Clone, Debug)]
@@ -69,55 +71,6 @@ pub fn stationary_indices(rng: &mut SplitMix, t: usize, mean_block: f64) -> Vec<
 /// The mean block length in force: `bootstrap_block`, or ⌈T^(1/3)⌉.
 pub fn mean_block(settings: &Settings, t: usize) -> f64 {
     if settings.bootstrap_block > 0.0 { settings.bootstrap_block } else { (t as f64).cbrt().ceil() }
-}
-
-/// The q-quantile of sorted values with linear interpolation between order
-/// statistics (numpy's default, Hyndman & Fan type 7).
-pub fn quantile(sorted: &[f64], q: f64) -> f64 {
-    match sorted.len() {
-        0 => f64::NAN,
-        1 => sorted[0],
-        n => {
-            let h = (n - 1) as f64 * q;
-            let lo = h.floor() as usize;
-            let hi = (lo + 1).min(n - 1);
-            sorted[lo] + (h - lo as f64) * (sorted[hi] - sorted[lo])
-        }
-    }
-}
-
-/// One factor's bootstrap distribution.
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct FactorInterval {
-    /// 5% quantile of the weight.
-    pub q05: f64,
-    /// Median weight.
-    pub q50: f64,
-    /// 95% quantile of the weight.
-    pub q95: f64,
-    /// Share of draws whose weight has the fitted model weight's sign (0 counts as its own sign).
-    pub sign_agreement: f64,
-}
-
-/// The bootstrap's report (SPEC §11).
-#[derive(Clone, Debug, PartialEq)]
-pub struct BootstrapReport {
-    /// Draws that gave weights.
-    pub draws: usize,
-    /// Draws whose fit failed (for example K above a resampled window's rank); left out.
-    pub failed: usize,
-    /// Mean block length used.
-    pub mean_block: f64,
-    /// Seed used.
-    pub seed: u64,
-    /// Whether each draw reran the cross-validation.
-    pub cross_validated: bool,
-    /// Whether the weights are the draws' mean (bagging).
-    pub bagged: bool,
-    /// Per panel factor, in panel order.
-    pub factors: Vec<FactorInterval>,
-    /// With cross-validation in every draw: (K, number of draws that chose it), ascending K.
-    pub components: Vec<(usize, usize)>,
 }
 
 /// The settings of every draw: the model alone (no limits, no nested
@@ -190,6 +143,7 @@ pub fn run(
     settings: &ValidSettings,
     point: &WeightSet,
     options: &FitOptions,
+    fit: &(dyn Fn(&ReturnPanel, &ValidSettings, &FitOptions) -> Result<WeightSet, EstimateError> + Sync),
 ) -> Result<(BootstrapReport, Vec<f64>), EstimateError> {
     let draws = settings.bootstrap_draws as usize;
     let s = draw_settings(settings, point)?;
@@ -201,7 +155,7 @@ pub fn run(
     let one = |d: usize| -> Result<Draw, EstimateError> {
         options.stop.check()?;
         let idx = stationary_indices(&mut SplitMix::for_draw(seed, d), panel.rows, block);
-        match super::fit_unhashed(&resample(panel, &idx), &s, &inner) {
+        match fit(&resample(panel, &idx), &s, &inner) {
             Ok(ws) => Ok(Some((ws.factors.iter().map(|f| factor * f.weight).collect(), ws.diagnostics.num_components))),
             Err(e @ (EstimateError::Cancelled | EstimateError::DeadlineExceeded)) => Err(e),
             Err(_) => Ok(None),

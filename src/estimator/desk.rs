@@ -25,7 +25,7 @@ use super::moments::Moments;
 use super::settings::ValidSettings;
 use super::shrinkage::LedoitWolf;
 use super::stop::Stop;
-use super::weights::Warning;
+use super::warning::{Warning, WarningCode};
 use super::window::{ReturnPanel, ReturnWindow};
 use clarabel::algebra::CscMatrix;
 use clarabel::solver::{
@@ -320,7 +320,7 @@ pub fn gamma_star(problem: &Problem<'_>, sigma_model: f64, warnings: &mut Vec<Wa
     let floor = MODEL_SHARPE_FLOOR / root_p;
     if !(problem.model_sharpe > 0.0) {
         warnings.push(Warning {
-            code: "model-no-edge",
+            code: WarningCode::ModelNoEdge,
             message: format!(
                 "the model's Sharpe ratio is {:.3} (annualised), not positive: costs and limits are priced as if it were {MODEL_SHARPE_FLOOR}",
                 problem.model_sharpe * root_p
@@ -445,7 +445,7 @@ fn discretionary_budget(problem: &Problem<'_>, limits: &Limits, warnings: &mut V
         return Some(budget - problem.forced_turnover);
     }
     warnings.push(Warning {
-        code: "forced-sale-over-turnover",
+        code: WarningCode::ForcedSaleOverTurnover,
         message: format!(
             "selling positions without returns in the window trades {} alone, above max_turnover = {}: \
              the sale is made and the limit applies to the other trades",
@@ -803,7 +803,7 @@ fn run(
     }
     if used > 1e-9 && matches!(&outcome, Ok(Ok((_, _, SolverStatus::Solved, _)))) {
         warnings.push(Warning {
-            code: "solver-reduced-accuracy",
+            code: WarningCode::SolverReducedAccuracy,
             message: format!(
                 "the implementation solver broke down at tolerance {SOLVER_TOLERANCE:e} and 1e-9 and solved at {used:e}; the limits hold exactly, the objective to that tolerance"
             ),
@@ -829,7 +829,11 @@ fn run(
             let worst = violation(prog, &x);
             if worst <= BINDING_TOLERANCE && w.iter().all(|v| v.is_finite()) {
                 warnings.push(Warning {
-                    code: if status == SolverStatus::AlmostSolved { "solver-reduced-accuracy" } else { "solver-not-converged" },
+                    code: if status == SolverStatus::AlmostSolved {
+                        WarningCode::SolverReducedAccuracy
+                    } else {
+                        WarningCode::SolverNotConverged
+                    },
                     message: format!(
                         "the implementation solver stopped with status {word} after {iterations} iterations; its last iterate satisfies every limit (largest violation {worst:.1e}) and is used"
                     ),
@@ -1077,7 +1081,16 @@ impl DeskWindow {
             weights[c] = done.weights[j];
         }
         let sharpe: Vec<f64> = (0..used.len()).map(|j| self.mom.sharpe(j)).collect();
-        let top_sharpe_gross_share = super::weights::top_sharpe_share(&done.weights, &sharpe);
+        let top_sharpe_gross_share = top_sharpe_share(&done.weights, &sharpe);
         Ok(DeskAnswer { weights, market_weight: done.market_weight, top_sharpe_gross_share, report: done.report })
     }
+}
+/// Share of gross weight in the ⌈0.3N⌉ factors of highest Sharpe ratio (SPEC §8).
+pub(crate) fn top_sharpe_share(w: &[f64], sharpe: &[f64]) -> f64 {
+    let n = w.len();
+    let gross: f64 = w.iter().map(|x| x.abs()).sum();
+    let top = (0.3 * n as f64).ceil() as usize;
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&a, &b| sharpe[b].total_cmp(&sharpe[a]));
+    order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross
 }

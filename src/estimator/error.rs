@@ -174,9 +174,9 @@ pub enum SettingsError {
     #[error(
         "unknown setting `{field}`{}; the settings are: {}",
         closest.map(|c| format!(" (did you mean `{c}`?)")).unwrap_or_default(),
-        super::settings::Settings::KEYS.join(", ")
+        known.join(", ")
     )]
-    UnknownField { field: String, closest: Option<&'static str> },
+    UnknownField { field: String, closest: Option<&'static str>, known: &'static [&'static str] },
     /// The value has the wrong type or is not an accepted word.
     #[error("setting `{field}`: invalid value \"{value}\": {reason}")]
     InvalidValue { field: &'static str, value: String, reason: String },

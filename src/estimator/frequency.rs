@@ -4,16 +4,12 @@
 //! contradict is refused.
 
 use super::error::{EstimateError, InputError, Location};
-use super::settings::{Choice, Settings, ValidSettings};
-use super::weights::{Diagnostics, Warning};
+use super::settings::{ASSUMED_PERIODS_PER_YEAR, Choice, Settings, ValidSettings};
 use super::window::{ReturnPanel, parse_period};
 
 /// Share of the gaps between consecutive labels that must fall in the band
 /// of the median gap for the spacing to count as regular.
 pub const REGULAR_SHARE: f64 = 0.9;
-
-/// Frequency when neither the settings nor the labels say (monthly).
-pub const ASSUMED_PERIODS_PER_YEAR: u32 = 12;
 
 /// Where the frequency in force came from.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
@@ -105,7 +101,7 @@ pub fn infer(labels: &[String]) -> Result<Option<InferredFrequency>, InputError>
     let gaps: Vec<f64> = parsed.windows(2).map(|w| position(&w[1]) - position(&w[0])).collect();
     let mut sorted = gaps.clone();
     sorted.sort_by(f64::total_cmp);
-    let median = super::bootstrap::quantile(&sorted, 0.5);
+    let median = super::moments::quantile(&sorted, 0.5);
     let Some(&(lo, hi, ppy, name)) = BANDS.iter().find(|(lo, hi, ..)| (*lo..=*hi).contains(&median.round())) else {
         return Err(InputError::IrregularPeriods {
             at: Location::field("period_labels"),
@@ -165,21 +161,6 @@ impl ValidSettings {
         };
         let fixed = Settings { periods_per_year: Choice::Fixed(value), ..self.settings().clone() };
         Ok((ValidSettings::trusted(fixed), source))
-    }
-}
-
-/// Records where the frequency came from in a fit's diagnostics, with the
-/// `frequency-assumed` warning when nothing said.
-pub(crate) fn note_source(d: &mut Diagnostics, source: FrequencySource) {
-    d.frequency = source;
-    if source == FrequencySource::Assumed {
-        d.warnings.push(Warning {
-            code: "frequency-assumed",
-            message: format!(
-                "no period labels and no periods_per_year: {ASSUMED_PERIODS_PER_YEAR} periods a year (monthly) \
-                 assumed for every annualised figure"
-            ),
-        });
     }
 }
 

@@ -20,9 +20,12 @@ pub mod desk;
 pub mod error;
 pub mod frequency;
 pub mod moments;
+pub mod options;
+pub mod output;
 pub mod settings;
 pub mod shrinkage;
 pub mod stop;
+pub mod warning;
 pub mod weights;
 pub mod window;
 
@@ -34,73 +37,23 @@ pub use desk::{BindingConstraint, Implementation, Limits};
 pub use error::{EstimateError, InputError, Location, SettingsError};
 pub use frequency::FrequencySource;
 pub use moments::Moments;
+pub use options::{FitOptions, PhaseTimes};
+pub use output::{
+    ComponentReport, Diagnostics, ESTIMATOR_VERSION, ExcludedReport, FactorReport, ScalingScore, WeightSet,
+};
 pub use settings::{
     Aggregate, Cap, Choice, CvCriterion, MIN_LIMIT, Method, MissingPolicy, Normalization, RiskCalibration, Scaling,
     SettingInfo, Settings, SettingsPatch, ValidSettings, closest_name,
 };
 pub use shrinkage::{LedoitWolf, PlugIn, ShrinkagePath, kns_gamma, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;
-pub use weights::{
-    ComponentReport, Diagnostics, ExcludedReport, FactorReport, ScalingScore, WARNING_CODES, Warning, WeightSet,
-    warning_meaning,
-};
+pub use warning::{Warning, WarningCode, warning_meaning, warning_words};
 pub use window::{Exclusion, ExclusionReason, ReturnPanel, ReturnWindow};
 
 use std::time::{Duration, Instant};
 
 use cv::{Fold, fold_bounds, min_training_periods};
 use weights::ComponentModel;
-
-/// Version of the estimator, reported with every weight set.
-pub const ESTIMATOR_VERSION: &str = concat!("keelson-estimator/", env!("CARGO_PKG_VERSION"));
-
-/// How a fit runs (not what it computes: results do not depend on these).
-#[derive(Clone, Debug)]
-pub struct FitOptions {
-    /// Worker threads: for independent cross-validation folds, and for the
-    /// kernels of a large fit (1 = sequential; see [`PARALLEL_FLOPS`]).
-    pub threads: usize,
-    /// Deadline and cancellation.
-    pub stop: Stop,
-    /// Which eigenproblem to solve.
-    pub eigen_path: EigenPath,
-}
-
-impl Default for FitOptions {
-    fn default() -> Self {
-        FitOptions { threads: 1, stop: Stop::never(), eigen_path: EigenPath::Auto }
-    }
-}
-
-/// Wall-clock time spent in each phase of one fit (for operational metrics;
-/// the results never depend on it).
-#[derive(Clone, Copy, Debug, Default, PartialEq)]
-pub struct PhaseTimes {
-    /// Validating the window (shapes, values, exclusions).
-    pub validate: Duration,
-    /// Demarketing and moments.
-    pub moments: Duration,
-    /// Eigendecompositions of the window and of every fold's training block.
-    pub components: Duration,
-    /// Scoring the (K, κ) grid and solving at the chosen point (components
-    /// methods), or the plug-in solve (baselines).
-    pub solve: Duration,
-    /// Weights, normalisation and diagnostics.
-    pub assemble: Duration,
-}
-
-impl PhaseTimes {
-    /// Phase names and times, in order.
-    pub fn named(&self) -> [(&'static str, Duration); 5] {
-        [
-            ("validate", self.validate),
-            ("moments", self.moments),
-            ("components", self.components),
-            ("solve", self.solve),
-            ("assemble", self.assemble),
-        ]
-    }
-}
 
 /// Fits one window with default options.
 ///
@@ -184,7 +137,7 @@ fn fit_full(
     };
     let r = r.map(|mut ws| {
         ws.fingerprint = hashed.unwrap_or_else(fingerprint);
-        frequency::note_source(&mut ws.diagnostics, source);
+        ws.diagnostics.note_frequency(source);
         ws
     });
     if settings.bootstrap_draws == 0 {
@@ -192,7 +145,7 @@ fn fit_full(
     }
     let mut mark = Instant::now();
     let r = r.and_then(|point| with_bootstrap(panel, settings, point, options)).map(|mut ws| {
-        weights::merge_repeated_warnings(&mut ws.diagnostics.warnings);
+        warning::merge_repeated_warnings(&mut ws.diagnostics.warnings);
         ws
     });
     lap(&mut mark, &mut phases.solve);
@@ -208,7 +161,7 @@ fn with_bootstrap(
     point: WeightSet,
     options: &FitOptions,
 ) -> Result<WeightSet, EstimateError> {
-    let (report, mean) = bootstrap::run(panel, settings, &point, options)?;
+    let (report, mean) = bootstrap::run(panel, settings, &point, options, &fit_unhashed)?;
     if settings.aggregate == Aggregate::Point {
         let mut ws = point;
         ws.diagnostics.bootstrap = Some(report);
@@ -340,7 +293,7 @@ fn fit_phased(
             };
             if plug.singular {
                 warnings.push(Warning {
-                    code: "singular-covariance",
+                    code: WarningCode::SingularCovariance,
                     message: format!(
                         "the factor covariance has rank {} < {}; the minimum-norm least-squares solution is used",
                         plug.rank,
@@ -400,7 +353,7 @@ pub fn fit_component_sweep(
             .and_then(|model| assemble_model(panel, &window, &mom, settings, model, warnings, &options.stop));
         out.push(r.map(|mut ws| {
             ws.fingerprint = fingerprint.clone();
-            frequency::note_source(&mut ws.diagnostics, source);
+            ws.diagnostics.note_frequency(source);
             ws
         }));
     }
@@ -685,7 +638,7 @@ impl ComponentFit {
                 let top = (settings.max_components as usize).min(allowed);
                 if top < (settings.max_components as usize).min(self.data_cap) {
                     warnings.push(Warning {
-                        code: "components-capped-by-rank",
+                        code: WarningCode::ComponentsCappedByRank,
                         message: format!("the component grid stops at K = {top}: {}", self.reason()),
                     });
                 }
@@ -694,7 +647,7 @@ impl ComponentFit {
         };
         if policy == KPolicy::All && allowed < n {
             warnings.push(Warning {
-                code: "components-capped-by-rank",
+                code: WarningCode::ComponentsCappedByRank,
                 message: format!("the ridge on all factors uses {allowed} of {n} components: {}", self.reason()),
             });
         }
@@ -712,13 +665,13 @@ impl ComponentFit {
         let cv = cv::cross_validate(settings, diagonal, &ks, &kappas, &self.folds, &options.stop, options.threads)?;
         if cv.solver_limit_hit {
             warnings.push(Warning {
-                code: "solver-not-converged",
+                code: WarningCode::SolverNotConverged,
                 message: format!("coordinate descent reached {} sweeps at some grid points", shrinkage::MAX_SWEEPS),
             });
         }
         if policy == KPolicy::Grid && ks.len() > 1 && cv.k == *ks.last().unwrap_or(&0) && cv.k < n {
             warnings.push(Warning {
-                code: "components-at-grid-edge",
+                code: WarningCode::ComponentsAtGridEdge,
                 message: format!(
                     "cross-validation chose K = {}, the largest in its grid; raise max_components if the window allows",
                     cv.k
@@ -727,7 +680,7 @@ impl ComponentFit {
         }
         if settings.kappa.fixed().is_none() && (cv.kappa == kappas[0] || cv.kappa == kappas[kappas.len() - 1]) {
             warnings.push(Warning {
-                code: "kappa-at-grid-edge",
+                code: WarningCode::KappaAtGridEdge,
                 message: format!(
                     "cross-validation chose κ = {:.4}, an end of its grid [{}, {}]",
                     cv.kappa,
@@ -760,7 +713,7 @@ impl ComponentFit {
         let info = ShrinkagePath::new(&self.full, diagonal, settings.l1_penalty).solve(k, gamma, &mut b);
         if !info.converged {
             warnings.push(Warning {
-                code: "solver-not-converged",
+                code: WarningCode::SolverNotConverged,
                 message: format!("coordinate descent on the final fit reached {} sweeps", shrinkage::MAX_SWEEPS),
             });
         }

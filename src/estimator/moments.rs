@@ -184,6 +184,21 @@ pub fn demarket(r: MatRef<'_, f64>, market: Option<&[f64]>, beta: &[f64]) -> Mat
     }
 }
 
+/// The q-quantile of sorted values with linear interpolation between order
+/// statistics (numpy's default, Hyndman & Fan type 7).
+pub fn quantile(sorted: &[f64], q: f64) -> f64 {
+    match sorted.len() {
+        0 => f64::NAN,
+        1 => sorted[0],
+        n => {
+            let h = (n - 1) as f64 * q;
+            let lo = h.floor() as usize;
+            let hi = (lo + 1).min(n - 1);
+            sorted[lo] + (h - lo as f64) * (sorted[hi] - sorted[lo])
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

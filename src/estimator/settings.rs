@@ -12,6 +12,9 @@ use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
 use super::error::SettingsError;
 
+/// Frequency when neither the settings nor the labels say (monthly).
+pub const ASSUMED_PERIODS_PER_YEAR: u32 = 12;
+
 /// Portfolio rule that turns the window into weights.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
@@ -597,7 +600,7 @@ impl Settings {
         let key = key.trim().replace('-', "_");
         let Some(&field) = Self::KEYS.iter().find(|k| **k == key) else {
             let closest = closest_key(&key);
-            return Err(SettingsError::UnknownField { field: key, closest });
+            return Err(SettingsError::UnknownField { field: key, closest, known: Settings::KEYS });
         };
         let value = value.trim();
         // Numbers and booleans parse as TOML scalars; anything else is a word.
@@ -694,7 +697,7 @@ impl ValidSettings {
     /// Periods per year in force: the value set or resolved for a panel
     /// ([`ValidSettings::for_panel`]), else monthly.
     pub fn periods_per_year(&self) -> u32 {
-        self.inner.periods_per_year.fixed().unwrap_or(super::frequency::ASSUMED_PERIODS_PER_YEAR)
+        self.inner.periods_per_year.fixed().unwrap_or(ASSUMED_PERIODS_PER_YEAR)
     }
 
     /// κ per period from an annualised κ: κ/√P (SPEC §5).

@@ -7,233 +7,14 @@ use super::basis::ComponentBasis;
 use super::calibration::{self, Calibration, HeldOutRatio};
 use super::cv::CvSurface;
 use super::dense;
-use super::desk::{self, Implementation, Limits};
+use super::desk::{self, Limits};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
+use super::output::{ComponentReport, Diagnostics, ESTIMATOR_VERSION, ExcludedReport, FactorReport, WeightSet};
 use super::settings::{Method, Normalization, RiskCalibration, Scaling, Settings, ValidSettings};
 use super::stop::Stop;
+use super::warning::{Warning, WarningCode};
 use super::window::{ReturnPanel, ReturnWindow};
-
-/// Weight and diagnostics of one factor of the panel.
-#[derive(Clone, Debug, PartialEq)]
-pub struct FactorReport {
-    /// Factor name.
-    pub name: String,
-    /// Implemented portfolio weight (0 when excluded).
-    pub weight: f64,
-    /// Model portfolio weight w* (SPEC §7), before limits and costs; equal
-    /// to `weight` when the implementation stage is off.
-    pub model_weight: f64,
-    /// Annualised mean of the demarketed return, P·μ.
-    pub mean_annualized: f64,
-    /// Annualised volatility of the demarketed return, √P·σ.
-    pub volatility_annualized: f64,
-    /// Annualised Sharpe ratio, √P·μ/σ.
-    pub sharpe_annualized: f64,
-    /// Market beta in the window (0 without demarketing).
-    pub market_beta: f64,
-    /// Column scale s_i of the PCA step (0 for the baselines).
-    pub scale: f64,
-    /// w_i(Σw)_i / w'Σw.
-    pub risk_contribution: f64,
-    /// Exclusion code and reason, when excluded.
-    pub excluded: Option<(&'static str, String)>,
-}
-
-/// Diagnostics of one component.
-#[derive(Clone, Debug, PartialEq)]
-pub struct ComponentReport {
-    /// One-based index.
-    pub index: usize,
-    /// Eigenvalue of C.
-    pub eigenvalue: f64,
-    /// Eigenvalue over tr(C).
-    pub trace_share: f64,
-    /// Annualised Sharpe ratio of the component portfolio.
-    pub sharpe_annualized: f64,
-    /// Coefficient b_k.
-    pub coefficient: f64,
-    /// Σ_F,kk/(Σ_F,kk + γ).
-    pub shrinkage_factor: f64,
-    /// The component portfolio q_k over the panel's factors (0 for excluded
-    /// ones); its return is q_k'(r − β m).
-    pub loadings: Vec<f64>,
-}
-
-/// Every warning code a fit can raise, in the README's order.
-pub const WARNING_CODES: [&str; 17] = [
-    "factors-excluded",
-    "short-window",
-    "return-scale",
-    "components-at-grid-edge",
-    "kappa-at-grid-edge",
-    "components-capped-by-rank",
-    "singular-covariance",
-    "solver-not-converged",
-    "previous-weights-unknown-factor",
-    "forced-sale-over-turnover",
-    "model-no-edge",
-    "solver-reduced-accuracy",
-    "ill-conditioned-covariance",
-    "components-not-separated",
-    "risk-calibration-unavailable",
-    "risk-calibration-limited",
-    "frequency-assumed",
-];
-
-/// Each code once, at its first place: a repeated code (bagging refits the
-/// stage once per draw) keeps its first message and says how many more.
-pub(crate) fn merge_repeated_warnings(warnings: &mut Vec<Warning>) {
-    let mut merged: Vec<(Warning, usize)> = Vec::with_capacity(warnings.len());
-    for w in warnings.drain(..) {
-        match merged.iter_mut().find(|(m, _)| m.code == w.code) {
-            Some((_, more)) => *more += 1,
-            None => merged.push((w, 0)),
-        }
-    }
-    warnings.extend(merged.into_iter().map(|(mut w, more)| {
-        if more > 0 {
-            w.message.push_str(&format!(" (and {more} more like it)"));
-        }
-        w
-    }));
-}
-
-/// What a warning code means, in one line (the report's warning table).
-pub fn warning_meaning(code: &str) -> &'static str {
-    match code {
-        "factors-excluded" => "some factors were left out (missing values, no variance, or spanned by the market)",
-        "short-window" => "fewer than twice as many periods as factors: estimates are noisy",
-        "return-scale" => "returns look like percentages, not decimals (0.01 means 1%)",
-        "components-at-grid-edge" => "cross-validation chose the largest K it may: raise max_components",
-        "kappa-at-grid-edge" => "cross-validation chose an end of the κ grid: the grid, not the data, decided",
-        "components-capped-by-rank" => "the window's rank allowed fewer components than asked",
-        "singular-covariance" => "the covariance is singular: the plug-in used the minimum-norm solution",
-        "solver-not-converged" => "a solver stopped at its iteration limit; its answer meets the limits",
-        "forced-sale-over-turnover" => {
-            "held positions without returns in the window were sold above max_turnover; the limit applied to the other trades"
-        }
-        "previous-weights-unknown-factor" => "a previous weight names a factor not in the window: it is sold",
-        "model-no-edge" => "the model's own Sharpe ratio was not positive: trades are priced at a floor",
-        "solver-reduced-accuracy" => "the implementation solver reached only reduced accuracy",
-        "ill-conditioned-covariance" => "the covariance is nearly singular (condition number above 1e10)",
-        "components-not-separated" => "two eigenvalues tie: the K-component subspace is arbitrary",
-        "risk-calibration-unavailable" => "no fold measured out-of-sample risk: the in-window volatility is the target",
-        "risk-calibration-limited" => "the risk calibration was held at its limit of 1/4 or 4",
-        "frequency-assumed" => "no period labels and no periods_per_year: monthly was assumed",
-        _ => "a condition the fit reported",
-    }
-}
-
-/// A condition worth knowing; the weights are still valid.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct Warning {
-    /// Stable code.
-    pub code: &'static str,
-    /// Explanation.
-    pub message: String,
-}
-
-/// A factor left out.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct ExcludedReport {
-    /// Factor name.
-    pub factor: String,
-    /// Stable code.
-    pub code: &'static str,
-    /// Explanation.
-    pub reason: String,
-}
-
-/// Overall diagnostics (SPEC §8).
-#[derive(Clone, Debug, PartialEq)]
-pub struct Diagnostics {
-    /// Components used (0 for the baselines).
-    pub num_components: usize,
-    /// Annualised κ used (0 for the baselines).
-    pub kappa: f64,
-    /// Ridge penalty γ.
-    pub gamma: f64,
-    /// K chosen by CV.
-    pub components_cross_validated: bool,
-    /// κ chosen by CV.
-    pub kappa_cross_validated: bool,
-    /// The CV surface (components method only).
-    pub cv_surface: Option<CvSurface>,
-    /// Best CV score.
-    pub cv_best_score: f64,
-    /// Mean held-out annualised Sharpe ratio at the chosen point.
-    pub cv_sharpe: f64,
-    /// In-window annualised Sharpe ratio.
-    pub in_sample_sharpe: f64,
-    /// Ex-ante annualised volatility.
-    pub ex_ante_volatility: f64,
-    /// 1/Σ(|w_i|/Σ|w_j|)².
-    pub effective_factors: f64,
-    /// Gross-weight share of the ⌈0.3N⌉ highest-Sharpe factors.
-    pub top_sharpe_gross_share: f64,
-    /// Σ|w − w_prev| + |w_m − w_m,prev| when previous weights were given.
-    pub turnover: Option<f64>,
-    /// Condition number of Σ (infinite when singular).
-    pub covariance_condition_number: f64,
-    /// Factors left out.
-    pub excluded: Vec<ExcludedReport>,
-    /// Warnings.
-    pub warnings: Vec<Warning>,
-    /// Periods in the window.
-    pub periods: usize,
-    /// Factors used.
-    pub factors_used: usize,
-    /// The implementation stage (SPEC §10), when a limit or a cost is set.
-    pub implementation: Option<Implementation>,
-    /// The scaling cross-validation chose, with `scaling = auto` (SPEC §11).
-    pub chosen_scaling: Option<Scaling>,
-    /// Each scaling's best score, K and κ, with `scaling = auto` or `method = ensemble`.
-    pub scaling_scores: Vec<ScalingScore>,
-    /// The stationary bootstrap (SPEC §11), when `bootstrap_draws` > 0.
-    pub bootstrap: Option<super::bootstrap::BootstrapReport>,
-    /// The out-of-sample risk calibration (SPEC §13), with
-    /// `normalization = target-volatility` and `risk_calibration` on.
-    pub risk_calibration: Option<Calibration>,
-    /// Periods per year in force (SPEC §13).
-    pub periods_per_year: u32,
-    /// Where that frequency came from.
-    pub frequency: super::frequency::FrequencySource,
-}
-
-/// One scaling's best cross-validation score (SPEC §11).
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct ScalingScore {
-    /// The scaling.
-    pub scaling: Scaling,
-    /// Its best mean held-out score.
-    pub best_score: f64,
-    /// K at that score.
-    pub components: usize,
-    /// Annualised κ at that score.
-    pub kappa: f64,
-}
-
-/// Weights and diagnostics for one window: the estimator's answer.
-#[derive(Clone, Debug, PartialEq)]
-pub struct WeightSet {
-    /// One entry per panel factor, in panel order.
-    pub factors: Vec<FactorReport>,
-    /// Implemented market hedge weight.
-    pub market_weight: f64,
-    /// The model's market hedge weight.
-    pub model_market_weight: f64,
-    /// Components used, in order.
-    pub components: Vec<ComponentReport>,
-    /// Overall diagnostics.
-    pub diagnostics: Diagnostics,
-    /// `sha256:` hash of the window and the settings.
-    pub fingerprint: String,
-    /// Estimator version.
-    pub estimator_version: &'static str,
-    /// Settings in force.
-    pub settings: Settings,
-}
 
 /// What the components method decided, for the diagnostics.
 pub(crate) struct ComponentModel {
@@ -314,7 +95,7 @@ pub(crate) fn assemble(
     // Concentration diagnostics.
     let gross: f64 = w.iter().map(|x| x.abs()).sum();
     let effective_factors = 1.0 / w.iter().map(|x| (x.abs() / gross).powi(2)).sum::<f64>();
-    let top_sharpe_gross_share = top_sharpe_share(w, &sharpe_ann);
+    let top_sharpe_gross_share = desk::top_sharpe_share(w, &sharpe_ann);
     let in_sample_sharpe = match implemented {
         None => scaled.in_sample_sharpe(p),
         Some(_) => {
@@ -362,7 +143,7 @@ pub(crate) fn assemble(
         diagnostics,
         // Filled by the caller (`fit_with_phases`), which may hash beside the fit.
         fingerprint: String::new(),
-        estimator_version: super::ESTIMATOR_VERSION,
+        estimator_version: ESTIMATOR_VERSION,
         settings: settings.settings().clone(),
     })
 }
@@ -374,16 +155,6 @@ fn risk_variance(mom: &Moments, settings: &ValidSettings, w: &[f64]) -> f64 {
         h if h > 0.0 => mom.portfolio_variance_ew(w, h),
         _ => mom.portfolio_variance(w),
     }
-}
-
-/// Share of gross weight in the ⌈0.3N⌉ factors of highest Sharpe ratio (SPEC §8).
-pub(crate) fn top_sharpe_share(w: &[f64], sharpe: &[f64]) -> f64 {
-    let n = w.len();
-    let gross: f64 = w.iter().map(|x| x.abs()).sum();
-    let top = (0.3 * n as f64).ceil() as usize;
-    let mut order: Vec<usize> = (0..n).collect();
-    order.sort_by(|&a, &b| sharpe[b].total_cmp(&sharpe[a]));
-    order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross
 }
 
 /// The implementation stage (SPEC §10) for the scaled model portfolio, from
@@ -447,7 +218,7 @@ fn calibrate(
             Some(h) => (h.measured, h.standard_error, h.periods, 1.0 / h.corrected),
             None => {
                 warnings.push(Warning {
-                    code: "risk-calibration-unavailable",
+                    code: WarningCode::RiskCalibrationUnavailable,
                     message: "no cross-validation fold gave a portfolio with variance; the in-window volatility \
                               is the target"
                         .into(),
@@ -459,7 +230,7 @@ fn calibrate(
             Some(f) => (1.0 / f, f64::NAN, 0, f),
             None => {
                 warnings.push(Warning {
-                    code: "risk-calibration-unavailable",
+                    code: WarningCode::RiskCalibrationUnavailable,
                     message: "the Ledoit–Wolf variance of the portfolio is not usable; the in-window volatility \
                               is the target"
                         .into(),
@@ -471,7 +242,7 @@ fn calibrate(
     let (factor, limited) = calibration::limit(raw);
     if limited {
         warnings.push(Warning {
-            code: "risk-calibration-limited",
+            code: WarningCode::RiskCalibrationLimited,
             message: format!(
                 "the risk calibration asked for a factor of {raw:.3}; it is held at {factor} (the documented limit)"
             ),
@@ -618,7 +389,7 @@ fn data_warnings(window: &ReturnWindow, mom: &Moments, excluded: usize, warnings
     let (n, t) = (window.factors_used(), window.periods());
     if excluded > 0 {
         warnings.push(Warning {
-            code: "factors-excluded",
+            code: WarningCode::FactorsExcluded,
             message: format!("{excluded} of {} factors were excluded; see `excluded`", window.names.len()),
         });
     }
@@ -628,14 +399,14 @@ fn data_warnings(window: &ReturnWindow, mom: &Moments, excluded: usize, warnings
     let median_sd = sds[sds.len() / 2];
     if median_sd > 1.0 {
         warnings.push(Warning {
-            code: "return-scale",
+            code: WarningCode::ReturnScale,
             message: format!(
                 "the median factor volatility is {median_sd:.3} per period: returns look like percent, not decimals (0.01 = 1%)"
             ),
         });
     } else if median_sd < 1e-6 {
         warnings.push(Warning {
-            code: "return-scale",
+            code: WarningCode::ReturnScale,
             message: format!(
                 "the median factor volatility is {median_sd:.3e} per period: check the units of the returns"
             ),
@@ -643,7 +414,7 @@ fn data_warnings(window: &ReturnWindow, mom: &Moments, excluded: usize, warnings
     }
     if t < 2 * n {
         warnings.push(Warning {
-            code: "short-window",
+            code: WarningCode::ShortWindow,
             message: format!(
                 "{t} periods for {n} factors (fewer than 2N): sample covariances are noisy; expect heavy shrinkage"
             ),
@@ -683,7 +454,7 @@ fn condition_number(mom: &Moments, model: Option<&ComponentModel>, t: usize, n: 
 fn spectrum_warnings(model: Option<&ComponentModel>, cond: f64, t: usize, n: usize, warnings: &mut Vec<Warning>) {
     if t > n && cond > ILL_CONDITIONED {
         warnings.push(Warning {
-            code: "ill-conditioned-covariance",
+            code: WarningCode::IllConditionedCovariance,
             message: format!(
                 "the factor covariance has condition number {cond:.2e} (above {ILL_CONDITIONED:.0e}): some factors are nearly collinear, and weights along the weakest directions are unreliable"
             ),
@@ -699,7 +470,7 @@ fn spectrum_warnings(model: Option<&ComponentModel>, cond: f64, t: usize, n: usi
         && lk - lnext <= EIGEN_TIE_RELATIVE * l1
     {
         warnings.push(Warning {
-            code: "components-not-separated",
+            code: WarningCode::ComponentsNotSeparated,
             message: format!(
                 "eigenvalues {} and {} are equal to within {EIGEN_TIE_RELATIVE:.0e} of the largest ({lk:.6e} vs {lnext:.6e}): the first {} components are not uniquely determined; choose a K at a gap in the spectrum",
                 m.k,
@@ -807,7 +578,7 @@ impl Previous {
         }
         if let Some(first) = unknown.first() {
             warnings.push(Warning {
-                code: "previous-weights-unknown-factor",
+                code: WarningCode::PreviousWeightsUnknownFactor,
                 message: format!(
                     "{} previous weight(s) name factors not in the window (first: \"{}\"); they count as sold",
                     unknown.len(),
@@ -910,37 +681,16 @@ mod tests {
     #[test]
     fn repeated_warning_codes_are_listed_once() {
         let w = |code, message: &str| super::Warning { code, message: message.to_owned() };
-        let mut ws =
-            vec![w("model-no-edge", "a"), w("short-window", "b"), w("model-no-edge", "c"), w("model-no-edge", "d")];
-        super::merge_repeated_warnings(&mut ws);
-        assert_eq!(ws.iter().map(|w| w.code).collect::<Vec<_>>(), ["model-no-edge", "short-window"]);
+        let mut ws = vec![
+            w(crate::estimator::WarningCode::ModelNoEdge, "a"),
+            w(crate::estimator::WarningCode::ShortWindow, "b"),
+            w(crate::estimator::WarningCode::ModelNoEdge, "c"),
+            w(crate::estimator::WarningCode::ModelNoEdge, "d"),
+        ];
+        crate::estimator::warning::merge_repeated_warnings(&mut ws);
+        assert_eq!(ws.iter().map(|w| w.code.word()).collect::<Vec<_>>(), ["model-no-edge", "short-window"]);
         assert_eq!(ws[0].message, "a (and 2 more like it)");
         assert_eq!(ws[1].message, "b");
-    }
-
-    /// `WARNING_CODES` (what `--fail-on` accepts) is every code the estimator raises.
-    #[test]
-    fn the_warning_code_list_is_complete() {
-        let sources =
-            [include_str!("mod.rs"), include_str!("weights.rs"), include_str!("desk.rs"), include_str!("frequency.rs")];
-        let mut raised = Vec::new();
-        for src in sources {
-            // The code before the tests: each `code: ...` to the end of its line, its string literals.
-            let body = src.split("#[cfg(test)]").next().unwrap_or_default();
-            for piece in body.split("code: ").skip(1) {
-                let line = piece.lines().next().unwrap_or_default();
-                raised.extend(line.split('"').skip(1).step_by(2).map(str::to_owned));
-            }
-        }
-        raised.sort();
-        raised.dedup();
-        for code in &raised {
-            assert!(super::WARNING_CODES.contains(&code.as_str()), "{code} is raised but not listed");
-        }
-        for code in super::WARNING_CODES {
-            assert!(raised.iter().any(|c| c == code), "{code} is listed but never raised");
-            assert_ne!(super::warning_meaning(code), super::warning_meaning("no-such-code"), "{code} has no meaning");
-        }
     }
 
     fn fitted(edit: impl FnOnce(&mut Settings)) -> super::WeightSet {

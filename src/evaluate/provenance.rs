@@ -58,7 +58,7 @@ impl Provenance {
             market: panel
                 .market
                 .as_ref()
-                .map(|_| panel.market_name.clone().unwrap_or_else(|| super::MARKET.to_owned())),
+                .map(|_| panel.market_name.clone().unwrap_or_else(|| super::strategies::MARKET.to_owned())),
             configured: configured_meaning(configured, source),
         }
     }

@@ -7,7 +7,8 @@
 
 use serde::Serialize;
 
-use super::{BacktestError, MARKET, strategies};
+use super::error::BacktestError;
+use super::strategies::{MARKET, strategies};
 use crate::estimator::{InputError, ReturnPanel, ValidSettings, window};
 
 /// Largest K of the sweep when the caller does not set one.
@@ -276,16 +277,16 @@ fn estimate(
     let refits = out_of_sample.div_ceil(s.step as u64);
     let catalogue = strategies(settings, panel.market.is_some(), s.baselines);
     let strategies = catalogue.len() as u64;
-    let sweep_scalings = super::sweep_scalings(settings, sweep_max_k).len() as u64;
+    let sweep_scalings = super::strategies::sweep_scalings(settings, sweep_max_k).len() as u64;
     let k_sweep = sweep_max_k as u64;
     // Bagging refits every strategy once per bootstrap draw as well.
     let draws =
         if settings.aggregate == crate::estimator::Aggregate::Bagged { u64::from(settings.bootstrap_draws) } else { 0 };
-    let per_date: u64 = catalogue.iter().map(|st| super::fit_steps(st.settings.as_ref()) as u64).sum();
+    let per_date: u64 = catalogue.iter().map(|st| super::strategies::fit_steps(st.settings.as_ref()) as u64).sum();
     // The implementation stage runs per date on every fitted strategy but
     // the model-portfolio row, when the configured settings set a limit or a cost.
     let staged = if settings.implementation_active() {
-        catalogue.iter().filter(|st| st.name != super::MODEL && st.settings.is_some()).count() as u64
+        catalogue.iter().filter(|st| st.name != super::strategies::MODEL && st.settings.is_some()).count() as u64
     } else {
         0
     };

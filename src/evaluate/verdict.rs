@@ -2,7 +2,8 @@
 //! costs, by how much, with what adjusted confidence, the deflated Sharpe
 //! ratio over the distinct trials, and the portfolio to hold.
 
-use super::{BacktestResult, CONFIGURED, Comparison, StrategyResult};
+use super::results::{BacktestResult, Comparison, StrategyResult};
+use super::strategies::CONFIGURED;
 
 /// The verdict's figures and its text.
 #[derive(Clone, Debug, PartialEq)]

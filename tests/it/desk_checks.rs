@@ -408,7 +408,7 @@ fn a_forced_sale_over_the_turnover_budget_is_made_with_a_warning() {
         s.max_turnover = Cap::At(0.5);
     });
     let ws = estimator::fit(&p, &s.check().unwrap()).unwrap();
-    let codes: Vec<&str> = ws.diagnostics.warnings.iter().map(|w| w.code).collect();
+    let codes: Vec<&str> = ws.diagnostics.warnings.iter().map(|w| w.code.word()).collect();
     assert!(codes.contains(&"forced-sale-over-turnover"), "{codes:?}");
     let imp = ws.diagnostics.implementation.unwrap();
     assert!(imp.turnover > 0.8 && imp.turnover <= 0.8 + 0.5 + 1e-9, "{}", imp.turnover);

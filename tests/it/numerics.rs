@@ -6,7 +6,7 @@ use keelson::demo::synthetic_panel;
 use keelson::estimator::{self, Choice, Method, ReturnPanel, Scaling, Settings, WeightSet};
 
 fn codes(ws: &WeightSet) -> Vec<&'static str> {
-    ws.diagnostics.warnings.iter().map(|w| w.code).collect()
+    ws.diagnostics.warnings.iter().map(|w| w.code.word()).collect()
 }
 
 fn finite(ws: &WeightSet) -> bool {
