@@ -1,8 +1,6 @@
 //! Normalisation of a portfolio direction into weights and the market hedge
 //! (SPEC §7), and every diagnostic of SPEC §8: the [`WeightSet`].
 
-use sha2::{Digest, Sha256};
-
 use super::basis::ComponentBasis;
 use super::calibration::{self, Calibration, HeldOutRatio};
 use super::cv::CvSurface;
@@ -11,7 +9,7 @@ use super::desk::{self, Limits};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
 use super::output::{ComponentReport, Diagnostics, ESTIMATOR_VERSION, ExcludedReport, FactorReport, WeightSet};
-use super::settings::{Method, Normalization, RiskCalibration, Scaling, Settings, ValidSettings};
+use super::settings::{Method, Normalization, RiskCalibration, Scaling, ValidSettings};
 use super::stop::Stop;
 use super::warning::{Warning, WarningCode};
 use super::window::{ReturnPanel, ReturnWindow};
@@ -595,83 +593,6 @@ impl Previous {
         let hedge = if hedged { (market_weight - self.market).abs() } else { self.market.abs() };
         factors + hedge + self.outside
     }
-}
-
-/// Feeds `values` to `h` as little-endian IEEE bits (all NaNs alike; -0.0
-/// and 0.0 stay distinct like their bits), in blocks: the same bytes as one
-/// `update` per value, without the per-call overhead.
-fn put_f64s(h: &mut Sha256, values: &[f64]) {
-    let mut block = [0u8; 8 * 512];
-    for chunk in values.chunks(512) {
-        for (v, out) in chunk.iter().zip(block.chunks_exact_mut(8)) {
-            let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
-            out.copy_from_slice(&bits.to_le_bytes());
-        }
-        h.update(&block[..8 * chunk.len()]);
-    }
-}
-
-/// Feeds the history of `panel` (shape, names, labels, returns and market as
-/// little-endian IEEE bits, all NaNs alike) to `h`: the part of a
-/// fingerprint that identifies the data.
-pub(crate) fn hash_history(h: &mut Sha256, panel: &ReturnPanel) {
-    let put_str = |h: &mut Sha256, s: &str| {
-        h.update((s.len() as u64).to_le_bytes());
-        h.update(s.as_bytes());
-    };
-    h.update((panel.rows as u64).to_le_bytes());
-    h.update((panel.cols as u64).to_le_bytes());
-    for n in &panel.factor_names {
-        put_str(h, n);
-    }
-    h.update((panel.period_labels.len() as u64).to_le_bytes());
-    for l in &panel.period_labels {
-        put_str(h, l);
-    }
-    put_f64s(h, &panel.returns);
-    match &panel.market {
-        Some(m) => {
-            h.update([1]);
-            put_f64s(h, m);
-        }
-        None => h.update([0]),
-    }
-}
-
-/// SHA-256 over a canonical encoding of the window and the settings: equal
-/// inputs give equal fingerprints on every platform.
-pub(crate) fn fingerprint(panel: &ReturnPanel, settings: &Settings) -> String {
-    let mut h = Sha256::new();
-    h.update(b"keelson-window-v1\0");
-    let put_str = |h: &mut Sha256, s: &str| {
-        h.update((s.len() as u64).to_le_bytes());
-        h.update(s.as_bytes());
-    };
-    let put_f64 = |h: &mut Sha256, v: f64| {
-        // All NaNs hash alike; -0.0 and 0.0 stay distinct like their bits.
-        let bits = if v.is_nan() { f64::NAN.to_bits() } else { v.to_bits() };
-        h.update(bits.to_le_bytes());
-    };
-    hash_history(&mut h, panel);
-    // The market's name matters only to find the hedge among previous weights.
-    if let Some(n) = panel.market_name.as_ref().filter(|_| !panel.previous_weights.is_empty()) {
-        put_str(&mut h, "market_name");
-        put_str(&mut h, n);
-    }
-    h.update((panel.previous_weights.len() as u64).to_le_bytes());
-    for (n, w) in &panel.previous_weights {
-        put_str(&mut h, n);
-        put_f64(&mut h, *w);
-    }
-    let settings_json = serde_json::to_string(settings).unwrap_or_default();
-    put_str(&mut h, &settings_json);
-    let digest = h.finalize();
-    let mut out = String::with_capacity(7 + 64);
-    out.push_str("sha256:");
-    for b in digest {
-        out.push_str(&format!("{b:02x}"));
-    }
-    out
 }
 
 #[cfg(test)]

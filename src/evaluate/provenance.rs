@@ -6,6 +6,8 @@
 use serde::Serialize;
 use sha2::{Digest as _, Sha256};
 
+use crate::estimator::fingerprint;
+pub use crate::estimator::fingerprint::sha256_hex;
 use crate::estimator::{self, ReturnPanel, ValidSettings};
 
 /// Provenance of one backtest.
@@ -85,21 +87,8 @@ pub fn configured_meaning(configured: &ValidSettings, source: &str) -> String {
 pub fn history_sha256(panel: &ReturnPanel) -> String {
     let mut h = Sha256::new();
     h.update(b"keelson-history-v1\0");
-    crate::estimator::weights::hash_history(&mut h, panel);
-    hex(&h.finalize())
-}
-
-/// SHA-256 of raw bytes, lower-case hex.
-pub fn sha256_hex(bytes: &[u8]) -> String {
-    hex(&Sha256::digest(bytes))
-}
-
-fn hex(digest: &[u8]) -> String {
-    use std::fmt::Write as _;
-    digest.iter().fold(String::with_capacity(64), |mut s, b| {
-        let _ = write!(s, "{b:02x}");
-        s
-    })
+    fingerprint::hash_history(&mut h, panel);
+    fingerprint::hex(&h.finalize())
 }
 
 /// `t` as `YYYY-MM-DDTHH:MM:SSZ` (proleptic Gregorian calendar).
