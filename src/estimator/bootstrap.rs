@@ -13,7 +13,7 @@ use super::error::EstimateError;
 pub use super::moments::quantile;
 use super::options::FitOptions;
 use super::output::{BootstrapReport, FactorInterval, WeightSet};
-use super::settings::{Aggregate, Cap, Choice, Method, RiskCalibration, Scaling, Settings, ValidSettings};
+use super::settings::{Aggregate, FittedChoice, Settings, ValidSettings};
 use super::window::ReturnPanel;
 
 /// SplitMix64 (Steele, Lea & Flood 2014): small, fast, and fully reproducible.
@@ -73,41 +73,6 @@ pub fn mean_block(settings: &Settings, t: usize) -> f64 {
     if settings.bootstrap_block > 0.0 { settings.bootstrap_block } else { (t as f64).cbrt().ceil() }
 }
 
-/// The settings of every draw: the model alone (no limits, no nested
-/// bootstrap, no held-out check) and, unless `bootstrap_cv`, the fitted
-/// choice of scaling, K and κ fixed.
-fn draw_settings(settings: &ValidSettings, point: &WeightSet) -> Result<ValidSettings, EstimateError> {
-    let mut s: Settings = settings.settings().clone();
-    s.bootstrap_draws = 0;
-    s.aggregate = Aggregate::Point;
-    s.max_weight = Cap::Off;
-    s.max_gross = Cap::Off;
-    s.max_market_weight = Cap::Off;
-    s.max_turnover = Cap::Off;
-    s.cost_bps = 0.0;
-    s.held_out_check = false;
-    // The draws' folds would only re-measure the risk calibration: each draw
-    // takes the point fit's factor instead (see `run`).
-    s.risk_calibration = RiskCalibration::Off;
-    let d = &point.diagnostics;
-    if !s.bootstrap_cv {
-        match s.method {
-            Method::Components => {
-                if s.scaling == Scaling::Auto
-                    && let Some(chosen) = d.chosen_scaling
-                {
-                    s.scaling = chosen;
-                }
-                s.components = Choice::Fixed(d.num_components as u32);
-                s.kappa = Choice::Fixed(d.kappa);
-            }
-            Method::KnsRidge | Method::Blend => s.kappa = Choice::Fixed(d.kappa),
-            Method::Ensemble | Method::PlugIn | Method::PlugInLedoitWolf | Method::EqualWeight => {}
-        }
-    }
-    Ok(s.check()?)
-}
-
 /// One resampled panel: the rows `idx` of `panel`, without labels (a
 /// resample has no calendar) or previous weights.
 fn resample(panel: &ReturnPanel, idx: &[usize]) -> ReturnPanel {
@@ -146,7 +111,9 @@ pub fn run(
     fit: &(dyn Fn(&ReturnPanel, &ValidSettings, &FitOptions) -> Result<WeightSet, EstimateError> + Sync),
 ) -> Result<(BootstrapReport, Vec<f64>), EstimateError> {
     let draws = settings.bootstrap_draws as usize;
-    let s = draw_settings(settings, point)?;
+    let d = &point.diagnostics;
+    let fixed = FittedChoice { scaling: d.chosen_scaling, components: d.num_components, kappa: d.kappa };
+    let s = settings.for_draw((!settings.bootstrap_cv).then_some(fixed));
     let block = mean_block(settings, panel.rows);
     let seed = settings.seed;
     // The point fit's risk calibration (SPEC §13) scales every draw alike.

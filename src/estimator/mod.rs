@@ -44,8 +44,8 @@ pub use output::{
     ComponentReport, Diagnostics, ESTIMATOR_VERSION, ExcludedReport, FactorReport, ScalingScore, WeightSet,
 };
 pub use settings::{
-    Aggregate, Cap, Choice, CvCriterion, MIN_LIMIT, Method, MissingPolicy, Normalization, RiskCalibration, Scaling,
-    SettingInfo, Settings, SettingsPatch, ValidSettings, closest_name,
+    Aggregate, Cap, Choice, CvCriterion, FittedChoice, MIN_LIMIT, Method, MissingPolicy, Normalization,
+    RiskCalibration, Scaling, SettingInfo, Settings, SettingsPatch, ValidSettings, closest_name,
 };
 pub use shrinkage::{LedoitWolf, PlugIn, ShrinkagePath, kns_gamma, plug_in, plug_in_ledoit_wolf};
 pub use stop::Stop;

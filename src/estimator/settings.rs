@@ -668,6 +668,17 @@ pub fn closest_name(word: &str, names: &[&'static str]) -> Option<&'static str> 
     (d <= 3 && d * 3 <= word.chars().count().max(3)).then_some(best)
 }
 
+/// The choices a fit made, fixed for the bootstrap's draws.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct FittedChoice {
+    /// The scaling `auto` chose, if any.
+    pub scaling: Option<Scaling>,
+    /// K.
+    pub components: usize,
+    /// κ, annualised.
+    pub kappa: f64,
+}
+
 /// Settings that passed [`Settings::check`]: the only form the estimator takes.
 #[derive(Clone, Debug, PartialEq)]
 pub struct ValidSettings {
@@ -692,6 +703,57 @@ impl ValidSettings {
     pub(crate) fn trusted(inner: Settings) -> ValidSettings {
         debug_assert!(inner.clone().check().is_ok());
         ValidSettings { inner }
+    }
+
+    /// The model portfolio's settings: the implementation stage off (no
+    /// limit, no cost) and, with point aggregation, no bootstrap (intervals
+    /// at every refit serve no one; bagging changes the weights and stays).
+    /// Turning a limit, the cost or the bootstrap off never leaves a range:
+    /// valid by construction, no second check.
+    pub fn model_only(&self) -> ValidSettings {
+        let mut m = self.inner.clone();
+        m.max_weight = Cap::Off;
+        m.max_gross = Cap::Off;
+        m.max_market_weight = Cap::Off;
+        m.max_turnover = Cap::Off;
+        m.cost_bps = 0.0;
+        if m.aggregate == Aggregate::Point {
+            m.bootstrap_draws = 0;
+        }
+        ValidSettings::trusted(m)
+    }
+
+    /// The settings of one bootstrap draw (SPEC §11): the model alone (no
+    /// limits, no nested bootstrap, no held-out check, no risk calibration of
+    /// its own: each draw takes the point fit's) and, when `fixed` holds the
+    /// point fit's choices, those choices fixed. `fixed` comes from a fit of
+    /// these settings, so K ∈ [1, max_components] and κ on the grid inside
+    /// (0, 100]: valid by construction.
+    pub fn for_draw(&self, fixed: Option<FittedChoice>) -> ValidSettings {
+        let mut s = self.model_only().inner;
+        s.bootstrap_draws = 0;
+        s.aggregate = Aggregate::Point;
+        s.held_out_check = false;
+        s.risk_calibration = RiskCalibration::Off;
+        if let Some(f) = fixed {
+            match s.method {
+                Method::Components => {
+                    if let Some(chosen) = f.scaling.filter(|_| s.scaling == Scaling::Auto) {
+                        s.scaling = chosen;
+                    }
+                    s.components = Choice::Fixed(f.components as u32);
+                    s.kappa = Choice::Fixed(f.kappa);
+                }
+                Method::KnsRidge | Method::Blend => s.kappa = Choice::Fixed(f.kappa),
+                Method::Ensemble | Method::PlugIn | Method::PlugInLedoitWolf | Method::EqualWeight => {}
+            }
+        }
+        ValidSettings::trusted(s)
+    }
+
+    /// The same settings with another concrete scaling (every scaling is in range).
+    pub fn with_scaling(&self, scaling: Scaling) -> ValidSettings {
+        ValidSettings::trusted(Settings { scaling, ..self.inner.clone() })
     }
 
     /// Periods per year in force: the value set or resolved for a panel
@@ -738,6 +800,40 @@ impl ValidSettings {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn derived_settings_are_valid_and_change_only_what_they_say() {
+        let base = Settings {
+            max_weight: Cap::At(0.1),
+            max_turnover: Cap::At(0.5),
+            cost_bps: 10.0,
+            bootstrap_draws: 50,
+            method: Method::Components,
+            scaling: Scaling::Auto,
+            ..Settings::default()
+        }
+        .check()
+        .unwrap();
+        let model = base.model_only();
+        assert_eq!(model.max_weight, Cap::Off);
+        assert_eq!(model.max_turnover, Cap::Off);
+        assert_eq!(model.cost_bps, 0.0);
+        assert_eq!(model.bootstrap_draws, 0, "point aggregation: no intervals at every refit");
+        assert!(model.settings().clone().check().is_ok());
+        let bagged = Settings { aggregate: Aggregate::Bagged, ..base.settings().clone() }.check().unwrap();
+        assert_eq!(bagged.model_only().bootstrap_draws, 50, "bagging changes the weights and stays");
+        let fixed = FittedChoice { scaling: Some(Scaling::Covariance), components: 4, kappa: 0.37 };
+        let draw = base.for_draw(Some(fixed));
+        assert_eq!(
+            (draw.scaling, draw.components, draw.kappa),
+            (Scaling::Covariance, Choice::Fixed(4), Choice::Fixed(0.37))
+        );
+        assert!(!draw.held_out_check && draw.bootstrap_draws == 0 && draw.risk_calibration == RiskCalibration::Off);
+        assert!(draw.settings().clone().check().is_ok());
+        let free = base.for_draw(None);
+        assert_eq!((free.scaling, free.components), (Scaling::Auto, Choice::Auto));
+        assert_eq!(base.with_scaling(Scaling::Standardized).scaling, Scaling::Standardized);
+    }
 
     #[test]
     fn settings_in_force_follow_the_method() {

@@ -22,9 +22,7 @@ pub use inference::{ROMANO_WOLF_DRAWS, SPANNED_R2};
 pub use provenance::Provenance;
 pub use results::*;
 pub use spec::{BacktestBudget, BacktestSpec, ValidBacktestSpec};
-pub use strategies::{
-    CONFIGURED, ConstraintSet, KNS_PUBLISHED, KNS_SHARPE, MARKET, MODEL, Strategy, model_settings, strategies,
-};
+pub use strategies::{CONFIGURED, ConstraintSet, KNS_PUBLISHED, KNS_SHARPE, MARKET, MODEL, Strategy, strategies};
 
 use std::sync::atomic::AtomicUsize;
 

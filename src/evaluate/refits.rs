@@ -7,7 +7,7 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use super::error::BacktestError;
 use super::results::{LatestFit, Progress};
 use super::spec::ValidBacktestSpec;
-use super::strategies::{MARKET, MODEL, Strategy, fit_steps, model_settings, strategies, sweep_scalings};
+use super::strategies::{MARKET, MODEL, Strategy, fit_steps, strategies, sweep_scalings};
 use crate::estimator::desk::{DeskWindow, Holdings};
 use crate::estimator::{self, EstimateError, FitOptions, ReturnPanel, Scaling, Stop, ValidSettings, WeightSet};
 
@@ -195,7 +195,7 @@ pub(super) fn fit_date(
             Some(settings) => {
                 // The model portfolios are fitted here, in parallel over dates; the
                 // implementation stage runs after, date by date (see `implement_all`).
-                let settings = &model_settings(settings);
+                let settings = &settings.model_only();
                 let ws = estimator::fit_unhashed(&window, settings, &opts).map_err(|e| wrap(&s.name, e))?;
                 // Only the configured fits feed the pricing test: the others keep no loadings.
                 if i == 0 { held_from(&ws) } else { held_weights(&ws) }
@@ -206,9 +206,7 @@ pub(super) fn fit_date(
     let mut sweep = Vec::with_capacity(plan.sweep_scalings.len());
     let mut basis = None;
     for &sc in &plan.sweep_scalings {
-        let mut s = configured.settings().clone();
-        s.scaling = sc;
-        let settings = model_settings(&s.check().map_err(|e| wrap("sweep", e.into()))?);
+        let settings = configured.with_scaling(sc).model_only();
         let fits =
             estimator::fit_component_sweep(&window, &settings, &plan.sweep_ks, &opts).map_err(|e| wrap("sweep", e))?;
         // The fixed-K fits of one window share one basis, so the largest

@@ -5,9 +5,7 @@
 use serde::Serialize;
 
 use crate::estimator::desk::Limits;
-use crate::estimator::{
-    self, Aggregate, Cap, Choice, CvCriterion, Method, Normalization, Scaling, Settings, ValidSettings,
-};
+use crate::estimator::{self, Choice, CvCriterion, Method, Normalization, Scaling, Settings, ValidSettings};
 
 /// Name of the market as a benchmark and as a strategy.
 pub const MARKET: &str = "market";
@@ -26,21 +24,6 @@ pub const CONFIGURED: &str = "configured";
 /// Name of the configured method's unconstrained model portfolio, a row of
 /// its own when limits or costs are set (SPEC §10).
 pub const MODEL: &str = "configured, model portfolio";
-
-/// The settings without the implementation stage: the model portfolio.
-pub fn model_settings(s: &ValidSettings) -> ValidSettings {
-    let mut m = s.settings().clone();
-    m.max_weight = Cap::Off;
-    m.max_gross = Cap::Off;
-    m.max_market_weight = Cap::Off;
-    m.max_turnover = Cap::Off;
-    m.cost_bps = 0.0;
-    // Intervals at every refit serve no one; bagging changes the weights and stays.
-    if m.aggregate == Aggregate::Point {
-        m.bootstrap_draws = 0;
-    }
-    m.check().unwrap_or_else(|_| s.clone())
-}
 
 /// The implementation limits of a backtest, as run (SPEC §10): the same for
 /// every fitted strategy.
@@ -102,7 +85,7 @@ pub fn strategies(configured: &ValidSettings, has_market: bool, baselines: bool)
         out.push(Strategy {
             id: "configured-model".into(),
             name: MODEL.into(),
-            settings: Some(model_settings(configured)),
+            settings: Some(configured.model_only()),
         });
     }
     if !baselines {
