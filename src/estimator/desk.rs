@@ -106,7 +106,72 @@ pub struct Problem<'a> {
     /// Periods per year, for the annualised diagnostics.
     pub periods_per_year: f64,
     /// Factor names, for the diagnostics and errors.
-    pub names: &'a [&'a str],
+    pub names: Vec<&'a str>,
+}
+
+/// Positions held before a fit, over the usable factors of its window.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Positions {
+    /// Previous weight of each usable factor.
+    pub used: Vec<f64>,
+    /// Previous hedge p_m (0 when none was held).
+    pub market: f64,
+    /// Σ|pᵢ| over positions in factors excluded from the window or not in
+    /// it: sold whatever the fit.
+    pub outside: f64,
+}
+
+impl Positions {
+    /// The positions `held` (a weight per panel factor and the hedge) over
+    /// the usable factors `used` (sorted panel columns) of a window.
+    pub fn over(used: &[usize], held: Holdings<'_>) -> Positions {
+        let outside =
+            (0..held.weights.len()).filter(|c| used.binary_search(c).is_err()).map(|c| held.weights[c].abs()).sum();
+        Positions { used: used.iter().map(|&c| held.weights[c]).collect(), market: held.market, outside }
+    }
+
+    /// Turnover no decision can avoid: the positions outside the window and,
+    /// without a hedge, the hedge held.
+    pub fn forced(&self, hedged: bool) -> f64 {
+        self.outside + if hedged { 0.0 } else { self.market.abs() }
+    }
+
+    /// Σ|wᵢ − pᵢ| + |w_m − p_m| + the forced sales: the one turnover formula
+    /// of the fit's diagnostics and the stage (SPEC §10).
+    pub fn turnover(&self, w: &[f64], market_weight: f64, hedged: bool) -> f64 {
+        traded(w, &self.used, hedged.then_some((market_weight, self.market)), self.forced(hedged))
+    }
+}
+
+impl<'a> Problem<'a> {
+    /// The stage's problem for the model weights `model` (over the window's
+    /// usable factors, annualised Sharpe ratio `model_sharpe`) from the
+    /// positions `held`, on a window, its moments and its Ledoit–Wolf Ω: the
+    /// one place the hedge, the forced sales and the per-period Sharpe ratio
+    /// are derived, for a fit and for each date of a backtest alike.
+    pub fn from_window(
+        window: &'a ReturnWindow,
+        mom: &'a Moments,
+        omega: &'a LedoitWolf,
+        settings: &ValidSettings,
+        model: &'a [f64],
+        model_sharpe: f64,
+        held: &'a Positions,
+    ) -> Problem<'a> {
+        let hedged = settings.demarket && window.market.is_some();
+        let p = f64::from(settings.periods_per_year());
+        Problem {
+            model,
+            beta: hedged.then_some(&mom.beta[..]),
+            omega,
+            previous: &held.used,
+            previous_market: held.market,
+            forced_turnover: held.forced(hedged),
+            model_sharpe: model_sharpe / p.sqrt(),
+            periods_per_year: p,
+            names: window.used.iter().map(|&c| window.names[c].as_str()).collect(),
+        }
+    }
 }
 
 /// How Ω enters the conic program.
@@ -429,9 +494,14 @@ fn dot(a: &[f64], b: &[f64]) -> f64 {
 
 /// Σ|wᵢ − pᵢ| + |w_m − p_m| + the forced sales.
 fn trades(problem: &Problem<'_>, w: &[f64], market_weight: f64) -> f64 {
-    let factors: f64 = w.iter().zip(problem.previous).map(|(a, b)| (a - b).abs()).sum();
-    let hedge = if problem.beta.is_some() { (market_weight - problem.previous_market).abs() } else { 0.0 };
-    factors + hedge + problem.forced_turnover
+    let hedge = problem.beta.map(|_| (market_weight, problem.previous_market));
+    traded(w, problem.previous, hedge, problem.forced_turnover)
+}
+
+/// Σ|wᵢ − pᵢ| + |w_m − p_m| (when hedged: `hedge` is (w_m, p_m)) + `forced`.
+fn traded(w: &[f64], previous: &[f64], hedge: Option<(f64, f64)>, forced: f64) -> f64 {
+    let factors: f64 = w.iter().zip(previous).map(|(a, b)| (a - b).abs()).sum();
+    factors + hedge.map_or(0.0, |(w_m, p_m)| (w_m - p_m).abs()) + forced
 }
 
 /// The turnover left for the stage's own trades: `max_turnover` less the
@@ -985,7 +1055,6 @@ pub struct DeskWindow {
     window: ReturnWindow,
     mom: Moments,
     omega: LedoitWolf,
-    hedged: bool,
 }
 
 /// Positions held: a weight per panel factor and the hedge.
@@ -1019,7 +1088,7 @@ impl DeskWindow {
         let hedged = settings.demarket && window.market.is_some();
         let mom = Moments::compute(window.returns.as_ref(), if hedged { window.market.as_deref() } else { None });
         let omega = LedoitWolf::new(&mom);
-        Ok(DeskWindow { window, mom, omega, hedged })
+        Ok(DeskWindow { window, mom, omega })
     }
 
     /// The implemented portfolio for model weights `model` (per panel
@@ -1056,27 +1125,13 @@ impl DeskWindow {
         stop: &Stop,
         warnings: &mut Vec<Warning>,
     ) -> Result<DeskAnswer, EstimateError> {
-        let Holdings { weights: previous, market: previous_market } = previous;
         let used = &self.window.used;
         let model_used: Vec<f64> = used.iter().map(|&c| model[c]).collect();
-        let previous_used: Vec<f64> = used.iter().map(|&c| previous[c]).collect();
-        let outside: f64 =
-            (0..previous.len()).filter(|c| used.binary_search(c).is_err()).map(|c| previous[c].abs()).sum();
-        let names: Vec<&str> = used.iter().map(|&c| self.window.names[c].as_str()).collect();
-        let p = f64::from(settings.periods_per_year());
-        let problem = Problem {
-            model: &model_used,
-            beta: self.hedged.then_some(&self.mom.beta[..]),
-            omega: &self.omega,
-            previous: &previous_used,
-            previous_market,
-            forced_turnover: outside + if self.hedged { 0.0 } else { previous_market.abs() },
-            model_sharpe: model_sharpe / p.sqrt(),
-            periods_per_year: p,
-            names: &names,
-        };
+        let held = Positions::over(used, previous);
+        let problem =
+            Problem::from_window(&self.window, &self.mom, &self.omega, settings, &model_used, model_sharpe, &held);
         let done = implement_in(&problem, &Limits::of(settings), form, stop, warnings)?;
-        let mut weights = vec![0.0; previous.len()];
+        let mut weights = vec![0.0; previous.weights.len()];
         for (j, &c) in used.iter().enumerate() {
             weights[c] = done.weights[j];
         }
@@ -1093,4 +1148,62 @@ pub(crate) fn top_sharpe_share(w: &[f64], sharpe: &[f64]) -> f64 {
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&a, &b| sharpe[b].total_cmp(&sharpe[a]));
     order[..top].iter().map(|&j| w[j].abs()).sum::<f64>() / gross
+}
+
+#[cfg(test)]
+mod tests {
+    use super::{DeskWindow, Holdings, Positions};
+    use crate::demo::{every_limit, synthetic_panel};
+    use crate::estimator::{Stop, fit};
+
+    /// The turnover of SPEC §10, Σ|wᵢ − pᵢ| + |w_m − p_m| + the forced
+    /// sales, worked by hand on three factors of which the middle one is
+    /// outside the window.
+    #[test]
+    fn positions_over_a_window_split_forced_sales_from_trades() {
+        let held = Positions::over(&[0, 2], Holdings { weights: &[0.1, -0.3, 0.2], market: 0.05 });
+        assert_eq!(held, Positions { used: vec![0.1, 0.2], market: 0.05, outside: 0.3 });
+        // Hedged: the hedge is traded, only the outside position is forced.
+        assert_eq!(held.forced(true), 0.3);
+        let hedged = held.turnover(&[0.0, 0.5], -0.1, true);
+        assert!((hedged - (0.1 + 0.3 + 0.15 + 0.3)).abs() < 1e-15, "{hedged}");
+        // Unhedged: the hedge held is closed, whatever the weights.
+        assert!((held.forced(false) - 0.35).abs() < 1e-15);
+        let unhedged = held.turnover(&[0.1, 0.2], 0.0, false);
+        assert!((unhedged - 0.35).abs() < 1e-15, "{unhedged}");
+    }
+
+    /// A fit with previous weights and a backtest date that prepares the same
+    /// window alone build one problem (`Problem::from_window`): given the
+    /// fit's model weights and model Sharpe ratio, the per-date stage
+    /// implements the same portfolio, hedge and turnover.
+    #[test]
+    fn the_fit_and_a_backtest_date_implement_the_same_portfolio() {
+        let mut panel = synthetic_panel(5, 120, 24);
+        let held: Vec<f64> = (0..24).map(|j| if j % 4 == 0 { 0.02 } else { 0.0 }).collect();
+        panel.previous_weights = panel.factor_names.iter().cloned().zip(held.iter().copied()).collect();
+        panel.previous_weights.push(("MKT".into(), 0.05));
+        let settings = every_limit().check().unwrap();
+        let fitted = fit(&panel, &settings).unwrap();
+        let stage = fitted.diagnostics.implementation.as_ref().expect("limits set: the stage runs");
+        let model: Vec<f64> = fitted.factors.iter().map(|f| f.model_weight).collect();
+        let desk = DeskWindow::new(&panel, &settings).unwrap();
+        let answer = desk
+            .implement(
+                &settings,
+                &model,
+                stage.model_sharpe,
+                Holdings { weights: &held, market: 0.05 },
+                &Stop::never(),
+                &mut Vec::new(),
+            )
+            .unwrap();
+        for (f, w) in fitted.factors.iter().zip(&answer.weights) {
+            assert!((f.weight - w).abs() < 1e-9, "{}: fit {} desk {w}", f.name, f.weight);
+        }
+        assert!((fitted.market_weight - answer.market_weight).abs() < 1e-9);
+        assert!((stage.turnover - answer.report.turnover).abs() < 1e-9);
+        assert_eq!(fitted.diagnostics.turnover, Some(stage.turnover));
+        assert!((fitted.diagnostics.top_sharpe_gross_share - answer.top_sharpe_gross_share).abs() < 1e-9);
+    }
 }

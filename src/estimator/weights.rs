@@ -5,7 +5,7 @@ use super::basis::ComponentBasis;
 use super::calibration::{self, Calibration, HeldOutRatio};
 use super::cv::CvSurface;
 use super::dense;
-use super::desk::{self, Limits};
+use super::desk::{self, Limits, Positions};
 use super::error::{EstimateError, InputError, Location};
 use super::moments::Moments;
 use super::output::{ComponentReport, Diagnostics, ESTIMATOR_VERSION, ExcludedReport, FactorReport, WeightSet};
@@ -68,7 +68,8 @@ pub(crate) fn assemble(
             .map(|m| m.held_out_sharpe)
             .filter(|v| v.is_finite())
             .unwrap_or_else(|| scaled.in_sample_sharpe(p));
-        let done = implement_stage(window, mom, settings, &scaled.weights, &held, model_sharpe, stop, &mut warnings)?;
+        let done =
+            implement_stage(window, mom, settings, &scaled.weights, &held.positions, model_sharpe, stop, &mut warnings)?;
         (Some(done.weights), done.market_weight, Some(done.report))
     } else {
         (None, scaled.market_weight, None)
@@ -85,7 +86,7 @@ pub(crate) fn assemble(
     data_warnings(window, mom, excluded.len(), &mut warnings);
     let turnover = held.given.then(|| match &implementation {
         Some(imp) => imp.turnover,
-        None => held.turnover(w, market_weight, hedged),
+        None => held.positions.turnover(w, market_weight, hedged),
     });
     let covariance_condition_number = condition_number(mom, model.as_ref(), t, n)?;
     spectrum_warnings(model.as_ref(), covariance_condition_number, t, n, &mut warnings);
@@ -163,26 +164,13 @@ fn implement_stage(
     mom: &Moments,
     settings: &ValidSettings,
     model: &[f64],
-    held: &Previous,
+    held: &Positions,
     model_sharpe: f64,
     stop: &Stop,
     warnings: &mut Vec<Warning>,
 ) -> Result<desk::Implemented, EstimateError> {
-    let p = f64::from(settings.periods_per_year());
-    let hedged = settings.demarket && window.market.is_some();
     let omega = super::shrinkage::LedoitWolf::new(mom);
-    let names: Vec<&str> = window.used.iter().map(|&c| window.names[c].as_str()).collect();
-    let problem = desk::Problem {
-        model,
-        beta: hedged.then_some(&mom.beta[..]),
-        omega: &omega,
-        previous: &held.used,
-        previous_market: held.market,
-        forced_turnover: held.outside + if hedged { 0.0 } else { held.market.abs() },
-        model_sharpe: model_sharpe / p.sqrt(),
-        periods_per_year: p,
-        names: &names,
-    };
+    let problem = desk::Problem::from_window(window, mom, &omega, settings, model, model_sharpe, held);
     desk::implement(&problem, &Limits::of(settings), stop, warnings)
 }
 
@@ -527,21 +515,15 @@ pub(crate) fn record_choices(diag: &mut Diagnostics, m: ComponentModel, settings
 struct Previous {
     /// Whether previous weights were given at all.
     given: bool,
-    /// Previous weight of each usable factor.
-    used: Vec<f64>,
-    /// Previous hedge (the entry named after the market; 0 when absent).
-    market: f64,
-    /// Σ|p| over positions in factors that are excluded or not in the window: sold whatever the fit.
-    outside: f64,
+    /// Over the window's usable factors; the hedge is the entry named after the market.
+    positions: Positions,
 }
 
 impl Previous {
     fn of(panel: &ReturnPanel, window: &ReturnWindow, warnings: &mut Vec<Warning>) -> Result<Previous, EstimateError> {
         let mut out = Previous {
             given: !panel.previous_weights.is_empty(),
-            used: vec![0.0; window.used.len()],
-            market: 0.0,
-            outside: 0.0,
+            positions: Positions { used: vec![0.0; window.used.len()], ..Positions::default() },
         };
         if !out.given {
             return Ok(out);
@@ -564,12 +546,12 @@ impl Previous {
             }
             match column.get(name.as_str()) {
                 Some(c) => match slot.get(c) {
-                    Some(&j) => out.used[j] = *w,
-                    None => out.outside += w.abs(),
+                    Some(&j) => out.positions.used[j] = *w,
+                    None => out.positions.outside += w.abs(),
                 },
-                None if Some(name.as_str()) == market_name => out.market = *w,
+                None if Some(name.as_str()) == market_name => out.positions.market = *w,
                 None => {
-                    out.outside += w.abs();
+                    out.positions.outside += w.abs();
                     unknown.push(name);
                 }
             }
@@ -585,13 +567,6 @@ impl Previous {
             });
         }
         Ok(out)
-    }
-
-    /// Σ|wᵢ − pᵢ| + |w_m − p_m| + the positions sold outside the window.
-    fn turnover(&self, w: &[f64], market_weight: f64, hedged: bool) -> f64 {
-        let factors: f64 = w.iter().zip(&self.used).map(|(a, b)| (a - b).abs()).sum();
-        let hedge = if hedged { (market_weight - self.market).abs() } else { self.market.abs() };
-        factors + hedge + self.outside
     }
 }
 
