@@ -128,28 +128,9 @@ pub fn run(
             Err(_) => Ok(None),
         }
     };
-    let threads = options.threads.clamp(1, draws.max(1));
-    let results: Vec<Result<Draw, EstimateError>> = if threads <= 1 {
-        (0..draws).map(one).collect()
-    } else {
-        let chunk = draws.div_ceil(threads);
-        std::thread::scope(|scope| {
-            let handles: Vec<_> = (0..threads)
-                .map(|w| {
-                    let f = &one;
-                    scope.spawn(move || (w * chunk..((w + 1) * chunk).min(draws)).map(f).collect::<Vec<_>>())
-                })
-                .collect();
-            handles
-                .into_iter()
-                .flat_map(|h| {
-                    h.join().unwrap_or_else(|_| {
-                        vec![Err(EstimateError::Numerical { stage: "bootstrap", detail: "a draw panicked".into() })]
-                    })
-                })
-                .collect()
-        })
-    };
+    let results = super::fanout::map_in_order((0..draws).collect(), options.threads, one).unwrap_or_else(|_| {
+        vec![Err(EstimateError::Numerical { stage: "bootstrap", detail: "a draw panicked".into() })]
+    });
     let mut ok = Vec::with_capacity(draws);
     let mut failed = 0;
     for r in results {

@@ -292,24 +292,14 @@ pub(crate) fn cross_validate(
     // measured slower than scoring the folds in turn.
     let kmax = ks.iter().copied().max().unwrap_or(0) as f64;
     let work = kmax.powi(3) / 3.0 * kappas.len() as f64;
-    let per_fold: Vec<Result<(Vec<f64>, bool), EstimateError>> = if threads <= 1
-        || folds.len() == 1
-        || work < super::dense::PARALLEL_FLOPS
-    {
-        folds.iter().map(score_fold).collect()
-    } else {
-        std::thread::scope(|scope| {
-            let handles: Vec<_> = folds.iter().map(|f| scope.spawn(|| score_fold(f))).collect();
-            handles
-                .into_iter()
-                .map(|h| {
-                    h.join().unwrap_or_else(|_| {
-                        Err(EstimateError::Numerical { stage: "cross-validation", detail: "worker panicked".into() })
-                    })
-                })
-                .collect()
-        })
-    };
+    let per_fold: Vec<Result<(Vec<f64>, bool), EstimateError>> =
+        if threads <= 1 || folds.len() == 1 || work < super::dense::PARALLEL_FLOPS {
+            folds.iter().map(score_fold).collect()
+        } else {
+            super::fanout::map_in_order(folds.iter().collect(), folds.len(), score_fold).unwrap_or_else(|_| {
+                vec![Err(EstimateError::Numerical { stage: "cross-validation", detail: "worker panicked".into() })]
+            })
+        };
     let mut sums = vec![0.0; cells];
     let mut solver_limit_hit = false;
     for res in per_fold {

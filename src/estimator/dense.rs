@@ -52,11 +52,8 @@ pub(crate) fn for_parts<P: Send, R: Send>(parts: Vec<P>, flops: f64, f: impl Fn(
     if threads() <= 1 || parts.len() <= 1 || flops < PARALLEL_FLOPS {
         return parts.into_iter().map(f).collect();
     }
-    std::thread::scope(|scope| {
-        let f = &f;
-        let handles: Vec<_> = parts.into_iter().map(|p| scope.spawn(move || f(p))).collect();
-        handles.into_iter().map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e))).collect()
-    })
+    let workers = parts.len();
+    super::fanout::map_in_order(parts, workers, f).unwrap_or_else(|p| std::panic::resume_unwind(p.0))
 }
 
 /// The parallelism of a kernel of `flops` multiply–adds.

@@ -19,6 +19,7 @@ pub mod cv;
 mod dense;
 pub mod desk;
 pub mod error;
+pub(crate) mod fanout;
 pub mod fingerprint;
 pub mod frequency;
 pub mod moments;
@@ -132,11 +133,7 @@ fn fit_full(
     let (r, hashed) = if !hash {
         (fit(&mut phases), Some(String::new()))
     } else if options.threads > 1 && panel.returns.len() >= PARALLEL_HASH_VALUES {
-        std::thread::scope(|scope| {
-            let h = scope.spawn(fingerprint);
-            let r = fit(&mut phases);
-            (r, h.join().ok())
-        })
+        fanout::beside(fingerprint, || fit(&mut phases))
     } else {
         (fit(&mut phases), None)
     };

@@ -68,8 +68,16 @@ pub(crate) fn assemble(
             .map(|m| m.held_out_sharpe)
             .filter(|v| v.is_finite())
             .unwrap_or_else(|| scaled.in_sample_sharpe(p));
-        let done =
-            implement_stage(window, mom, settings, &scaled.weights, &held.positions, model_sharpe, stop, &mut warnings)?;
+        let done = implement_stage(
+            window,
+            mom,
+            settings,
+            &scaled.weights,
+            &held.positions,
+            model_sharpe,
+            stop,
+            &mut warnings,
+        )?;
         (Some(done.weights), done.market_weight, Some(done.report))
     } else {
         (None, scaled.market_weight, None)

@@ -9,6 +9,7 @@ use super::results::{LatestFit, Progress};
 use super::spec::ValidBacktestSpec;
 use super::strategies::{MARKET, MODEL, Strategy, fit_steps, strategies, sweep_scalings};
 use crate::estimator::desk::{DeskWindow, Holdings};
+use crate::estimator::fanout;
 use crate::estimator::{self, EstimateError, FitOptions, ReturnPanel, Scaling, Stop, ValidSettings, WeightSet};
 
 /// One refit's outcome for one strategy.
@@ -231,39 +232,16 @@ pub(super) fn fit_all_dates(
     stop: &Stop,
 ) -> Result<Vec<DateFits>, BacktestError> {
     let one = |d: usize| fit_date(panel, configured, spec, plan, d, ticker, stop);
-    let n_dates = plan.dates.len();
-    if spec.threads <= 1 {
-        return (0..n_dates).map(one).collect();
-    }
-    // Refit dates are independent: split them across threads, keep date order.
-    let chunk = n_dates.div_ceil(spec.threads);
-    let results: Vec<Result<DateFits, BacktestError>> = std::thread::scope(|scope| {
-        let handles: Vec<_> = (0..spec.threads)
-            .map(|w| {
-                let f = &one;
-                scope.spawn(move || (w * chunk..((w + 1) * chunk).min(n_dates)).map(f).collect::<Vec<_>>())
-            })
-            .collect();
-        join_workers(handles)
-    });
-    results.into_iter().collect()
+    // Refit dates are independent: split across threads, in date order.
+    fanout::map_in_order((0..plan.dates.len()).collect(), spec.threads, one)
+        .map_err(worker_panicked)?
+        .into_iter()
+        .collect()
 }
 
-/// Each worker's results in worker order; a worker that panicked gives one error.
-pub(super) fn join_workers<T>(
-    handles: Vec<std::thread::ScopedJoinHandle<'_, Vec<Result<T, BacktestError>>>>,
-) -> Vec<Result<T, BacktestError>> {
-    handles
-        .into_iter()
-        .flat_map(|h| {
-            h.join().unwrap_or_else(|_| {
-                vec![Err(BacktestError::Stopped(EstimateError::Numerical {
-                    stage: "backtest",
-                    detail: "worker panicked".into(),
-                }))]
-            })
-        })
-        .collect()
+/// A backtest worker that panicked, as the error the backtest ends with.
+fn worker_panicked(_: fanout::WorkerPanicked) -> BacktestError {
+    BacktestError::Stopped(EstimateError::Numerical { stage: "backtest", detail: "worker panicked".into() })
 }
 
 /// The implementation stage (SPEC §10), date after date: each fitted
@@ -296,24 +274,8 @@ pub(super) fn implement_all(
         .collect();
     let run = StageRun { panel, configured, spec, plan, ticker, stop };
     let one = |si: usize, held: &mut [Held]| implement_strategy(&run, si, held);
-    let workers = spec.threads.clamp(1, todo.len().max(1));
-    let results: Vec<Result<(), BacktestError>> = if workers <= 1 {
-        todo.iter().zip(columns.iter_mut()).map(|(&si, col)| one(si, col)).collect()
-    } else {
-        let per = todo.len().div_ceil(workers);
-        std::thread::scope(|scope| {
-            let handles: Vec<_> = todo
-                .chunks(per)
-                .zip(columns.chunks_mut(per))
-                .map(|(sis, cols)| {
-                    let f = &one;
-                    scope
-                        .spawn(move || sis.iter().zip(cols.iter_mut()).map(|(&si, col)| f(si, col)).collect::<Vec<_>>())
-                })
-                .collect();
-            join_workers(handles)
-        })
-    };
+    let items: Vec<(usize, &mut Vec<Held>)> = todo.iter().copied().zip(columns.iter_mut()).collect();
+    let results = fanout::map_in_order(items, spec.threads, |(si, col)| one(si, col)).map_err(worker_panicked)?;
     for (&si, col) in todo.iter().zip(columns) {
         for (f, h) in fits.iter_mut().zip(col) {
             f.held[si] = h;
