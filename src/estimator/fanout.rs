@@ -111,7 +111,7 @@ mod tests {
             assert!(i != 6, "item six");
             i
         });
-        let payload = r.err().expect("a worker panicked").0;
+        let payload = r.expect_err("a worker panicked").0;
         let message = payload
             .downcast_ref::<&str>()
             .map(|m| (*m).to_owned())
