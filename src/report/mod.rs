@@ -15,8 +15,9 @@ use crate::estimator::Method;
 use crate::evaluate::{BacktestResult, KNS_PUBLISHED, MARKET, MODEL, StrategyResult};
 use charts::Series;
 
+/// Text for HTML, in element content or a quoted attribute value alike.
 fn esc(s: &str) -> String {
-    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;")
+    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;").replace('\'', "&#39;")
 }
 
 fn f(v: f64, digits: usize) -> String {
@@ -889,4 +890,49 @@ fn pricing_section(r: &BacktestResult) -> String {
         let _ = write!(html, "<h2>Pricing test</h2><p class=\"note\">Not run: {}.</p>", esc(&why));
     }
     html
+}
+
+#[cfg(test)]
+mod tests {
+    use super::{csv_field, drawdown, esc, rolling_sharpe, wealth};
+
+    /// Wealth compounds, drawdown is measured from the running peak (the
+    /// usual definition, common practice), worked by hand: +10%, −20%, +25%.
+    #[test]
+    fn wealth_and_drawdown_by_hand() {
+        let r = [0.10, -0.20, 0.25];
+        let w = wealth(&r);
+        for (got, want) in w.iter().zip([1.1, 0.88, 1.1]) {
+            assert!((got - want).abs() < 1e-12, "{got} vs {want}");
+        }
+        let d = drawdown(&r);
+        for (got, want) in d.iter().zip([0.0, -20.0, 0.0]) {
+            assert!((got - want).abs() < 1e-9, "{got} vs {want}");
+        }
+        // A loss from the start is a drawdown from the initial unit.
+        assert!((drawdown(&[-0.5])[0] + 50.0).abs() < 1e-12);
+    }
+
+    /// The rolling Sharpe ratio is NaN until its window is full, then √p
+    /// times mean over sample standard deviation (ddof 1, as numpy's
+    /// `std(ddof=1)`) of the trailing window.
+    #[test]
+    fn rolling_sharpe_uses_only_the_trailing_window() {
+        let r = [0.01, 0.03, -0.02, 0.04];
+        let s = rolling_sharpe(&r, 3, 12.0);
+        assert!(s[0].is_nan() && s[1].is_nan());
+        let w = [0.03, -0.02, 0.04];
+        let mean = w.iter().sum::<f64>() / 3.0;
+        let sd = (w.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / 2.0).sqrt();
+        assert!((s[3] - 12f64.sqrt() * mean / sd).abs() < 1e-12, "{}", s[3]);
+    }
+
+    /// Text reaches HTML escaped and CSV quoted (RFC 4180).
+    #[test]
+    fn names_are_escaped_for_html_and_quoted_for_csv() {
+        assert_eq!(esc("<a & \"b\">"), "&lt;a &amp; &quot;b&quot;&gt;");
+        assert_eq!(csv_field("plain"), "plain");
+        assert_eq!(csv_field("a,\"b\""), "\"a,\"\"b\"\"\"");
+        assert_eq!(csv_field("two\nlines"), "\"two\nlines\"");
+    }
 }

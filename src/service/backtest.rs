@@ -7,9 +7,8 @@ use std::time::Duration;
 use tonic::{Request, Response, Status};
 
 use super::WeightsApi;
-use super::runner::{CallLog, CancelOnDrop, Deadline, grpc_timeout, user_agent};
-use super::status::{ServiceError, to_status};
-use super::telemetry::CallSpan;
+use super::runner::{Call, CancelOnDrop, Deadline};
+use super::status::ServiceError;
 use crate::convert::{backtest_request_into_parts, backtest_result_to_proto};
 use crate::evaluate::{self, Progress};
 use crate::proto;
@@ -44,39 +43,16 @@ impl WeightsApi {
         &self,
         request: Request<proto::RunBacktestRequest>,
     ) -> Result<Response<BacktestStream>, Status> {
-        let span = self.call_span("RunBacktest", request.metadata());
-        let timeout = grpc_timeout(request.metadata());
-        let agent = user_agent(request.metadata());
-        let req = request.into_inner();
-        let log = CallLog::new("RunBacktest", &req.request_id, req.returns.as_ref(), agent);
-        let cols = req.returns.as_ref().map(|m| m.cols as usize);
-        span.record(|| {
-            [
-                opentelemetry::KeyValue::new("keelson.request_id", log.request_id.clone()),
-                opentelemetry::KeyValue::new("keelson.periods", i64::from(log.periods)),
-                opentelemetry::KeyValue::new("keelson.factors", i64::from(log.factors)),
-            ]
-        });
-        match self.start_backtest(req, timeout, span.clone(), log.clone()) {
+        let (call, req) = self.begin_call("RunBacktest", request);
+        match self.start_backtest(req, call.clone()) {
             Ok(stream) => Ok(Response::new(stream)),
-            Err(e) => {
-                let status = to_status(&e, cols);
-                log.failed(status.code(), &e);
-                span.finish(status.code(), status.message());
-                Err(status)
-            }
+            Err(e) => Err(call.fail(&e)),
         }
     }
 
     /// Admits a backtest, checks its specification and budget, and starts it;
     /// the returned stream yields progress and then the result.
-    fn start_backtest(
-        &self,
-        req: proto::RunBacktestRequest,
-        client_timeout: Option<Duration>,
-        span: CallSpan,
-        log: CallLog,
-    ) -> Result<BacktestStream, ServiceError> {
+    fn start_backtest(&self, req: proto::RunBacktestRequest, call: Call) -> Result<BacktestStream, ServiceError> {
         let admitted = self.admit()?;
         self.check_size(req.returns.as_ref(), req.factor_names.len())?;
         let (panel, proto_settings, spec, request_id) = backtest_request_into_parts(req);
@@ -89,13 +65,14 @@ impl WeightsApi {
         self.check_stage_size(&settings, largest, panel.cols)?;
         let budget = spec.budget();
         self.check_budget(budget)?;
-        let deadline = Deadline::new(client_timeout, self.shared.config.raw.server.backtest_timeout_ms);
+        let deadline = Deadline::new(call.timeout, self.shared.config.raw.server.backtest_timeout_ms);
         let (stop, cancel) = deadline.stop();
         let (tx, rx) = tokio::sync::mpsc::channel::<Message>(32);
         let api = self.clone();
         let progress_tx = tx.clone();
         let id = request_id.clone();
         let invocation = format!("RunBacktest request {request_id:?}");
+        let call = call.within_windows();
         tokio::spawn(async move {
             let work = move || {
                 let last = AtomicU64::new(u64::MAX);
@@ -126,16 +103,10 @@ impl WeightsApi {
             });
             let send = match outcome {
                 Ok(r) => {
-                    log.served(&format!("refits={} fits={}", budget.refits, budget.fits));
-                    span.finish(tonic::Code::Ok, "");
+                    call.served(&format!("refits={} fits={}", budget.refits, budget.fits));
                     Ok(r)
                 }
-                Err(e) => {
-                    let status = to_status(&e, None);
-                    log.failed(status.code(), &e);
-                    span.finish(status.code(), status.message());
-                    Err(status)
-                }
+                Err(e) => Err(call.fail(&e)),
             };
             // The work is done: a reader that is slow to take the result must not hold an
             // admission slot, and one that never takes it must not hold the result forever.

@@ -5,8 +5,8 @@ use std::time::SystemTime;
 use tonic::{Request, Response, Status};
 
 use super::WeightsApi;
-use super::runner::{CallLog, Deadline, grpc_timeout, user_agent};
-use super::status::{ServiceError, to_status};
+use super::runner::Deadline;
+use super::status::ServiceError;
 use super::telemetry::CallSpan;
 use crate::convert::{request_into_parts, weight_set_to_proto};
 use crate::estimator::{self, FitOptions};
@@ -17,40 +17,22 @@ impl WeightsApi {
         &self,
         request: Request<proto::ComputeWeightsRequest>,
     ) -> Result<Response<proto::ComputeWeightsResponse>, Status> {
-        let span = self.call_span("ComputeWeights", request.metadata());
-        let timeout = grpc_timeout(request.metadata());
-        let agent = user_agent(request.metadata());
-        let req = request.into_inner();
-        let log = CallLog::new("ComputeWeights", &req.request_id, req.returns.as_ref(), agent);
-        let cols = req.returns.as_ref().map(|m| m.cols as usize);
-        span.record(|| {
-            [
-                opentelemetry::KeyValue::new("keelson.request_id", log.request_id.clone()),
-                opentelemetry::KeyValue::new("keelson.periods", i64::from(log.periods)),
-                opentelemetry::KeyValue::new("keelson.factors", i64::from(log.factors)),
-            ]
-        });
-        match self.compute(req, timeout, &span).await {
+        let (call, req) = self.begin_call("ComputeWeights", request);
+        match self.compute(req, call.timeout, &call.span).await {
             Ok(resp) => {
                 let d = resp.diagnostics.as_ref();
                 let (k, kappa) = d.map_or((0, 0.0), |d| (d.num_components, d.kappa));
-                log.served(&format!("components={k} kappa={kappa} fingerprint={}", resp.fingerprint));
-                span.record(|| {
+                call.span.record(|| {
                     [
                         opentelemetry::KeyValue::new("keelson.components", i64::from(k)),
                         opentelemetry::KeyValue::new("keelson.kappa", kappa),
                         opentelemetry::KeyValue::new("keelson.fingerprint", resp.fingerprint.clone()),
                     ]
                 });
-                span.finish(tonic::Code::Ok, "");
+                call.served(&format!("components={k} kappa={kappa} fingerprint={}", resp.fingerprint));
                 Ok(Response::new(resp))
             }
-            Err(e) => {
-                let status = to_status(&e, cols);
-                log.failed(status.code(), &e);
-                span.finish(status.code(), status.message());
-                Err(status)
-            }
+            Err(e) => Err(call.fail(&e)),
         }
     }
 

@@ -9,7 +9,8 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
 use super::WeightsApi;
-use super::status::ServiceError;
+use super::status::{ServiceError, to_status};
+use super::telemetry::CallSpan;
 use crate::estimator::Stop;
 
 /// In debug builds only, a request with this id panics inside its
@@ -146,13 +147,13 @@ impl WeightsApi {
     }
 }
 
-/// One request's log line, for every outcome.
 /// The caller's `user-agent` header, at most 200 characters, or empty.
 pub(super) fn user_agent(metadata: &tonic::metadata::MetadataMap) -> String {
     let agent = metadata.get("user-agent").and_then(|v| v.to_str().ok()).unwrap_or("");
     agent.chars().take(200).collect()
 }
 
+/// One request's log line, for every outcome.
 #[derive(Clone, Debug)]
 pub(super) struct CallLog {
     pub(super) method: &'static str,
@@ -206,5 +207,149 @@ impl CallLog {
             latency_ms = self.started.elapsed().as_secs_f64() * 1e3,
             "request failed"
         );
+    }
+}
+
+/// The request fields a call's log and span name: both computing requests carry them.
+pub(super) trait CallRequest {
+    fn request_id(&self) -> &str;
+    fn returns(&self) -> Option<&crate::proto::Matrix>;
+}
+
+impl CallRequest for crate::proto::ComputeWeightsRequest {
+    fn request_id(&self) -> &str {
+        &self.request_id
+    }
+    fn returns(&self) -> Option<&crate::proto::Matrix> {
+        self.returns.as_ref()
+    }
+}
+
+impl CallRequest for crate::proto::RunBacktestRequest {
+    fn request_id(&self) -> &str {
+        &self.request_id
+    }
+    fn returns(&self) -> Option<&crate::proto::Matrix> {
+        self.returns.as_ref()
+    }
+}
+
+/// One call's span, log line and client deadline: set up in one place
+/// ([`WeightsApi::begin_call`]) and ended in one place ([`Call::fail`],
+/// [`Call::served`]) for both computing RPCs.
+#[derive(Clone)]
+pub(super) struct Call {
+    pub(super) span: CallSpan,
+    pub(super) log: CallLog,
+    /// The client's `grpc-timeout`.
+    pub(super) timeout: Option<Duration>,
+    /// The request's column count, for `returns.values[i]` in field violations.
+    cols: Option<usize>,
+}
+
+impl Call {
+    /// Ends a failed or refused call: its status (from the one map,
+    /// [`to_status`]), logged and recorded on the span.
+    pub(super) fn fail(self, e: &ServiceError) -> tonic::Status {
+        let status = to_status(e, self.cols);
+        self.log.failed(status.code(), e);
+        self.span.finish(status.code(), status.message());
+        status
+    }
+
+    /// The call once its work has started on a window of the request (a
+    /// backtest's sub-windows): error locations are then relative to that
+    /// window, so field violations name `returns.values` without an index.
+    pub(super) fn within_windows(self) -> Call {
+        Call { cols: None, ..self }
+    }
+
+    /// Ends a served call, logging what it chose.
+    pub(super) fn served(self, outcome: &str) {
+        self.log.served(outcome);
+        self.span.finish(tonic::Code::Ok, "");
+    }
+}
+
+impl WeightsApi {
+    /// Begins a call of `method`: its span (a child of the caller's trace
+    /// context), its log line's fields and the client's deadline.
+    pub(super) fn begin_call<T: CallRequest>(&self, method: &'static str, request: tonic::Request<T>) -> (Call, T) {
+        let span = self.call_span(method, request.metadata());
+        let timeout = grpc_timeout(request.metadata());
+        let agent = user_agent(request.metadata());
+        let req = request.into_inner();
+        let log = CallLog::new(method, req.request_id(), req.returns(), agent);
+        span.record(|| {
+            [
+                opentelemetry::KeyValue::new("keelson.request_id", log.request_id.clone()),
+                opentelemetry::KeyValue::new("keelson.periods", i64::from(log.periods)),
+                opentelemetry::KeyValue::new("keelson.factors", i64::from(log.factors)),
+            ]
+        });
+        let cols = req.returns().map(|m| m.cols as usize);
+        (Call { span, log, timeout, cols }, req)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::{Deadline, grpc_timeout, panic_message, user_agent};
+    use std::time::Duration;
+    use tonic::metadata::MetadataMap;
+
+    fn with(key: &'static str, value: &str) -> MetadataMap {
+        let mut m = MetadataMap::new();
+        m.insert(key, value.parse().unwrap());
+        m
+    }
+
+    /// `grpc-timeout` as the gRPC over HTTP/2 protocol text defines it:
+    /// 1 to 8 digits and one of H, M, S, m, u, n; anything else is no deadline.
+    #[test]
+    fn grpc_timeout_follows_the_protocol_text() {
+        let cases = [
+            ("1H", Some(Duration::from_secs(3600))),
+            ("2M", Some(Duration::from_secs(120))),
+            ("30S", Some(Duration::from_secs(30))),
+            ("250m", Some(Duration::from_millis(250))),
+            ("7u", Some(Duration::from_micros(7))),
+            ("99999999n", Some(Duration::from_nanos(99_999_999))),
+            ("123456789S", None),
+            ("5", None),
+            ("5s", None),
+            ("-5S", None),
+        ];
+        for (v, want) in cases {
+            assert_eq!(grpc_timeout(&with("grpc-timeout", v)), want, "{v}");
+        }
+        assert_eq!(grpc_timeout(&MetadataMap::new()), None);
+    }
+
+    /// The earlier of the two limits ends the request, and its error says
+    /// whose limit it was.
+    #[test]
+    fn a_deadline_names_whose_limit_ran_out() {
+        let client = Deadline::new(Some(Duration::from_millis(100)), 60_000);
+        assert!(client.client_binds);
+        assert!(matches!(client.timed_out(), super::ServiceError::Estimate(_)));
+        let server = Deadline::new(Some(Duration::from_secs(600)), 1_000);
+        assert!(!server.client_binds);
+        assert!(matches!(server.timed_out(), super::ServiceError::ServerTimeout { limit_ms: 1_000 }));
+        assert!(server.at <= std::time::Instant::now() + Duration::from_millis(1_000));
+        let (stop, cancel) = server.stop();
+        assert!(stop.check().is_ok());
+        drop(cancel);
+        assert!(stop.check().is_err(), "dropping the guard cancels the computation");
+    }
+
+    #[test]
+    fn user_agents_are_cut_and_panic_messages_read() {
+        let long = "k".repeat(500);
+        assert_eq!(user_agent(&with("user-agent", &long)).len(), 200);
+        assert_eq!(user_agent(&MetadataMap::new()), "");
+        assert_eq!(panic_message(&"static text"), "static text");
+        assert_eq!(panic_message(&String::from("owned text")), "owned text");
+        assert_eq!(panic_message(&42u8), "a panic without a message");
     }
 }

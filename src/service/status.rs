@@ -312,3 +312,94 @@ pub fn to_status(err: &ServiceError, cols: Option<usize>) -> Status {
         ServiceError::Internal(_) => with_info(Code::Internal, "INTERNAL", err.to_string()),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::{ServiceError, to_status};
+    use crate::estimator::{EstimateError, InputError, Location};
+    use crate::evaluate::BacktestError;
+    use tonic::Code;
+    use tonic_types::StatusExt as _;
+
+    /// A bad cell at row 2, column 3 of a 5-column request is the field
+    /// violation `returns.values[13]` (row-major, as the proto lays the
+    /// matrix out), with its row, column, period and factor in ErrorInfo.
+    #[test]
+    fn a_bad_cell_names_its_flat_index_row_and_column() {
+        let at = Location::field("returns").row(2, Some("2020-03")).column(3, Some("carry"));
+        let e = ServiceError::Estimate(InputError::NonFinite { at, value: f64::INFINITY }.into());
+        let st = to_status(&e, Some(5));
+        assert_eq!(st.code(), Code::InvalidArgument);
+        let d = st.get_error_details();
+        let v = &d.bad_request().expect("a BadRequest").field_violations[0];
+        assert_eq!(v.field, "returns.values[13]");
+        let info = d.error_info().expect("an ErrorInfo");
+        assert_eq!((info.reason.as_str(), info.domain.as_str()), ("NON_FINITE_VALUE", super::ERROR_DOMAIN));
+        for (k, want) in [("row", "2"), ("column", "3"), ("period", "2020-03"), ("factor", "carry")] {
+            assert_eq!(info.metadata.get(k).map(String::as_str), Some(want), "{k}");
+        }
+        // Without the column count the path cannot be flattened.
+        let st = to_status(&e, None);
+        assert_eq!(st.get_error_details().bad_request().unwrap().field_violations[0].field, "returns.values");
+    }
+
+    /// Infeasible limits are FAILED_PRECONDITION with one violation per
+    /// conflicting setting, under `settings.`.
+    #[test]
+    fn infeasible_limits_are_a_precondition_failure_per_setting() {
+        let e = ServiceError::Estimate(EstimateError::ConstraintsInfeasible {
+            constraints: vec!["max_gross".into(), "max_turnover".into()],
+            detail: "x".into(),
+        });
+        let st = to_status(&e, None);
+        assert_eq!(st.code(), Code::FailedPrecondition);
+        let d = st.get_error_details();
+        let subjects: Vec<&str> =
+            d.precondition_failure().unwrap().violations.iter().map(|v| v.subject.as_str()).collect();
+        assert_eq!(subjects, ["settings.max_gross", "settings.max_turnover"]);
+        assert_eq!(d.error_info().unwrap().metadata["constraints"], "max_gross,max_turnover");
+    }
+
+    /// A backtest window's failure keeps its source's code and names the
+    /// strategy and period; a stopped backtest is its stop's code.
+    #[test]
+    fn backtest_failures_keep_their_source_code() {
+        let e = ServiceError::Backtest(BacktestError::Window {
+            strategy: "ridge".into(),
+            period: "2019-06".into(),
+            source: EstimateError::DegeneratePortfolio { reason: "flat".into() },
+        });
+        let st = to_status(&e, None);
+        assert_eq!(st.code(), Code::FailedPrecondition);
+        let info = st.get_error_details().error_info().cloned().unwrap();
+        assert_eq!(info.reason, "BACKTEST_WINDOW_FAILED");
+        assert_eq!((info.metadata["strategy"].as_str(), info.metadata["period"].as_str()), ("ridge", "2019-06"));
+        let stopped = ServiceError::Backtest(BacktestError::Stopped(EstimateError::Cancelled));
+        assert_eq!(to_status(&stopped, None).code(), Code::Cancelled);
+        assert!(stopped.stopped_early() && !stopped.deadline_exceeded());
+    }
+
+    /// The codes clients retry on (UNAVAILABLE, RESOURCE_EXHAUSTED) are given
+    /// only to failures a retry can cure (gRPC status code guide, common practice).
+    #[test]
+    fn only_curable_failures_get_retryable_codes() {
+        let cases = [
+            (ServiceError::Overloaded { limit: 4 }, Code::ResourceExhausted),
+            (ServiceError::Draining, Code::Unavailable),
+            (ServiceError::ServerTimeout { limit_ms: 10 }, Code::DeadlineExceeded),
+            (ServiceError::Unauthenticated { reason: "no token" }, Code::Unauthenticated),
+            (ServiceError::Internal("bug".into()), Code::Internal),
+            (ServiceError::Estimate(EstimateError::DeadlineExceeded), Code::DeadlineExceeded),
+            (
+                ServiceError::Estimate(EstimateError::SolverFailed { status: "s".into(), detail: "d".into() }),
+                Code::Internal,
+            ),
+            (ServiceError::TooLarge { field: "returns", value: 9, limit: 8, what: "cells" }, Code::InvalidArgument),
+        ];
+        for (e, code) in cases {
+            let st = to_status(&e, None);
+            assert_eq!(st.code(), code, "{e}");
+            assert!(st.get_error_details().error_info().is_some_and(|i| !i.reason.is_empty()), "{e}: no reason");
+        }
+    }
+}
