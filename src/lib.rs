@@ -11,7 +11,7 @@
 //! [`service`] serves the API over gRPC and [`client`] calls it; [`evaluate`]
 //! runs backtests and [`report`] writes them; [`demo`] builds the invented
 //! demonstration market.
-#![warn(missing_docs, unreachable_pub)]
+#![warn(missing_docs, unreachable_pub, clippy::missing_errors_doc)]
 #![deny(rustdoc::broken_intra_doc_links)]
 // `!(x > 0.0)` is deliberate throughout: it is true for NaN as well.
 #![allow(clippy::neg_cmp_op_on_partial_ord)]
@@ -25,7 +25,7 @@ pub mod estimator;
 pub mod evaluate;
 
 /// Generated `keelson.v1` protobuf messages with their proto3-JSON mapping.
-#[allow(missing_docs, unreachable_pub, clippy::all)]
+#[allow(missing_docs, unreachable_pub, clippy::all, clippy::missing_errors_doc)]
 pub mod proto {
     include!(concat!(env!("OUT_DIR"), "/keelson.v1.rs"));
     include!(concat!(env!("OUT_DIR"), "/keelson.v1.serde.rs"));

@@ -68,6 +68,9 @@ pub fn shrunk_sharpe(mom: &Moments) -> Vec<f64> {
 
 impl ComponentBasis {
     /// Computes the first `k` components of the block (fewer when the rank is lower).
+    ///
+    /// # Errors
+    /// [`EstimateError::Numerical`] when the eigendecomposition does not converge.
     pub fn compute(
         mom: &Moments,
         scaling: Scaling,

@@ -148,6 +148,9 @@ pub struct PlugIn {
 /// X_c/√(T−1); eigenvalues at or below n·ε·max are dropped, which gives the
 /// minimum-norm least-squares solution when Σ is singular (the
 /// numpy.linalg.lstsq convention, rcond = ε·n).
+///
+/// # Errors
+/// [`EstimateError::Numerical`] when the SVD does not converge.
 pub fn plug_in(mom: &Moments) -> Result<PlugIn, EstimateError> {
     let (t, n) = mom.centered.shape();
     let a = 1.0 / (t as f64 - 1.0).sqrt();

@@ -192,6 +192,9 @@ pub fn write(dir: &Path, r: &BacktestResult, title: &str) -> anyhow::Result<()> 
 /// `summary.json`: the `BacktestResult` message in the proto3 JSON mapping
 /// (lowerCamelCase names, NaN as "NaN", 64-bit integers as strings), the
 /// same schema the gRPC API streams.
+///
+/// # Errors
+/// When the message cannot be serialised (not expected: every field maps).
 pub fn summary_json(r: &BacktestResult) -> anyhow::Result<String> {
     let message = crate::convert::backtest_result_to_proto(r, "");
     Ok(serde_json::to_string_pretty(&message)? + "\n")
