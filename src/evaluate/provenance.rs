@@ -66,6 +66,34 @@ impl Provenance {
     }
 }
 
+/// Who ran a backtest, on what: the part of the provenance that the command
+/// line or the service knows and the evaluation does not.
+#[derive(Clone, Copy, Debug)]
+pub struct Origin<'a> {
+    /// The command line, or the request that asked for the run.
+    pub invocation: &'a str,
+    /// The input: a file path or a request.
+    pub input: &'a str,
+    /// The input's bytes when there is a file (hashed instead of the
+    /// history's canonical encoding).
+    pub input_bytes: Option<&'a [u8]>,
+    /// Where the configured settings came from, for [`configured_meaning`].
+    pub settings_source: &'a str,
+}
+
+impl Provenance {
+    /// Completes the provenance with the run's origin: the one builder the
+    /// command line and the service share.
+    pub fn with_origin(&mut self, configured: &ValidSettings, origin: Origin<'_>) {
+        self.invocation = origin.invocation.to_owned();
+        self.input = origin.input.to_owned();
+        if let Some(bytes) = origin.input_bytes {
+            self.input_sha256 = sha256_hex(bytes);
+        }
+        self.configured = configured_meaning(configured, origin.settings_source);
+    }
+}
+
 /// One sentence defining "configured" for a run's readers.
 pub fn configured_meaning(configured: &ValidSettings, source: &str) -> String {
     format!(
