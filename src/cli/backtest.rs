@@ -71,12 +71,15 @@ pub(crate) fn run(a: BacktestArgs) -> anyhow::Result<ExitCode> {
     let mut result = evaluate::run(&csv.panel, &settings, &spec, &|p| reporter.update(p), &Stop::never())
         .with_context(|| format!("backtesting {csv}"))?;
     let elapsed = started.elapsed();
-    result.provenance.with_origin(&settings, Origin {
-        invocation: &invocation(),
-        input: &csv.file,
-        input_bytes: bytes.as_deref(),
-        settings_source: "the built-in defaults changed by --config and --set",
-    });
+    result.provenance.with_origin(
+        &settings,
+        Origin {
+            invocation: &invocation(),
+            input: &csv.file,
+            input_bytes: bytes.as_deref(),
+            settings_source: "the built-in defaults changed by --config and --set",
+        },
+    );
     keelson::report::write(&a.out, &result, &format!("Keelson backtest: {}", csv.file))?;
     let mut text = keelson::report::summary_table(&result);
     text.push_str(&footer(&result));
@@ -159,12 +162,15 @@ pub(crate) fn demo_history(settings: &ValidSettings, dir: &std::path::Path, talk
     }
     let mut r =
         evaluate::run(&history, settings, &spec, &|_| {}, &Stop::never()).context("backtesting the demo history")?;
-    r.provenance.with_origin(settings, Origin {
-        invocation: &invocation(),
-        input: "the built-in invented history (keelson::demo::demo_history)",
-        input_bytes: None,
-        settings_source: "the built-in defaults changed by --config and --set",
-    });
+    r.provenance.with_origin(
+        settings,
+        Origin {
+            invocation: &invocation(),
+            input: "the built-in invented history (keelson::demo::demo_history)",
+            input_bytes: None,
+            settings_source: "the built-in defaults changed by --config and --set",
+        },
+    );
     keelson::report::write(dir, &r, "Keelson demo backtest: the Tessaly Exchange (invented data)")?;
     if talk {
         let mut text = keelson::report::summary_table(&r);

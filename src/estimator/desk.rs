@@ -107,6 +107,9 @@ pub struct Problem<'a> {
     pub periods_per_year: f64,
     /// Factor names, for the diagnostics and errors.
     pub names: Vec<&'a str>,
+    /// How Ω enters the conic program ([`OmegaForm::for_shape`] unless a
+    /// test or a bench compares the forms; both give the same answer).
+    pub form: OmegaForm,
 }
 
 /// Positions held before a fit, over the usable factors of its window.
@@ -170,6 +173,7 @@ impl<'a> Problem<'a> {
             model_sharpe: model_sharpe / p.sqrt(),
             periods_per_year: p,
             names: window.used.iter().map(|&c| window.names[c].as_str()).collect(),
+            form: OmegaForm::for_shape(model.len(), omega.periods()),
         }
     }
 }
@@ -414,22 +418,7 @@ pub fn implement(
     stop: &Stop,
     warnings: &mut Vec<Warning>,
 ) -> Result<Implemented, EstimateError> {
-    let form = OmegaForm::for_shape(problem.model.len(), problem.omega.periods());
-    implement_in(problem, limits, form, stop, warnings)
-}
-
-/// [`implement`] with Ω in the given form (both give the same answer; the
-/// tests and the bench compare them).
-///
-/// # Errors
-/// As [`implement`].
-pub fn implement_in(
-    problem: &Problem<'_>,
-    limits: &Limits,
-    form: OmegaForm,
-    stop: &Stop,
-    warnings: &mut Vec<Warning>,
-) -> Result<Implemented, EstimateError> {
+    let form = problem.form;
     stop.check()?;
     let n = problem.model.len();
     let hedged = problem.beta.is_some();
@@ -1128,9 +1117,11 @@ impl DeskWindow {
         let used = &self.window.used;
         let model_used: Vec<f64> = used.iter().map(|&c| model[c]).collect();
         let held = Positions::over(used, previous);
-        let problem =
-            Problem::from_window(&self.window, &self.mom, &self.omega, settings, &model_used, model_sharpe, &held);
-        let done = implement_in(&problem, &Limits::of(settings), form, stop, warnings)?;
+        let problem = Problem {
+            form,
+            ..Problem::from_window(&self.window, &self.mom, &self.omega, settings, &model_used, model_sharpe, &held)
+        };
+        let done = implement(&problem, &Limits::of(settings), stop, warnings)?;
         let mut weights = vec![0.0; previous.weights.len()];
         for (j, &c) in used.iter().enumerate() {
             weights[c] = done.weights[j];

@@ -68,16 +68,11 @@ pub(crate) fn assemble(
             .map(|m| m.held_out_sharpe)
             .filter(|v| v.is_finite())
             .unwrap_or_else(|| scaled.in_sample_sharpe(p));
-        let done = implement_stage(
-            window,
-            mom,
-            settings,
-            &scaled.weights,
-            &held.positions,
-            model_sharpe,
-            stop,
-            &mut warnings,
-        )?;
+        // The implementation stage (SPEC §10) from the positions held.
+        let omega = super::shrinkage::LedoitWolf::new(mom);
+        let problem =
+            desk::Problem::from_window(window, mom, &omega, settings, &scaled.weights, model_sharpe, &held.positions);
+        let done = desk::implement(&problem, &Limits::of(settings), stop, &mut warnings)?;
         (Some(done.weights), done.market_weight, Some(done.report))
     } else {
         (None, scaled.market_weight, None)
@@ -162,24 +157,6 @@ fn risk_variance(mom: &Moments, settings: &ValidSettings, w: &[f64]) -> f64 {
         h if h > 0.0 => mom.portfolio_variance_ew(w, h),
         _ => mom.portfolio_variance(w),
     }
-}
-
-/// The implementation stage (SPEC §10) for the scaled model portfolio, from
-/// the positions held; `model_sharpe` is annualised.
-#[allow(clippy::too_many_arguments)]
-fn implement_stage(
-    window: &ReturnWindow,
-    mom: &Moments,
-    settings: &ValidSettings,
-    model: &[f64],
-    held: &Positions,
-    model_sharpe: f64,
-    stop: &Stop,
-    warnings: &mut Vec<Warning>,
-) -> Result<desk::Implemented, EstimateError> {
-    let omega = super::shrinkage::LedoitWolf::new(mom);
-    let problem = desk::Problem::from_window(window, mom, &omega, settings, model, model_sharpe, held);
-    desk::implement(&problem, &Limits::of(settings), stop, warnings)
 }
 
 /// The direction scaled by the normalisation (SPEC §7): the weights over the

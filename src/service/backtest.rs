@@ -89,12 +89,15 @@ impl WeightsApi {
                     }
                 };
                 let mut r = evaluate::run(&panel, &settings, &spec, &progress, &stop)?;
-                r.provenance.with_origin(&settings, evaluate::provenance::Origin {
-                    invocation: &invocation,
-                    input: "RunBacktest request",
-                    input_bytes: None,
-                    settings_source: "the request's settings over the server's defaults",
-                });
+                r.provenance.with_origin(
+                    &settings,
+                    evaluate::provenance::Origin {
+                        invocation: &invocation,
+                        input: "RunBacktest request",
+                        input_bytes: None,
+                        settings_source: "the request's settings over the server's defaults",
+                    },
+                );
                 Ok(r)
             };
             let outcome = api.run_blocking("RunBacktest", &request_id, &deadline, work).await.map(|r| {
