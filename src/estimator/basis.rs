@@ -132,17 +132,17 @@ impl ComponentBasis {
         };
 
         let (eigenvalues, mut v) = if used_gram {
-            let g = dense::gram_nt(y.as_ref());
-            let (vals, u) = dense::sym_eigen_desc(g.as_ref(), "Gram eigendecomposition")?;
+            let g = dense::gram_nt(mom.kernels, y.as_ref());
+            let (vals, u) = dense::sym_eigen_desc(mom.kernels, g.as_ref(), "Gram eigendecomposition")?;
             let keep = k.min(m).min(n);
             let tol = rank_tolerance(&vals, m.max(n));
             // v = Y'u/√λ maps a Gram eigenvector to the matching factor-space one.
-            let yu = dense::mul_tn(y.as_ref(), u.as_ref().subcols(0, keep));
+            let yu = dense::mul_tn(mom.kernels, y.as_ref(), u.as_ref().subcols(0, keep));
             let v = Mat::from_fn(n, keep, |i, c| if vals[c] > tol { yu[(i, c)] / vals[c].sqrt() } else { 0.0 });
             (vals, v)
         } else {
-            let c = dense::gram_tn(y.as_ref());
-            let (vals, u) = dense::sym_eigen_desc(c.as_ref(), "factor eigendecomposition")?;
+            let c = dense::gram_tn(mom.kernels, y.as_ref());
+            let (vals, u) = dense::sym_eigen_desc(mom.kernels, c.as_ref(), "factor eigendecomposition")?;
             let keep = k.min(n);
             (vals, u.as_ref().subcols(0, keep).to_owned())
         };
@@ -178,8 +178,8 @@ impl ComponentBasis {
         let sigma_f = if scaling.has_diagonal_components() {
             Mat::from_fn(kk, kk, |a, b| if a == b { eigenvalues[a].max(0.0) } else { 0.0 })
         } else {
-            let fc = dense::mul(mom.centered.as_ref(), q.as_ref());
-            let mut s = dense::gram_tn(fc.as_ref());
+            let fc = dense::mul(mom.kernels, mom.centered.as_ref(), q.as_ref());
+            let mut s = dense::gram_tn(mom.kernels, fc.as_ref());
             let d = t as f64 - 1.0;
             for a in 0..kk {
                 for b in 0..kk {
@@ -224,8 +224,13 @@ mod tests {
         // (0.5, 0.3, 0.1, −0.1, 0.2): mean 0.2, Σ(SR − mean)² = 0.09 + 0.01 + 0.01 + 0.09 + 0 = 0.2,
         // B = (5 − 3)/(10 · 0.2) = 1 − 0 → B = 1: every ratio becomes the mean.
         let sr = [0.5, 0.3, 0.1, -0.1, 0.2];
-        let make =
-            |t: usize| Moments { beta: vec![0.0; 5], mean: sr.to_vec(), sd: vec![1.0; 5], centered: Mat::zeros(t, 5) };
+        let make = |t: usize| Moments {
+            beta: vec![0.0; 5],
+            mean: sr.to_vec(),
+            sd: vec![1.0; 5],
+            centered: Mat::zeros(t, 5),
+            kernels: crate::estimator::dense::Kernels::SEQUENTIAL,
+        };
         for v in shrunk_sharpe(&make(10)) {
             assert!((v - 0.2).abs() < 1e-15);
         }
@@ -235,8 +240,13 @@ mod tests {
             assert!((g - (0.2 + 0.75 * (s - 0.2))).abs() < 1e-15, "{g} vs {s}");
         }
         // Three factors or fewer: no shrinkage (the positive part of N − 3).
-        let three =
-            Moments { beta: vec![0.0; 3], mean: vec![0.5, 0.1, -0.2], sd: vec![1.0; 3], centered: Mat::zeros(40, 3) };
+        let three = Moments {
+            beta: vec![0.0; 3],
+            mean: vec![0.5, 0.1, -0.2],
+            sd: vec![1.0; 3],
+            centered: Mat::zeros(40, 3),
+            kernels: crate::estimator::dense::Kernels::SEQUENTIAL,
+        };
         assert_eq!(shrunk_sharpe(&three), vec![0.5, 0.1, -0.2]);
     }
 

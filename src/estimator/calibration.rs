@@ -144,6 +144,7 @@ pub(crate) fn baseline_samples(
     market: Option<&[f64]>,
     bounds: &[(usize, usize)],
     method: Method,
+    kernels: super::dense::Kernels,
 ) -> Vec<HeldOutSample> {
     let (t, n) = r.shape();
     let mut out = Vec::with_capacity(bounds.len());
@@ -151,7 +152,7 @@ pub(crate) fn baseline_samples(
         let train_rows: Vec<usize> = (0..start).chain(end..t).collect();
         let r_train = Mat::from_fn(train_rows.len(), n, |i, j| r[(train_rows[i], j)]);
         let m_train: Option<Vec<f64>> = market.map(|m| train_rows.iter().map(|&i| m[i]).collect());
-        let mom = Moments::compute(r_train.as_ref(), m_train.as_deref());
+        let mom = Moments::compute_with(r_train.as_ref(), m_train.as_deref(), kernels);
         let direction = match method {
             Method::PlugIn => shrinkage::plug_in(&mom).map(|p| p.weights).ok(),
             Method::PlugInLedoitWolf => shrinkage::plug_in_ledoit_wolf(&mom).map(|p| p.weights).ok(),

@@ -6,6 +6,7 @@
 use super::basis::ComponentBasis;
 use super::calibration;
 use super::cv::{self, CvSurface, Fold, fold_bounds, min_training_periods};
+use super::dense::Kernels;
 use super::error::EstimateError;
 use super::fingerprint;
 use super::moments::Moments;
@@ -35,9 +36,10 @@ pub fn fit_component_sweep(
     options.stop.check()?;
     let (resolved, source) = settings.for_panel(panel)?;
     let settings = &resolved;
-    let window = ReturnWindow::new(panel, settings)?;
+    let kernels = Kernels::with_threads(options.threads);
+    let window = ReturnWindow::new_with(panel, settings, kernels)?;
     let market = if settings.demarket { window.market.as_deref() } else { None };
-    let mom = Moments::compute(window.returns.as_ref(), market);
+    let mom = Moments::compute_with(window.returns.as_ref(), market, kernels);
     let top = ks.iter().copied().max().unwrap_or(1);
     let prepared = ComponentFit::prepare(&window, &mom, settings, KPolicy::Fixed(top), options)?;
     // One window, one settings: one fingerprint for every K.
@@ -198,7 +200,17 @@ impl ComponentFit {
         let bounds: Vec<(usize, usize)> = fold_bounds(t, folds).into_iter().take(fold_count).collect();
         let one_fold = |i: usize| {
             options.stop.check()?;
-            Fold::prepare(window.returns.as_ref(), market, bounds[i], i, settings, scaling, k_need, options.eigen_path)
+            Fold::prepare(
+                window.returns.as_ref(),
+                market,
+                bounds[i],
+                i,
+                settings,
+                scaling,
+                k_need,
+                options.eigen_path,
+                mom.kernels,
+            )
         };
         let full_basis = || ComponentBasis::compute(mom, scaling, settings.rp_gamma, k_need, options.eigen_path);
         // One basis after the other: large ones use the fit's threads inside

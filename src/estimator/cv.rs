@@ -7,7 +7,7 @@ use faer::{Mat, MatRef};
 
 use super::basis::{ComponentBasis, EigenPath};
 use super::calibration::HeldOutSample;
-use super::dense;
+use super::dense::{self, Kernels};
 use super::error::EstimateError;
 use super::moments::{Moments, demarket};
 use super::settings::{CvCriterion, Scaling, ValidSettings};
@@ -100,12 +100,13 @@ impl Fold {
         scaling: Scaling,
         k: usize,
         path: EigenPath,
+        kernels: Kernels,
     ) -> Result<Fold, EstimateError> {
         let (t, n) = r.shape();
         let train_rows: Vec<usize> = (0..start).chain(end..t).collect();
         let r_train = Mat::from_fn(train_rows.len(), n, |i, j| r[(train_rows[i], j)]);
         let m_train: Option<Vec<f64>> = market.map(|m| train_rows.iter().map(|&i| m[i]).collect());
-        let mom = Moments::compute(r_train.as_ref(), m_train.as_deref());
+        let mom = Moments::compute_with(r_train.as_ref(), m_train.as_deref(), kernels);
         let basis = ComponentBasis::compute(&mom, scaling, settings.rp_gamma, k, path)?;
 
         // Held-out block, demarketed with the training betas (no look-ahead).
@@ -120,24 +121,24 @@ impl Fold {
             }
         }
         let d2 = t2 as f64 - 1.0;
-        let fc = dense::mul(x2.as_ref(), basis.q.as_ref());
+        let fc = dense::mul(kernels, x2.as_ref(), basis.q.as_ref());
         let kk = basis.len();
         let f_mean: Vec<f64> = (0..kk).map(|c| (0..n).map(|i| mu2[i] * basis.q[(i, c)]).sum()).collect();
-        let mut f_cov = dense::gram_tn(fc.as_ref());
+        let mut f_cov = dense::gram_tn(kernels, fc.as_ref());
         scale_in_place(&mut f_cov, 1.0 / d2);
 
         let pricing = match settings.cv_criterion {
             CvCriterion::Sharpe => None,
             CvCriterion::PricingR2 => {
                 // C₂ = cov(R̃₂, F₂) = X₂'F₂c/(T₂−1), n × K.
-                let mut c2 = dense::mul_tn(x2.as_ref(), fc.as_ref());
+                let mut c2 = dense::mul_tn(kernels, x2.as_ref(), fc.as_ref());
                 scale_in_place(&mut c2, 1.0 / d2);
-                Some(pricing_forms(&c2, &mu2))
+                Some(pricing_forms(kernels, &c2, &mu2))
             }
             CvCriterion::PricingR2Gls => {
-                let mut sigma2 = dense::gram_tn(x2.as_ref());
+                let mut sigma2 = dense::gram_tn(kernels, x2.as_ref());
                 scale_in_place(&mut sigma2, 1.0 / d2);
-                let (vals, vecs) = dense::sym_eigen_desc(sigma2.as_ref(), "held-out covariance")?;
+                let (vals, vecs) = dense::sym_eigen_desc(kernels, sigma2.as_ref(), "held-out covariance")?;
                 let lmax = vals.first().copied().unwrap_or(0.0);
                 let lmin = vals.last().copied().unwrap_or(0.0);
                 let condition = if lmin > 0.0 { lmax / lmin } else { f64::INFINITY };
@@ -151,11 +152,11 @@ impl Fold {
                 }
                 // Whitening W = Λ^{-1/2}U' turns the Σ₂⁻¹-weighted norm into a plain one.
                 let w = Mat::from_fn(n, n, |a, b| vecs[(b, a)] / vals[a].sqrt());
-                let mut c2 = dense::mul_tn(x2.as_ref(), fc.as_ref());
+                let mut c2 = dense::mul_tn(kernels, x2.as_ref(), fc.as_ref());
                 scale_in_place(&mut c2, 1.0 / d2);
-                let wc = dense::mul(w.as_ref(), c2.as_ref());
+                let wc = dense::mul(kernels, w.as_ref(), c2.as_ref());
                 let wmu: Vec<f64> = (0..n).map(|a| (0..n).map(|b| w[(a, b)] * mu2[b]).sum()).collect();
-                Some(pricing_forms(&wc, &wmu))
+                Some(pricing_forms(kernels, &wc, &wmu))
             }
         };
         Ok(Fold { train_periods: train_rows.len(), basis, f_mean, f_cov, f_held: fc, pricing })
@@ -164,7 +165,14 @@ impl Fold {
     /// Scores of several coefficient vectors (the columns of `b`, K rows) at
     /// once: the held-out Sharpe ratio of F₂b, or the pricing R²
     /// 1 − ‖μ₂ − C₂b‖²/‖μ₂‖² expanded in the precomputed forms (KNS).
-    fn score_batch(&self, criterion: CvCriterion, b: MatRef<'_, f64>, annualise: f64, out: &mut [f64]) {
+    fn score_batch(
+        &self,
+        kernels: Kernels,
+        criterion: CvCriterion,
+        b: MatRef<'_, f64>,
+        annualise: f64,
+        out: &mut [f64],
+    ) {
         let k = b.nrows();
         let (form, linear, constant) = match (criterion, &self.pricing) {
             (CvCriterion::Sharpe, _) => (&self.f_cov, &self.f_mean, None),
@@ -174,7 +182,7 @@ impl Fold {
                 return;
             }
         };
-        let mb = dense::mul(form.as_ref().submatrix(0, 0, k, k), b);
+        let mb = dense::mul(kernels, form.as_ref().submatrix(0, 0, k, k), b);
         for (c, o) in out.iter_mut().enumerate() {
             let mut quad = 0.0;
             let mut lin = 0.0;
@@ -209,10 +217,10 @@ impl Fold {
     }
 }
 
-fn pricing_forms(c: &Mat<f64>, mu: &[f64]) -> (Vec<f64>, Mat<f64>, f64) {
+fn pricing_forms(kernels: Kernels, c: &Mat<f64>, mu: &[f64]) -> (Vec<f64>, Mat<f64>, f64) {
     let (n, k) = c.shape();
     let cmu = (0..k).map(|a| (0..n).map(|i| c[(i, a)] * mu[i]).sum()).collect();
-    let cc = dense::gram_tn(c.as_ref());
+    let cc = dense::gram_tn(kernels, c.as_ref());
     let mumu = mu.iter().map(|x| x * x).sum();
     (cmu, cc, mumu)
 }
@@ -262,7 +270,7 @@ pub(crate) fn cross_validate(
     let l1 = settings.l1_penalty;
     let cells = ks.len() * kappas.len();
 
-    let score_fold = |fold: &Fold| -> Result<(Vec<f64>, bool), EstimateError> {
+    let score_fold = |fold: &Fold, kernels: Kernels| -> Result<(Vec<f64>, bool), EstimateError> {
         let mut path = ShrinkagePath::new(&fold.basis, diagonal, l1);
         let mut b = vec![0.0; fold.basis.len()];
         let mut out = vec![f64::NAN; cells];
@@ -282,7 +290,13 @@ pub(crate) fn cross_validate(
                     coefs[(j, ci)] = b[j];
                 }
             }
-            fold.score_batch(criterion, coefs.as_ref().subrows(0, k), annualise, &mut out[ki * nk..(ki + 1) * nk]);
+            fold.score_batch(
+                kernels,
+                criterion,
+                coefs.as_ref().subrows(0, k),
+                annualise,
+                &mut out[ki * nk..(ki + 1) * nk],
+            );
         }
         Ok((out, limit_hit))
     };
@@ -294,9 +308,11 @@ pub(crate) fn cross_validate(
     let work = kmax.powi(3) / 3.0 * kappas.len() as f64;
     let per_fold: Vec<Result<(Vec<f64>, bool), EstimateError>> =
         if threads <= 1 || folds.len() == 1 || work < super::dense::PARALLEL_FLOPS {
-            folds.iter().map(score_fold).collect()
+            folds.iter().map(|f| score_fold(f, Kernels::with_threads(threads))).collect()
         } else {
-            super::fanout::map_in_order(folds.iter().collect(), folds.len(), score_fold).unwrap_or_else(|_| {
+            // Folds on worker threads: their kernels sequential.
+            let one = |f: &Fold| score_fold(f, Kernels::SEQUENTIAL);
+            super::fanout::map_in_order(folds.iter().collect(), folds.len(), one).unwrap_or_else(|_| {
                 vec![Err(EstimateError::Numerical { stage: "cross-validation", detail: "worker panicked".into() })]
             })
         };
@@ -330,7 +346,7 @@ pub(crate) fn cross_validate(
         path.solve(k, gamma, &mut b);
         let mut sharpe = [f64::NAN];
         let column = Mat::from_fn(k, 1, |j, _| b[j]);
-        fold.score_batch(CvCriterion::Sharpe, column.as_ref(), annualise, &mut sharpe);
+        fold.score_batch(Kernels::with_threads(threads), CvCriterion::Sharpe, column.as_ref(), annualise, &mut sharpe);
         sharpe_sum += sharpe[0];
         held_out.push(fold.held_out_sample(&b[..k]));
     }

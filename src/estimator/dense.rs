@@ -3,7 +3,7 @@
 //! bitwise reproducible whatever the thread count, and parallelism goes
 //! across independent tasks (folds, backtest dates, bootstrap draws). A
 //! kernel of at least [`PARALLEL_FLOPS`] inside a fit that was given more
-//! than one thread ([`with_threads`]) uses faer's rayon parallelism instead:
+//! than one thread (its [`Kernels`], passed to every kernel) uses faer's rayon parallelism instead:
 //! its reductions may then be split differently, so such results may differ
 //! from the sequential ones in the last bits (tested to 1e-12 relative).
 
@@ -21,85 +21,85 @@ use super::error::EstimateError;
 /// eigendecomposition. Below it, splitting costs more than it saves.
 pub const PARALLEL_FLOPS: f64 = 4.0e6;
 
-thread_local! {
-    /// Threads the kernels of the current fit may use (1 = sequential).
-    static THREADS: std::cell::Cell<usize> = const { std::cell::Cell::new(1) };
+/// The parallelism a fit's kernels may use, passed explicitly to every
+/// kernel: a fit given `threads` makes one ([`Kernels::with_threads`]) and
+/// hands it down with its moments; work on a worker thread of a fan-out
+/// (folds, draws, refit dates) runs [`Kernels::SEQUENTIAL`].
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub(crate) struct Kernels {
+    threads: usize,
 }
 
-/// Runs `f` with the kernels of this thread allowed `threads` threads; the
-/// previous setting is restored after (also when `f` unwinds).
-pub(crate) fn with_threads<R>(threads: usize, f: impl FnOnce() -> R) -> R {
-    struct Restore(usize);
-    impl Drop for Restore {
-        fn drop(&mut self) {
-            THREADS.with(|t| t.set(self.0));
+impl Kernels {
+    /// One thread: every kernel sequential.
+    pub(crate) const SEQUENTIAL: Kernels = Kernels { threads: 1 };
+
+    /// Up to `threads` threads (at least one).
+    pub(crate) fn with_threads(threads: usize) -> Kernels {
+        Kernels { threads: threads.max(1) }
+    }
+
+    /// Threads these kernels may use.
+    pub(crate) fn threads(self) -> usize {
+        self.threads
+    }
+
+    /// The parallelism of a kernel of `flops` multiply–adds.
+    fn par(self, flops: f64) -> Par {
+        if self.threads > 1 && flops >= PARALLEL_FLOPS { Par::rayon(self.threads) } else { Par::Seq }
+    }
+
+    /// Runs `f` on each of `parts` in parallel over these threads when the
+    /// work (`flops`) is at least [`PARALLEL_FLOPS`], else in turn; results
+    /// in the order of `parts`. For column-wise work whose parts are
+    /// independent, so the results are the same whatever the split.
+    pub(crate) fn for_parts<P: Send, R: Send>(self, parts: Vec<P>, flops: f64, f: impl Fn(P) -> R + Sync) -> Vec<R> {
+        if self.threads <= 1 || parts.len() <= 1 || flops < PARALLEL_FLOPS {
+            return parts.into_iter().map(f).collect();
         }
+        let workers = parts.len();
+        super::fanout::map_in_order(parts, workers, f).unwrap_or_else(|p| std::panic::resume_unwind(p.0))
     }
-    let _restore = Restore(THREADS.with(|t| t.replace(threads.max(1))));
-    f()
-}
-
-/// Threads the current fit's kernels may use.
-pub(crate) fn threads() -> usize {
-    THREADS.with(std::cell::Cell::get)
-}
-
-/// Runs `f` on each of `parts` in parallel over the fit's threads when the
-/// work (`flops`) is at least [`PARALLEL_FLOPS`], else in turn; results in
-/// the order of `parts`. For column-wise work whose parts are independent,
-/// so the results are the same whatever the split.
-pub(crate) fn for_parts<P: Send, R: Send>(parts: Vec<P>, flops: f64, f: impl Fn(P) -> R + Sync) -> Vec<R> {
-    if threads() <= 1 || parts.len() <= 1 || flops < PARALLEL_FLOPS {
-        return parts.into_iter().map(f).collect();
-    }
-    let workers = parts.len();
-    super::fanout::map_in_order(parts, workers, f).unwrap_or_else(|p| std::panic::resume_unwind(p.0))
-}
-
-/// The parallelism of a kernel of `flops` multiply–adds.
-fn par(flops: f64) -> Par {
-    let threads = THREADS.with(std::cell::Cell::get);
-    if threads > 1 && flops >= PARALLEL_FLOPS { Par::rayon(threads) } else { Par::Seq }
 }
 
 /// The parallelism of a product of an m × k by a k × n matrix.
-fn par_mul(m: usize, k: usize, n: usize) -> Par {
-    par(m as f64 * k as f64 * n as f64)
+fn par_mul(kernels: Kernels, m: usize, k: usize, n: usize) -> Par {
+    kernels.par(m as f64 * k as f64 * n as f64)
 }
 
 /// The parallelism of an n × n symmetric decomposition (≈ n³ work).
-fn par_decomp(n: usize) -> Par {
-    par((n as f64).powi(3))
+fn par_decomp(kernels: Kernels, n: usize) -> Par {
+    kernels.par((n as f64).powi(3))
 }
 
 /// A'A.
-pub(crate) fn gram_tn(a: MatRef<'_, f64>) -> Mat<f64> {
+pub(crate) fn gram_tn(kernels: Kernels, a: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.ncols(), a.ncols());
-    let par = par_mul(a.ncols(), a.nrows(), a.ncols());
+    let par = par_mul(kernels, a.ncols(), a.nrows(), a.ncols());
     matmul(out.as_mut(), Accum::Replace, a.transpose(), a, 1.0, par);
     out
 }
 
 /// AA'.
-pub(crate) fn gram_nt(a: MatRef<'_, f64>) -> Mat<f64> {
+pub(crate) fn gram_nt(kernels: Kernels, a: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.nrows(), a.nrows());
-    let par = par_mul(a.nrows(), a.ncols(), a.nrows());
+    let par = par_mul(kernels, a.nrows(), a.ncols(), a.nrows());
     matmul(out.as_mut(), Accum::Replace, a, a.transpose(), 1.0, par);
     out
 }
 
 /// A B.
-pub(crate) fn mul(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
+pub(crate) fn mul(kernels: Kernels, a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.nrows(), b.ncols());
-    let par = par_mul(a.nrows(), a.ncols(), b.ncols());
+    let par = par_mul(kernels, a.nrows(), a.ncols(), b.ncols());
     matmul(out.as_mut(), Accum::Replace, a, b, 1.0, par);
     out
 }
 
 /// A' B.
-pub(crate) fn mul_tn(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
+pub(crate) fn mul_tn(kernels: Kernels, a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
     let mut out = Mat::zeros(a.ncols(), b.ncols());
-    let par = par_mul(a.ncols(), a.nrows(), b.ncols());
+    let par = par_mul(kernels, a.ncols(), a.nrows(), b.ncols());
     matmul(out.as_mut(), Accum::Replace, a.transpose(), b, 1.0, par);
     out
 }
@@ -107,11 +107,15 @@ pub(crate) fn mul_tn(a: MatRef<'_, f64>, b: MatRef<'_, f64>) -> Mat<f64> {
 /// Symmetric eigendecomposition (lower triangle read), eigenvalues in
 /// descending order with ties kept in solver order (a stable sort), and the
 /// matching unit eigenvectors as columns.
-pub(crate) fn sym_eigen_desc(a: MatRef<'_, f64>, stage: &'static str) -> Result<(Vec<f64>, Mat<f64>), EstimateError> {
+pub(crate) fn sym_eigen_desc(
+    kernels: Kernels,
+    a: MatRef<'_, f64>,
+    stage: &'static str,
+) -> Result<(Vec<f64>, Mat<f64>), EstimateError> {
     let n = a.nrows();
     let mut s = Diag::<f64>::zeros(n);
     let mut u = Mat::<f64>::zeros(n, n);
-    let par = par_decomp(n);
+    let par = par_decomp(kernels, n);
     let req = evd::self_adjoint_evd_scratch::<f64>(n, ComputeEigenvectors::Yes, par, Default::default());
     let mut buf = MemBuffer::new(req);
     evd::self_adjoint_evd(a, s.as_mut(), Some(u.as_mut()), par, MemStack::new(&mut buf), Default::default())
@@ -129,7 +133,11 @@ pub(crate) fn sym_eigen_desc(a: MatRef<'_, f64>, stage: &'static str) -> Result<
 /// the two ends of the spectrum only (Golub & Van Loan, §8.4.1). Both are
 /// accurate to about ε·‖A‖ in absolute terms, like a full eigensolve, at a
 /// fraction of its cost when only the condition number is wanted.
-pub(crate) fn sym_extreme_eigenvalues(a: MatRef<'_, f64>, stage: &'static str) -> Result<(f64, f64), EstimateError> {
+pub(crate) fn sym_extreme_eigenvalues(
+    kernels: Kernels,
+    a: MatRef<'_, f64>,
+    stage: &'static str,
+) -> Result<(f64, f64), EstimateError> {
     let n = a.nrows();
     if n == 0 {
         return Err(EstimateError::Numerical { stage, detail: "empty matrix".into() });
@@ -139,7 +147,7 @@ pub(crate) fn sym_extreme_eigenvalues(a: MatRef<'_, f64>, stage: &'static str) -
     if n > 1 {
         let bs = faer::linalg::qr::no_pivoting::factor::recommended_block_size::<f64>(n, n);
         let mut householder = Mat::<f64>::zeros(bs, n - 1);
-        let par = par_decomp(n);
+        let par = par_decomp(kernels, n);
         let req = evd::tridiag::tridiag_in_place_scratch::<f64>(n, par, Default::default());
         let mut buf = MemBuffer::new(req);
         evd::tridiag::tridiag_in_place(
@@ -199,13 +207,13 @@ pub(crate) fn sym_extreme_eigenvalues(a: MatRef<'_, f64>, stage: &'static str) -
 pub(crate) type Svd = (Vec<f64>, Mat<f64>, Mat<f64>);
 
 /// Thin SVD A = U diag(s) V', singular values descending.
-pub(crate) fn thin_svd(a: MatRef<'_, f64>, stage: &'static str) -> Result<Svd, EstimateError> {
+pub(crate) fn thin_svd(kernels: Kernels, a: MatRef<'_, f64>, stage: &'static str) -> Result<Svd, EstimateError> {
     let (m, n) = a.shape();
     let k = m.min(n);
     let mut s = Diag::<f64>::zeros(k);
     let mut u = Mat::<f64>::zeros(m, k);
     let mut v = Mat::<f64>::zeros(n, k);
-    let par = par_decomp(k);
+    let par = par_decomp(kernels, k);
     let req = svd::svd_scratch::<f64>(m, n, ComputeSvdVectors::Thin, ComputeSvdVectors::Thin, par, Default::default());
     let mut buf = MemBuffer::new(req);
     svd::svd(a, s.as_mut(), Some(u.as_mut()), Some(v.as_mut()), par, MemStack::new(&mut buf), Default::default())
@@ -278,7 +286,7 @@ mod tests {
     #[test]
     fn eigen_descending_reconstructs_matrix() {
         let a = Mat::from_fn(4, 4, |i, j| 1.0 / (1.0 + i as f64 + j as f64) + if i == j { 1.0 } else { 0.0 });
-        let (vals, vecs) = sym_eigen_desc(a.as_ref(), "test").unwrap();
+        let (vals, vecs) = sym_eigen_desc(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
         assert!(vals.windows(2).all(|w| w[0] >= w[1]));
         for i in 0..4 {
             for j in 0..4 {
@@ -297,15 +305,15 @@ mod tests {
                     + (0.3 * (y + 1.0) * (x + 2.0)).sin()
                     + if i == j { 0.5 } else { 0.0 }
             });
-            let (vals, _) = sym_eigen_desc(a.as_ref(), "test").unwrap();
-            let (hi, lo) = sym_extreme_eigenvalues(a.as_ref(), "test").unwrap();
+            let (vals, _) = sym_eigen_desc(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
+            let (hi, lo) = sym_extreme_eigenvalues(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
             let scale = vals[0].abs().max(vals[n - 1].abs());
             assert!((hi - vals[0]).abs() <= 1e-13 * scale, "n={n} max {hi} vs {}", vals[0]);
             assert!((lo - vals[n - 1]).abs() <= 1e-13 * scale, "n={n} min {lo} vs {}", vals[n - 1]);
         }
         // A double eigenvalue at both ends: diag(3, 3, 1, 1).
         let a = Mat::from_fn(4, 4, |i, j| if i == j { if i < 2 { 3.0 } else { 1.0 } } else { 0.0 });
-        let (hi, lo) = sym_extreme_eigenvalues(a.as_ref(), "test").unwrap();
+        let (hi, lo) = sym_extreme_eigenvalues(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
         assert!((hi - 3.0).abs() < 1e-14 && (lo - 1.0).abs() < 1e-14);
     }
 

@@ -60,6 +60,7 @@ use components::{
     ComponentFit, KPolicy, Member, assemble_model, choose_scaling, direction_of, needs_held_out_risk, scaling_members,
 };
 use cv::fold_bounds;
+use dense::Kernels;
 
 /// Fits one window with default options.
 ///
@@ -127,8 +128,7 @@ fn fit_full(
     // Large kernels of this fit may use its threads (see `dense`); folds and
     // draws on worker threads stay sequential inside. With threads to spare,
     // a large window's fingerprint is hashed on one of them meanwhile.
-    let fit =
-        |phases: &mut PhaseTimes| dense::with_threads(options.threads, || fit_phased(panel, settings, options, phases));
+    let fit = |phases: &mut PhaseTimes| fit_phased(panel, settings, options, phases);
     let fingerprint = || fingerprint::fingerprint(panel, settings.settings());
     let (r, hashed) = if !hash {
         (fit(&mut phases), Some(String::new()))
@@ -222,10 +222,12 @@ fn fit_phased(
 ) -> Result<WeightSet, EstimateError> {
     options.stop.check()?;
     let mut mark = Instant::now();
-    let window = ReturnWindow::new(panel, settings)?;
+    // Large kernels of this fit may use its threads (see `dense`).
+    let kernels = Kernels::with_threads(options.threads);
+    let window = ReturnWindow::new_with(panel, settings, kernels)?;
     lap(&mut mark, &mut ph.validate);
     let market = if settings.demarket { window.market.as_deref() } else { None };
-    let mom = Moments::compute(window.returns.as_ref(), market);
+    let mom = Moments::compute_with(window.returns.as_ref(), market, kernels);
     lap(&mut mark, &mut ph.moments);
     let mut warnings = Vec::new();
     match settings.method {
@@ -303,7 +305,7 @@ fn fit_phased(
                     ),
                 });
             }
-            let risk = baseline_risk(&window, settings);
+            let risk = baseline_risk(&window, &mom, settings);
             lap(&mut mark, &mut ph.solve);
             let r =
                 weights::assemble(panel, &window, &mom, settings, &plug.weights, None, risk, warnings, &options.stop);
@@ -313,7 +315,7 @@ fn fit_phased(
         Method::EqualWeight => {
             let n = window.factors_used();
             let direction = vec![1.0 / n as f64; n];
-            let risk = baseline_risk(&window, settings);
+            let risk = baseline_risk(&window, &mom, settings);
             let r = weights::assemble(panel, &window, &mom, settings, &direction, None, risk, warnings, &options.stop);
             lap(&mut mark, &mut ph.assemble);
             r
@@ -325,7 +327,7 @@ fn fit_phased(
 /// on the cross-validation's folds.
 /// The unshrunk plug-in gets the window-length correction for its N
 /// parameters (see [`calibration::held_out_ratio`]).
-fn baseline_risk(window: &ReturnWindow, settings: &ValidSettings) -> Option<calibration::HeldOutRatio> {
+fn baseline_risk(window: &ReturnWindow, mom: &Moments, settings: &ValidSettings) -> Option<calibration::HeldOutRatio> {
     if !needs_held_out_risk(settings) {
         return None;
     }
@@ -334,7 +336,7 @@ fn baseline_risk(window: &ReturnWindow, settings: &ValidSettings) -> Option<cali
     let parameters = if settings.method == Method::PlugIn { n } else { 0.0 };
     let market = if settings.demarket { window.market.as_deref() } else { None };
     let bounds = fold_bounds(t, settings.folds as usize);
-    let samples = calibration::baseline_samples(window.returns.as_ref(), market, &bounds, settings.method);
+    let samples = calibration::baseline_samples(window.returns.as_ref(), market, &bounds, settings.method, mom.kernels);
     calibration::held_out_ratio(&samples, t, parameters)
 }
 
@@ -364,7 +366,7 @@ fn fit_blend(
     ];
     let average: Vec<f64> = members[0].iter().zip(&members[1]).map(|(a, b)| 0.5 * (a + b)).collect();
     let risks: Vec<calibration::HeldOutRatio> =
-        ridge.risk.into_iter().chain(baseline_risk(window, &lw_settings)).collect();
+        ridge.risk.into_iter().chain(baseline_risk(window, mom, &lw_settings)).collect();
     lap(mark, &mut ph.solve);
     let r = weights::assemble(panel, window, mom, settings, &average, None, mean_risk(&risks), warnings, &options.stop)
         .map(|mut ws| {

@@ -2,6 +2,8 @@
 
 use faer::{Mat, MatRef};
 
+use super::dense::Kernels;
+
 /// Demarketed moments of one block of periods (a whole window or a training fold).
 #[derive(Clone, Debug)]
 pub struct Moments {
@@ -13,12 +15,20 @@ pub struct Moments {
     pub sd: Vec<f64>,
     /// Demarketed returns minus their means, T × n.
     pub centered: Mat<f64>,
+    /// The parallelism the kernels on these moments may use (the fit's).
+    pub(crate) kernels: Kernels,
 }
 
 impl Moments {
     /// β_i = cov(r_i, m)/var(m) on this block, r̃ = r − β m, then μ, σ
     /// and the centred panel (SPEC §2–3).
     pub fn compute(r: MatRef<'_, f64>, market: Option<&[f64]>) -> Moments {
+        Moments::compute_with(r, market, Kernels::SEQUENTIAL)
+    }
+
+    /// [`Moments::compute`] with the fit's kernels, which the stages that
+    /// take these moments use too.
+    pub(crate) fn compute_with(r: MatRef<'_, f64>, market: Option<&[f64]>, kernels: Kernels) -> Moments {
         let (t, n) = r.shape();
         let tf = t as f64;
         let market = market.map(|m| {
@@ -45,7 +55,7 @@ impl Moments {
             }
             (b, mu, (dot(out, out) / (tf - 1.0)).sqrt())
         };
-        let parts = super::dense::threads().clamp(1, n.max(1));
+        let parts = kernels.threads().clamp(1, n.max(1));
         let per = n.div_ceil(parts).max(1);
         let mut ranges = Vec::with_capacity(parts);
         let mut rest = centered.as_mut();
@@ -55,7 +65,7 @@ impl Moments {
             ranges.push(head);
             rest = tail;
         }
-        let stats = super::dense::for_parts(ranges, 6.0 * (t * n) as f64, |mut block| {
+        let stats = kernels.for_parts(ranges, 6.0 * (t * n) as f64, |mut block| {
             (0..block.ncols())
                 .map(|j| match block.as_mut().col_mut(j).try_as_col_major_mut() {
                     Some(c) => one_column(c.as_slice_mut()),
@@ -69,7 +79,7 @@ impl Moments {
             mean.push(mu);
             sd.push(s);
         }
-        Moments { beta, mean, sd, centered }
+        Moments { beta, mean, sd, centered, kernels }
     }
 
     /// Number of periods in the block.

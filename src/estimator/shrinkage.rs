@@ -155,7 +155,7 @@ pub fn plug_in(mom: &Moments) -> Result<PlugIn, EstimateError> {
     let (t, n) = mom.centered.shape();
     let a = 1.0 / (t as f64 - 1.0).sqrt();
     let x = faer::Mat::from_fn(t, n, |i, j| mom.centered[(i, j)] * a);
-    let (s, _u, v) = dense::thin_svd(x.as_ref(), "plug-in SVD")?;
+    let (s, _u, v) = dense::thin_svd(mom.kernels, x.as_ref(), "plug-in SVD")?;
     let eig: Vec<f64> = s.iter().map(|x| x * x).collect();
     let tol = eig.first().copied().unwrap_or(0.0) * n as f64 * f64::EPSILON;
     let rank = eig.iter().filter(|&&e| e > tol).count();
@@ -194,6 +194,8 @@ pub struct LedoitWolf {
     x: Mat<f64>,
     /// X_cX_c', T × T, when N > T (computed for δ, reused by the Woodbury solve).
     periods_gram: Option<Mat<f64>>,
+    /// The kernels of the moments it was estimated from.
+    kernels: dense::Kernels,
 }
 
 impl LedoitWolf {
@@ -204,7 +206,8 @@ impl LedoitWolf {
         let (t, n) = mom.centered.shape();
         let (tf, nf) = (t as f64, n as f64);
         let x = &mom.centered;
-        let gram = if n <= t { dense::gram_tn(x.as_ref()) } else { dense::gram_nt(x.as_ref()) };
+        let gram =
+            if n <= t { dense::gram_tn(mom.kernels, x.as_ref()) } else { dense::gram_nt(mom.kernels, x.as_ref()) };
         let m = gram.nrows();
         let mut delta_sum = 0.0;
         for b in 0..m {
@@ -232,7 +235,14 @@ impl LedoitWolf {
         let beta = beta.min(delta);
         let shrinkage = if beta == 0.0 { 0.0 } else { beta / delta };
         let periods_gram = (n > t).then_some(gram);
-        LedoitWolf { shrinkage, ridge: shrinkage * mu, scale: (1.0 - shrinkage) / tf, x: x.clone(), periods_gram }
+        LedoitWolf {
+            shrinkage,
+            ridge: shrinkage * mu,
+            scale: (1.0 - shrinkage) / tf,
+            x: x.clone(),
+            periods_gram,
+            kernels: mom.kernels,
+        }
     }
 
     /// Number of factors N.
@@ -278,7 +288,7 @@ impl LedoitWolf {
 
     /// Σ_LW as an N × N matrix.
     pub fn dense(&self) -> Mat<f64> {
-        let mut s = dense::gram_tn(self.x.as_ref());
+        let mut s = dense::gram_tn(self.kernels, self.x.as_ref());
         let n = s.nrows();
         for b in 0..n {
             for a in 0..n {

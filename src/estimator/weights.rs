@@ -413,8 +413,8 @@ fn condition_number(mom: &Moments, model: Option<&ComponentModel>, t: usize, n: 
     let (hi, lo) = match at_hand {
         Some(b) => (b.eigenvalues[0], b.eigenvalues[n - 1]),
         None => {
-            let gram = dense::gram_tn(mom.centered.as_ref());
-            dense::sym_extreme_eigenvalues(gram.as_ref(), "covariance condition number")?
+            let gram = dense::gram_tn(mom.kernels, mom.centered.as_ref());
+            dense::sym_extreme_eigenvalues(mom.kernels, gram.as_ref(), "covariance condition number")?
         }
     };
     Ok(if lo > hi * n as f64 * f64::EPSILON { hi / lo } else { f64::INFINITY })

@@ -2,6 +2,7 @@
 //! validated form ([`ReturnWindow`]) with missing-value and zero-variance
 //! exclusions applied (SPEC §1).
 
+use super::dense::Kernels;
 use faer::Mat;
 
 use super::moments::{centred, column, dot, sum};
@@ -120,6 +121,16 @@ impl ReturnWindow {
     /// # Errors
     /// An [`InputError`] naming the field, row and column of the first problem.
     pub fn new(panel: &ReturnPanel, settings: &ValidSettings) -> Result<ReturnWindow, InputError> {
+        ReturnWindow::new_with(panel, settings, Kernels::SEQUENTIAL)
+    }
+
+    /// [`ReturnWindow::new`] with the fit's kernels for the usable-column
+    /// checks (split by columns: the same result for any thread count).
+    pub(crate) fn new_with(
+        panel: &ReturnPanel,
+        settings: &ValidSettings,
+        kernels: Kernels,
+    ) -> Result<ReturnWindow, InputError> {
         let rows = panel.rows;
         check_structure(panel)?;
         for (i, &(ref n, w)) in panel.previous_weights.iter().enumerate() {
@@ -155,7 +166,7 @@ impl ReturnWindow {
             check_market_variance(m)?;
         }
         let gathered = gather_columns(panel, &candidates);
-        let keep = usable_columns(&gathered, &candidates, demarket_with, &mut excluded);
+        let keep = usable_columns(kernels, &gathered, &candidates, demarket_with, &mut excluded);
         excluded.sort_by_key(|e| e.column);
         if keep.is_empty() {
             let summary = excluded
@@ -391,6 +402,7 @@ fn gather_columns(panel: &ReturnPanel, columns: &[usize]) -> Mat<f64> {
 /// candidates that vary, judged on the demarketed series over the whole
 /// window; the others are added to `excluded`.
 fn usable_columns(
+    kernels: Kernels,
     gathered: &Mat<f64>,
     candidates: &[usize],
     demarket_with: Option<&[f64]>,
@@ -430,10 +442,10 @@ fn usable_columns(
             .collect()
     };
     let k = candidates.len();
-    let parts = super::dense::threads().clamp(1, k.max(1));
+    let parts = kernels.threads().clamp(1, k.max(1));
     let per = k.div_ceil(parts).max(1);
     let ranges: Vec<std::ops::Range<usize>> = (0..k).step_by(per).map(|a| a..(a + per).min(k)).collect();
-    let verdicts = super::dense::for_parts(ranges, 8.0 * (rows * k) as f64, judge);
+    let verdicts = kernels.for_parts(ranges, 8.0 * (rows * k) as f64, judge);
     let mut keep = Vec::with_capacity(k);
     for (j, verdict) in verdicts.into_iter().flatten().enumerate() {
         match verdict {
