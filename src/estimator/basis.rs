@@ -4,7 +4,7 @@
 
 use faer::Mat;
 
-use super::dense;
+use super::dense::{self, Workspace};
 use super::error::EstimateError;
 use super::moments::Moments;
 use super::settings::Scaling;
@@ -78,6 +78,19 @@ impl ComponentBasis {
         k: usize,
         path: EigenPath,
     ) -> Result<ComponentBasis, EstimateError> {
+        ComponentBasis::compute_in(mom, scaling, rp_gamma, k, path, &mut Workspace::default())
+    }
+
+    /// [`ComponentBasis::compute`] with the decomposition's scratch in `ws`
+    /// (a fit's bases share one).
+    pub(crate) fn compute_in(
+        mom: &Moments,
+        scaling: Scaling,
+        rp_gamma: f64,
+        k: usize,
+        path: EigenPath,
+        ws: &mut Workspace,
+    ) -> Result<ComponentBasis, EstimateError> {
         let (t, n) = mom.centered.shape();
         let shrunk = match scaling {
             Scaling::SharpeShrunk => shrunk_sharpe(mom),
@@ -133,7 +146,7 @@ impl ComponentBasis {
 
         let (eigenvalues, mut v) = if used_gram {
             let g = dense::gram_nt(mom.kernels, y.as_ref());
-            let (vals, u) = dense::sym_eigen_desc(mom.kernels, g.as_ref(), "Gram eigendecomposition")?;
+            let (vals, u) = dense::sym_eigen_desc(mom.kernels, ws, g.as_ref(), "Gram eigendecomposition")?;
             let keep = k.min(m).min(n);
             let tol = rank_tolerance(&vals, m.max(n));
             // v = Y'u/√λ maps a Gram eigenvector to the matching factor-space one.
@@ -142,7 +155,7 @@ impl ComponentBasis {
             (vals, v)
         } else {
             let c = dense::gram_tn(mom.kernels, y.as_ref());
-            let (vals, u) = dense::sym_eigen_desc(mom.kernels, c.as_ref(), "factor eigendecomposition")?;
+            let (vals, u) = dense::sym_eigen_desc(mom.kernels, ws, c.as_ref(), "factor eigendecomposition")?;
             let keep = k.min(n);
             (vals, u.as_ref().subcols(0, keep).to_owned())
         };

@@ -6,7 +6,7 @@
 use super::basis::ComponentBasis;
 use super::calibration;
 use super::cv::{self, CvSurface, Fold, fold_bounds, min_training_periods};
-use super::dense::Kernels;
+use super::dense::{Kernels, Workspace};
 use super::error::EstimateError;
 use super::fingerprint;
 use super::moments::Moments;
@@ -198,26 +198,18 @@ impl ComponentFit {
             _ => folds,
         };
         let bounds: Vec<(usize, usize)> = fold_bounds(t, folds).into_iter().take(fold_count).collect();
-        let one_fold = |i: usize| {
+        // One scratch workspace for the decompositions of every basis below.
+        let mut ws = Workspace::default();
+        let one_fold = |i: usize, ws: &mut Workspace| {
             options.stop.check()?;
-            Fold::prepare(
-                window.returns.as_ref(),
-                market,
-                bounds[i],
-                i,
-                settings,
-                scaling,
-                k_need,
-                options.eigen_path,
-                mom.kernels,
-            )
+            let (r, path) = (window.returns.as_ref(), options.eigen_path);
+            Fold::prepare(r, market, bounds[i], i, settings, scaling, k_need, path, mom.kernels, ws)
         };
-        let full_basis = || ComponentBasis::compute(mom, scaling, settings.rp_gamma, k_need, options.eigen_path);
         // One basis after the other: large ones use the fit's threads inside
         // their kernels (see `dense`). Preparing small ones side by side on
         // scoped threads measured slower on two cores than in sequence.
-        let full = full_basis();
-        let fold_data: Vec<Result<Fold, EstimateError>> = (0..fold_count).map(one_fold).collect();
+        let full = ComponentBasis::compute_in(mom, scaling, settings.rp_gamma, k_need, options.eigen_path, &mut ws);
+        let fold_data: Vec<Result<Fold, EstimateError>> = (0..fold_count).map(|i| one_fold(i, &mut ws)).collect();
         let full = full?;
         let fold_data: Vec<Fold> = fold_data.into_iter().collect::<Result<_, _>>()?;
         let fold_rank = fold_data.iter().map(|f| f.basis.rank).min().unwrap_or(full.rank);

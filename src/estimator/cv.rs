@@ -7,7 +7,7 @@ use faer::{Mat, MatRef};
 
 use super::basis::{ComponentBasis, EigenPath};
 use super::calibration::HeldOutSample;
-use super::dense::{self, Kernels};
+use super::dense::{self, Kernels, Workspace};
 use super::error::EstimateError;
 use super::moments::{Moments, demarket};
 use super::settings::{CvCriterion, Scaling, ValidSettings};
@@ -101,13 +101,14 @@ impl Fold {
         k: usize,
         path: EigenPath,
         kernels: Kernels,
+        ws: &mut Workspace,
     ) -> Result<Fold, EstimateError> {
         let (t, n) = r.shape();
         let train_rows: Vec<usize> = (0..start).chain(end..t).collect();
         let r_train = Mat::from_fn(train_rows.len(), n, |i, j| r[(train_rows[i], j)]);
         let m_train: Option<Vec<f64>> = market.map(|m| train_rows.iter().map(|&i| m[i]).collect());
         let mom = Moments::compute_with(r_train.as_ref(), m_train.as_deref(), kernels);
-        let basis = ComponentBasis::compute(&mom, scaling, settings.rp_gamma, k, path)?;
+        let basis = ComponentBasis::compute_in(&mom, scaling, settings.rp_gamma, k, path, ws)?;
 
         // Held-out block, demarketed with the training betas (no look-ahead).
         let r_test = r.subrows(start, end - start);
@@ -138,7 +139,7 @@ impl Fold {
             CvCriterion::PricingR2Gls => {
                 let mut sigma2 = dense::gram_tn(kernels, x2.as_ref());
                 scale_in_place(&mut sigma2, 1.0 / d2);
-                let (vals, vecs) = dense::sym_eigen_desc(kernels, sigma2.as_ref(), "held-out covariance")?;
+                let (vals, vecs) = dense::sym_eigen_desc(kernels, ws, sigma2.as_ref(), "held-out covariance")?;
                 let lmax = vals.first().copied().unwrap_or(0.0);
                 let lmin = vals.last().copied().unwrap_or(0.0);
                 let condition = if lmin > 0.0 { lmax / lmin } else { f64::INFINITY };

@@ -8,7 +8,7 @@
 //! from the sequential ones in the last bits (tested to 1e-12 relative).
 
 use faer::diag::Diag;
-use faer::dyn_stack::{MemBuffer, MemStack};
+use faer::dyn_stack::{MemBuffer, MemStack, StackReq};
 use faer::linalg::evd::{self, ComputeEigenvectors};
 use faer::linalg::matmul::matmul;
 use faer::linalg::svd::{self, ComputeSvdVectors};
@@ -62,6 +62,38 @@ impl Kernels {
     }
 }
 
+/// Scratch memory for faer's eigendecompositions, sized for the largest
+/// request seen and reused: a fit's bases (the whole window's and every
+/// fold's) decompose one after the other in one workspace instead of
+/// allocating scratch for each.
+#[derive(Default)]
+pub(crate) struct Workspace {
+    req: Option<StackReq>,
+    buf: Option<MemBuffer>,
+}
+
+impl Workspace {
+    /// A stack of at least `req`, growing the buffer only when `req` does
+    /// not fit the one held.
+    fn stack(&mut self, req: StackReq) -> &mut MemStack {
+        let fits = self
+            .req
+            .is_some_and(|held| held.size_bytes() >= req.size_bytes() && held.align_bytes() >= req.align_bytes());
+        if !fits || self.buf.is_none() {
+            let grown = self.req.map_or(req, |held| held.or(req));
+            self.req = Some(grown);
+            self.buf = Some(MemBuffer::new(grown));
+        }
+        MemStack::new(self.buf.as_mut().expect("a buffer was just made"))
+    }
+
+    /// Bytes held (for the test of reuse).
+    #[cfg(test)]
+    fn held_bytes(&self) -> usize {
+        self.req.map_or(0, |r| r.size_bytes())
+    }
+}
+
 /// The parallelism of a product of an m × k by a k × n matrix.
 fn par_mul(kernels: Kernels, m: usize, k: usize, n: usize) -> Par {
     kernels.par(m as f64 * k as f64 * n as f64)
@@ -109,6 +141,7 @@ pub(crate) fn mul_tn(kernels: Kernels, a: MatRef<'_, f64>, b: MatRef<'_, f64>) -
 /// matching unit eigenvectors as columns.
 pub(crate) fn sym_eigen_desc(
     kernels: Kernels,
+    ws: &mut Workspace,
     a: MatRef<'_, f64>,
     stage: &'static str,
 ) -> Result<(Vec<f64>, Mat<f64>), EstimateError> {
@@ -117,8 +150,7 @@ pub(crate) fn sym_eigen_desc(
     let mut u = Mat::<f64>::zeros(n, n);
     let par = par_decomp(kernels, n);
     let req = evd::self_adjoint_evd_scratch::<f64>(n, ComputeEigenvectors::Yes, par, Default::default());
-    let mut buf = MemBuffer::new(req);
-    evd::self_adjoint_evd(a, s.as_mut(), Some(u.as_mut()), par, MemStack::new(&mut buf), Default::default())
+    evd::self_adjoint_evd(a, s.as_mut(), Some(u.as_mut()), par, ws.stack(req), Default::default())
         .map_err(|e| EstimateError::Numerical { stage, detail: format!("{e:?}") })?;
     let vals: Vec<f64> = (0..n).map(|i| s[i]).collect();
     check_finite(&vals, stage)?;
@@ -283,10 +315,32 @@ pub(crate) fn spd_solve_in_place(a: &mut [f64], n: usize, b: &mut [f64]) -> bool
 mod tests {
     use super::*;
 
+    /// One workspace serves decompositions of any size: it grows to the
+    /// largest request and is then reused, and the answers equal those with
+    /// fresh scratch every time, bit for bit.
+    #[test]
+    fn a_workspace_grows_once_and_changes_no_answer() {
+        let sym = |n: usize| {
+            Mat::from_fn(n, n, |i, j| 1.0 / (1.0 + (i as f64 - j as f64).abs()) + if i == j { n as f64 } else { 0.0 })
+        };
+        let mut ws = Workspace::default();
+        let mut held = Vec::new();
+        for n in [40, 12, 40, 7] {
+            let a = sym(n);
+            let shared = sym_eigen_desc(Kernels::SEQUENTIAL, &mut ws, a.as_ref(), "test").unwrap();
+            let fresh = sym_eigen_desc(Kernels::SEQUENTIAL, &mut Workspace::default(), a.as_ref(), "test").unwrap();
+            assert_eq!(shared.0, fresh.0);
+            assert_eq!(shared.1, fresh.1);
+            held.push(ws.held_bytes());
+        }
+        assert!(held[0] > 0);
+        assert!(held.iter().all(|&b| b == held[0]), "grown past the first, largest request: {held:?}");
+    }
+
     #[test]
     fn eigen_descending_reconstructs_matrix() {
         let a = Mat::from_fn(4, 4, |i, j| 1.0 / (1.0 + i as f64 + j as f64) + if i == j { 1.0 } else { 0.0 });
-        let (vals, vecs) = sym_eigen_desc(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
+        let (vals, vecs) = sym_eigen_desc(Kernels::SEQUENTIAL, &mut Workspace::default(), a.as_ref(), "test").unwrap();
         assert!(vals.windows(2).all(|w| w[0] >= w[1]));
         for i in 0..4 {
             for j in 0..4 {
@@ -305,7 +359,7 @@ mod tests {
                     + (0.3 * (y + 1.0) * (x + 2.0)).sin()
                     + if i == j { 0.5 } else { 0.0 }
             });
-            let (vals, _) = sym_eigen_desc(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
+            let (vals, _) = sym_eigen_desc(Kernels::SEQUENTIAL, &mut Workspace::default(), a.as_ref(), "test").unwrap();
             let (hi, lo) = sym_extreme_eigenvalues(Kernels::SEQUENTIAL, a.as_ref(), "test").unwrap();
             let scale = vals[0].abs().max(vals[n - 1].abs());
             assert!((hi - vals[0]).abs() <= 1e-13 * scale, "n={n} max {hi} vs {}", vals[0]);
